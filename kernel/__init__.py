@@ -1,0 +1,13 @@
+"""galerkit: Lagrange finite elements on triangles and tetrahedra."""
+
+from .errors import *  # noqa: F401,F403
+from .mesh import Mesh, MeshQuality, remove_unreferenced_vertices
+from .generators import structured_triangles, structured_tetrahedra, l_shaped_triangles
+from .quadrature import QuadratureRule, simplex_quadrature
+from .elements import LagrangeElement, lagrange_element
+
+__version__ = "0.1.0"
+from .refinement import refine_uniform
+from .dofs import Discretization
+from .solvers import (SolveReport, solve, prepare_solver, register_solver,
+                      available_solvers, choose_method)

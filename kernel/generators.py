@@ -1,0 +1,170 @@
+"""Structured mesh generators for tests, studies and demos.
+
+Every generator tags its boundary facets: ``"left"``/``"right"`` (x = lower /
+upper), ``"bottom"``/``"top"`` (y), in 3D ``"front"``/``"back"`` (z), and
+``"boundary"`` for all of them.  Vertices are numbered lexicographically
+(x fastest), so cells come out sorted by their smallest vertex.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .errors import InputError
+from .mesh import Mesh, remove_unreferenced_vertices
+
+__all__ = ["structured_triangles", "structured_tetrahedra", "l_shaped_triangles"]
+
+
+def _check_counts(name, counts):
+    for c in counts:
+        if not isinstance(c, (int, np.integer)) or c < 1:
+            raise InputError(f"{name}: cell counts must be positive integers, got {counts}")
+
+
+def _check_box(name, lower, upper, dim):
+    lo = np.asarray(lower, dtype=np.float64)
+    hi = np.asarray(upper, dtype=np.float64)
+    if lo.shape != (dim,) or hi.shape != (dim,):
+        raise InputError(f"{name}: lower and upper need {dim} coordinates each")
+    if not (np.all(np.isfinite(lo)) and np.all(np.isfinite(hi)) and np.all(hi > lo)):
+        raise InputError(f"{name}: need finite lower < upper, got {lo.tolist()} / {hi.tolist()}")
+    return lo, hi
+
+
+def _tag_box(mesh, lower, upper, spacing):
+    tol = 1e-8 * float(np.min(spacing))
+    names = [("left", "right"), ("bottom", "top"), ("front", "back")]
+    x = mesh.facet_midpoints()
+    for axis in range(mesh.dim):
+        for side, value in zip(names[axis], (lower[axis], upper[axis])):
+            mask = np.abs(x[axis] - value) <= tol
+            if mask.any():
+                mesh.set_facet_tag(side, np.flatnonzero(mask))
+    mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
+    return mesh
+
+
+def _grid_points(counts, lower, upper):
+    axes = [np.linspace(lower[a], upper[a], counts[a] + 1) for a in range(len(counts))]
+    grids = np.meshgrid(*axes, indexing="ij")
+    # x fastest: transpose so that the flat index is i + (nx+1)*(j + (ny+1)*k)
+    return np.ascontiguousarray(np.stack([g.T.ravel() for g in grids], axis=1))
+
+
+def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0)) -> Mesh:
+    """Rectangle split into ``nx * ny`` squares, two triangles each.
+
+    Every square is cut by its diagonal from the lower-left to the
+    upper-right corner.
+
+    Parameters
+    ----------
+    nx, ny : int
+        Number of squares along x and y.
+    lower, upper : sequence of 2 floats
+        Opposite corners of the rectangle.
+
+    Returns
+    -------
+    Mesh
+        ``(nx+1)(ny+1)`` vertices and ``2 nx ny`` triangles, tagged.
+
+    Examples
+    --------
+    >>> m = structured_triangles(2, 3)
+    >>> m.n_vertices, m.n_cells, len(m.facet_tags["boundary"])
+    (12, 12, 10)
+    """
+    _check_counts("structured_triangles", (nx, ny))
+    lo, hi = _check_box("structured_triangles", lower, upper, 2)
+    pts = _grid_points((nx, ny), lo, hi)
+    i, j = np.meshgrid(np.arange(nx), np.arange(ny), indexing="xy")
+    v00 = (i + (nx + 1) * j).ravel()
+    v10, v01, v11 = v00 + 1, v00 + nx + 1, v00 + nx + 2
+    cells = np.empty((2 * v00.size, 3), dtype=np.int64)
+    cells[0::2] = np.stack([v00, v10, v11], axis=1)
+    cells[1::2] = np.stack([v00, v11, v01], axis=1)
+    mesh = Mesh(pts, cells)
+    return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny))
+
+
+def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.0)) -> Mesh:
+    """Box split into ``nx * ny * nz`` boxes, six conforming tetrahedra each.
+
+    Each box is cut into the six tetrahedra around its main diagonal (Kuhn's
+    subdivision, one tetrahedron per ordering of the axes); neighbouring boxes
+    cut their shared face along the same diagonal, so the mesh is conforming.
+
+    Parameters
+    ----------
+    nx, ny, nz : int
+    lower, upper : sequence of 3 floats
+
+    Returns
+    -------
+    Mesh
+        ``(nx+1)(ny+1)(nz+1)`` vertices and ``6 nx ny nz`` tetrahedra, tagged.
+
+    Examples
+    --------
+    >>> m = structured_tetrahedra(2, 2, 2)
+    >>> m.n_vertices, m.n_cells, round(float(m.cell_volumes.sum()), 12)
+    (27, 48, 1.0)
+    """
+    _check_counts("structured_tetrahedra", (nx, ny, nz))
+    lo, hi = _check_box("structured_tetrahedra", lower, upper, 3)
+    pts = _grid_points((nx, ny, nz), lo, hi)
+    sx, sy = 1, nx + 1
+    sz = (nx + 1) * (ny + 1)
+    k, j, i = np.meshgrid(np.arange(nz), np.arange(ny), np.arange(nx), indexing="ij")
+    v000 = (i * sx + j * sy + k * sz).ravel()
+    step = (sx, sy, sz)
+    # the six axis orderings; odd ones get their last two vertices swapped so
+    # that every tetrahedron is positively oriented
+    perms = [((0, 1, 2), False), ((1, 2, 0), False), ((2, 0, 1), False),
+             ((0, 2, 1), True), ((2, 1, 0), True), ((1, 0, 2), True)]
+    cells = np.empty((6 * v000.size, 4), dtype=np.int64)
+    for t, (p, odd) in enumerate(perms):
+        a = v000 + step[p[0]]
+        b = a + step[p[1]]
+        c = b + step[p[2]]
+        cols = [v000, a, c, b] if odd else [v000, a, b, c]
+        cells[t::6] = np.stack(cols, axis=1)
+    mesh = Mesh(pts, cells)
+    return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny, nz))
+
+
+def l_shaped_triangles(n) -> Mesh:
+    """The L-shaped domain (-1, 1)^2 without the quadrant x > 0, y < 0.
+
+    Structured triangles of size ``1/n`` on each of the three unit squares.
+    Tags: ``"left"`` (x = -1), ``"right"`` (x = 1), ``"bottom"`` (y = -1),
+    ``"top"`` (y = 1), ``"reentrant"`` (the two edges meeting at the
+    re-entrant corner (0, 0)) and ``"boundary"``.
+
+    Examples
+    --------
+    >>> m = l_shaped_triangles(2)
+    >>> round(float(m.cell_volumes.sum()), 12)
+    3.0
+    """
+    _check_counts("l_shaped_triangles", (n,))
+    sq = structured_triangles(2 * n, 2 * n, (-1.0, -1.0), (1.0, 1.0))
+    centroid = sq.points[sq.cells].mean(axis=1)
+    keep = ~((centroid[:, 0] > 0) & (centroid[:, 1] < 0))
+    pts, cells, _ = remove_unreferenced_vertices(sq.points, sq.cells[keep])
+    mesh = Mesh(pts, cells)
+    x = mesh.facet_midpoints()
+    tol = 1e-8 / n
+    sides = {
+        "left": np.abs(x[0] + 1) <= tol,
+        "right": np.abs(x[0] - 1) <= tol,
+        "bottom": np.abs(x[1] + 1) <= tol,
+        "top": np.abs(x[1] - 1) <= tol,
+    }
+    sides["reentrant"] = ~(sides["left"] | sides["right"] | sides["bottom"] | sides["top"])
+    for name, mask in sides.items():
+        mesh.set_facet_tag(name, np.flatnonzero(mask))
+    mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
+    return mesh

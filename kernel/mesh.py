@@ -1,0 +1,441 @@
+"""The simplex mesh: validated points and cells, boundary facets and tags.
+
+A :class:`Mesh` holds triangles in 2D or tetrahedra in 3D.  Construction
+validates everything a compiled kernel will later trust (shapes, dtypes,
+index ranges, finite coordinates, non-degenerate cells, every vertex used),
+and re-orients negatively oriented cells so that every cell has a positive
+Jacobian determinant.  Arrays are stored C-contiguous and read-only: points
+as float64, cells as int32 (int64 only for meshes beyond 2**31 vertices).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cached_property
+
+import numba as nb
+import numpy as np
+
+from .elements import REFERENCE_FACETS
+from .errors import MeshError
+from .topology import enumerate_entities, index_dtype
+
+__all__ = ["Mesh", "MeshQuality", "remove_unreferenced_vertices", "DEGENERACY_TOLERANCE"]
+
+#: a cell is degenerate when |volume| <= tol * (longest edge)**d.
+DEGENERACY_TOLERANCE = 1e-12
+
+
+@nb.njit(cache=True, parallel=True)
+def _geometry(points, cells, volume, scale):
+    """Signed volume and longest edge of every cell."""
+    m = cells.shape[0]
+    d = points.shape[1]
+    for c in nb.prange(m):
+        longest = 0.0
+        for i in range(d + 1):
+            for j in range(i + 1, d + 1):
+                s = 0.0
+                for r in range(d):
+                    t = points[cells[c, j], r] - points[cells[c, i], r]
+                    s += t * t
+                if s > longest:
+                    longest = s
+        scale[c] = np.sqrt(longest)
+        p0 = cells[c, 0]
+        if d == 2:
+            ax = points[cells[c, 1], 0] - points[p0, 0]
+            ay = points[cells[c, 1], 1] - points[p0, 1]
+            bx = points[cells[c, 2], 0] - points[p0, 0]
+            by = points[cells[c, 2], 1] - points[p0, 1]
+            volume[c] = 0.5 * (ax * by - ay * bx)
+        else:
+            a0 = points[cells[c, 1], 0] - points[p0, 0]
+            a1 = points[cells[c, 1], 1] - points[p0, 1]
+            a2 = points[cells[c, 1], 2] - points[p0, 2]
+            b0 = points[cells[c, 2], 0] - points[p0, 0]
+            b1 = points[cells[c, 2], 1] - points[p0, 1]
+            b2 = points[cells[c, 2], 2] - points[p0, 2]
+            c0 = points[cells[c, 3], 0] - points[p0, 0]
+            c1 = points[cells[c, 3], 1] - points[p0, 1]
+            c2 = points[cells[c, 3], 2] - points[p0, 2]
+            volume[c] = (a0 * (b1 * c2 - b2 * c1) - a1 * (b0 * c2 - b2 * c0)
+                         + a2 * (b0 * c1 - b1 * c0)) / 6.0
+
+
+@nb.njit(cache=True, parallel=True)
+def _shape_quality(points, cells, volume, out):
+    """Mean-ratio quality: 1 for the equilateral simplex, -> 0 when flat."""
+    m = cells.shape[0]
+    d = points.shape[1]
+    for c in nb.prange(m):
+        s = 0.0
+        for i in range(d + 1):
+            for j in range(i + 1, d + 1):
+                for r in range(d):
+                    t = points[cells[c, j], r] - points[cells[c, i], r]
+                    s += t * t
+        v = abs(volume[c])
+        if d == 2:
+            out[c] = 4.0 * np.sqrt(3.0) * v / s
+        else:
+            out[c] = 12.0 * (3.0 * v) ** (2.0 / 3.0) / s
+
+
+@nb.njit(cache=True)
+def _check_cells(cells, n_vertices):
+    """First cell with an index out of range (code 1) or a repeated vertex (2)."""
+    first = -1
+    code = 0
+    count = 0
+    m, k = cells.shape
+    for c in range(m):
+        bad = 0
+        for i in range(k):
+            v = cells[c, i]
+            if v < 0 or v >= n_vertices:
+                bad = 1
+                break
+            for j in range(i):
+                if cells[c, j] == v:
+                    bad = 2
+        if bad:
+            count += 1
+            if first < 0:
+                first = c
+                code = bad
+    return first, code, count
+
+
+@dataclass(frozen=True)
+class MeshQuality:
+    """Summary of cell sizes and shapes (see :meth:`Mesh.quality`).
+
+    ``min_shape_quality`` is the mean-ratio measure: 1 for an equilateral
+    triangle / regular tetrahedron, tending to 0 for flat cells.
+    """
+
+    n_vertices: int
+    n_cells: int
+    n_boundary_facets: int
+    n_reoriented: int
+    min_volume: float
+    max_volume: float
+    volume_ratio: float
+    min_shape_quality: float
+    mean_shape_quality: float
+    max_shape_quality: float
+
+
+def _as_points(points):
+    try:
+        p = np.asarray(points)
+    except Exception as exc:  # ragged lists and the like
+        raise MeshError(f"mesh points: cannot be read as an array ({exc})") from None
+    if p.ndim != 2 or p.shape[1] not in (2, 3):
+        raise MeshError(
+            f"mesh points must have shape (n_vertices, 2) or (n_vertices, 3), got {p.shape}"
+        )
+    if not (np.issubdtype(p.dtype, np.floating) or np.issubdtype(p.dtype, np.integer)):
+        raise MeshError(f"mesh points must be real numbers, got dtype {p.dtype}")
+    p = np.ascontiguousarray(p, dtype=np.float64)
+    bad = ~np.isfinite(p).all(axis=1)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise MeshError(
+            f"mesh points: vertex {i} has a non-finite coordinate {p[i].tolist()} "
+            f"({int(bad.sum())} such vertices); fix the coordinates"
+        )
+    return p
+
+
+def _as_cells(cells, n_vertices, dim):
+    try:
+        c = np.asarray(cells)
+    except Exception as exc:
+        raise MeshError(f"mesh cells: cannot be read as an array ({exc})") from None
+    if c.ndim != 2 or c.shape[1] != dim + 1:
+        kind = "triangles (m, 3)" if dim == 2 else "tetrahedra (m, 4)"
+        raise MeshError(
+            f"mesh cells must be {kind} for {dim}D points, got shape {c.shape}"
+        )
+    if c.shape[0] == 0:
+        raise MeshError("mesh cells: the mesh has no cells")
+    if not np.issubdtype(c.dtype, np.integer):
+        raise MeshError(
+            f"mesh cells must be an integer array (vertex indices), got dtype {c.dtype}; "
+            "convert with cells.astype(np.int64) if the values are whole numbers"
+        )
+    c = np.ascontiguousarray(c)
+    if c.dtype.kind == "u" and c.dtype.itemsize >= 8:
+        c = c.astype(np.int64)  # values beyond int64 are caught below
+    c64 = c if c.dtype.itemsize <= 8 else c.astype(np.int64)
+    first, code, count = _check_cells(c64, n_vertices)
+    if first >= 0:
+        i = int(first)
+        if code == 1:
+            raise MeshError(
+                f"mesh cells: cell {i} has vertex indices {c[i].tolist()} outside "
+                f"0..{n_vertices - 1} ({int(count)} such cells)"
+            )
+        raise MeshError(
+            f"mesh cells: cell {i} repeats a vertex {c[i].tolist()} "
+            f"({int(count)} such cells); each cell needs {dim + 1} distinct vertices"
+        )
+    return np.array(c, dtype=index_dtype(n_vertices), order="C", copy=True)
+
+
+def remove_unreferenced_vertices(points, cells):
+    """Drop vertices that no cell uses.
+
+    Returns
+    -------
+    points : ndarray, shape (n_used, d)
+    cells : ndarray, shape (m, d + 1), renumbered
+    old_to_new : ndarray, shape (n,), int64, -1 for dropped vertices
+    """
+    points = np.asarray(points)
+    cells = np.asarray(cells)
+    used = np.zeros(points.shape[0], dtype=bool)
+    used[cells.ravel()] = True
+    old_to_new = np.full(points.shape[0], -1, dtype=np.int64)
+    old_to_new[used] = np.arange(int(used.sum()))
+    return points[used], old_to_new[cells], old_to_new
+
+
+class Mesh:
+    """A validated triangle (2D) or tetrahedron (3D) mesh.
+
+    Parameters
+    ----------
+    points : array_like, shape (n_vertices, d), d in {2, 3}
+        Vertex coordinates (converted to float64).
+    cells : array_like, shape (n_cells, d + 1), integer
+        Vertex indices of each cell.  Negatively oriented cells are
+        re-oriented (two vertices swapped) and counted in ``n_reoriented``.
+    facet_tags : dict, optional
+        ``name -> boundary facet ids`` to start with.
+
+    Raises
+    ------
+    MeshError
+        Wrong shape or dtype, an index out of range, a non-finite coordinate,
+        a cell repeating a vertex, a degenerate cell (|volume| below
+        ``DEGENERACY_TOLERANCE * longest_edge**d``), a vertex no cell uses,
+        or a facet shared by more than two cells.  The message names the
+        first offending vertex or cell.
+
+    Examples
+    --------
+    >>> m = Mesh([[0, 0], [1, 0], [0, 1], [1, 1]], [[0, 1, 2], [1, 3, 2]])
+    >>> m.dim, m.cell_type, m.n_cells, float(m.cell_volumes.sum())
+    (2, 'triangle', 2, 1.0)
+    >>> m.boundary_facets.shape
+    (4, 2)
+    """
+
+    def __init__(self, points, cells, *, facet_tags=None):
+        p = _as_points(points)
+        n, d = p.shape
+        c = _as_cells(cells, n, d)
+        used = np.bincount(c.ravel(), minlength=n)
+        if (used == 0).any():
+            i = int(np.flatnonzero(used == 0)[0])
+            raise MeshError(
+                f"mesh: vertex {i} belongs to no cell ({int((used == 0).sum())} such "
+                "vertices); they would make the matrices singular. Remove them with "
+                "galerkit.mesh.remove_unreferenced_vertices(points, cells)"
+            )
+        vol = np.empty(c.shape[0])
+        scale = np.empty(c.shape[0])
+        _geometry(p, c, vol, scale)
+        degenerate = np.abs(vol) <= DEGENERACY_TOLERANCE * scale**d
+        if degenerate.any():
+            i = int(np.flatnonzero(degenerate)[0])
+            raise MeshError(
+                f"mesh: cell {i} (vertices {c[i].tolist()}) is degenerate: volume "
+                f"{vol[i]:.3e} for longest edge {scale[i]:.3e} "
+                f"({int(degenerate.sum())} such cells); remove or repair them"
+            )
+        neg = vol < 0
+        self.n_reoriented = int(neg.sum())
+        if self.n_reoriented:
+            # swapping the last two vertices flips the orientation
+            c[neg, d - 1], c[neg, d] = c[neg, d].copy(), c[neg, d - 1].copy()
+            vol = np.abs(vol)
+        p.flags.writeable = False
+        c.flags.writeable = False
+        vol.flags.writeable = False
+        self.points = p
+        self.cells = c
+        self.cell_volumes = vol
+        self.facet_tags = {}
+        # hierarchy, filled in by refine_uniform
+        self.parent = None
+        self.parent_cells = None
+        self.vertex_parents = None
+        self.refinement_cells = None
+        _ = self._facet_topology  # validates manifoldness
+        if facet_tags:
+            for name, ids in facet_tags.items():
+                self.set_facet_tag(name, ids)
+
+    # -- basic properties ----------------------------------------------------
+    @property
+    def dim(self) -> int:
+        return self.points.shape[1]
+
+    @property
+    def cell_type(self) -> str:
+        return "triangle" if self.dim == 2 else "tetrahedron"
+
+    @property
+    def n_cells(self) -> int:
+        return self.cells.shape[0]
+
+    @property
+    def n_vertices(self) -> int:
+        return self.points.shape[0]
+
+    def __repr__(self) -> str:
+        return (f"Mesh({self.n_vertices} vertices, {self.n_cells} {self.cell_type}s, "
+                f"tags {sorted(self.facet_tags)})")
+
+    # -- topology -------------------------------------------------------------
+    @cached_property
+    def _facet_topology(self):
+        local = np.array(REFERENCE_FACETS[self.dim], dtype=np.int64)
+        ent, cell_ent, mult, first = enumerate_entities(self.cells, local, self.n_vertices)
+        if (mult > 2).any():
+            i = int(np.flatnonzero(mult > 2)[0])
+            raise MeshError(
+                f"mesh: facet with vertices {ent[i].tolist()} is shared by {int(mult[i])} "
+                "cells (non-manifold); each facet may belong to one or two cells"
+            )
+        bnd = np.flatnonzero(mult == 1)
+        facets = np.ascontiguousarray(ent[bnd])
+        nf = local.shape[0]
+        fcell = (first[bnd] // nf).astype(index_dtype(self.n_cells))
+        flocal = (first[bnd] % nf).astype(np.int8)
+        for a in (facets, fcell, flocal):
+            a.flags.writeable = False
+        return facets, fcell, flocal, int(ent.shape[0])
+
+    @property
+    def boundary_facets(self) -> np.ndarray:
+        """Boundary facets, shape (k, d): sorted vertex ids of each facet."""
+        return self._facet_topology[0]
+
+    @property
+    def boundary_facet_cells(self) -> np.ndarray:
+        """Cell owning each boundary facet, shape (k,)."""
+        return self._facet_topology[1]
+
+    @property
+    def boundary_facet_local(self) -> np.ndarray:
+        """Local facet index (opposite local vertex) of each boundary facet, (k,)."""
+        return self._facet_topology[2]
+
+    @property
+    def n_facets(self) -> int:
+        """Number of distinct facets, interior and boundary."""
+        return self._facet_topology[3]
+
+    def facet_midpoints(self, facet_ids=None) -> np.ndarray:
+        """Midpoints of boundary facets, shape (dim, k)."""
+        f = self.boundary_facets if facet_ids is None else self.boundary_facets[facet_ids]
+        return np.ascontiguousarray(self.points[f].mean(axis=1).T)
+
+    # -- tags -------------------------------------------------------------------
+    def set_facet_tag(self, name: str, facet_ids) -> np.ndarray:
+        """Tag boundary facets by id (indices into ``boundary_facets``)."""
+        if not isinstance(name, str) or not name:
+            raise MeshError(f"facet tag names must be non-empty strings, got {name!r}")
+        ids = np.asarray(facet_ids)
+        if ids.ndim != 1 or not (np.issubdtype(ids.dtype, np.integer) or ids.size == 0):
+            raise MeshError(f"facet tag {name!r}: ids must be a 1D integer array")
+        k = self.boundary_facets.shape[0]
+        if ids.size and (ids.min() < 0 or ids.max() >= k):
+            bad = int(ids[(ids < 0) | (ids >= k)][0])
+            raise MeshError(
+                f"facet tag {name!r}: facet id {bad} is outside 0..{k - 1} "
+                "(ids index mesh.boundary_facets)"
+            )
+        ids = np.unique(ids).astype(np.int64)
+        ids.flags.writeable = False
+        self.facet_tags[name] = ids
+        return ids
+
+    def tag_boundary(self, name: str, predicate) -> np.ndarray:
+        """Tag the boundary facets whose midpoints satisfy ``predicate``.
+
+        Parameters
+        ----------
+        name : str
+            Tag name; an existing tag of that name is replaced.
+        predicate : callable
+            ``predicate(x)`` with ``x`` of shape (dim, k), the facet midpoints,
+            returns a boolean mask of shape (k,).
+
+        Returns
+        -------
+        ndarray of int64
+            The tagged facet ids.
+
+        Raises
+        ------
+        MeshError
+            If the predicate returns the wrong shape or selects no facet.
+
+        Examples
+        --------
+        >>> from galerkit import structured_triangles
+        >>> m = structured_triangles(4, 4)
+        >>> len(m.tag_boundary("outlet", lambda x: x[0] > 1 - 1e-12))
+        4
+        """
+        x = self.facet_midpoints()
+        mask = np.asarray(predicate(x))
+        if mask.shape != (x.shape[1],) or mask.dtype != bool:
+            raise MeshError(
+                f"tag_boundary({name!r}): the predicate must return a boolean array of "
+                f"shape ({x.shape[1]},), got dtype {mask.dtype} shape {mask.shape}"
+            )
+        if not mask.any():
+            raise MeshError(
+                f"tag_boundary({name!r}): the predicate selects no boundary facet; "
+                "check it against mesh.facet_midpoints() (allow a tolerance)"
+            )
+        return self.set_facet_tag(name, np.flatnonzero(mask))
+
+    def tagged_facets(self, tag: str) -> np.ndarray:
+        """Facet ids of ``tag``; a clear error naming the known tags if missing."""
+        if tag not in self.facet_tags:
+            raise MeshError(
+                f"mesh has no facet tag {tag!r}; known tags: {sorted(self.facet_tags)}"
+            )
+        return self.facet_tags[tag]
+
+    # -- quality ---------------------------------------------------------------
+    def cell_quality(self) -> np.ndarray:
+        """Mean-ratio shape quality of every cell, shape (n_cells,), in (0, 1]."""
+        q = np.empty(self.n_cells)
+        _shape_quality(self.points, self.cells, self.cell_volumes, q)
+        return q
+
+    def quality(self) -> MeshQuality:
+        """Counts, volume range and shape-quality range of the mesh."""
+        q = self.cell_quality()
+        v = self.cell_volumes
+        return MeshQuality(
+            n_vertices=self.n_vertices,
+            n_cells=self.n_cells,
+            n_boundary_facets=int(self.boundary_facets.shape[0]),
+            n_reoriented=self.n_reoriented,
+            min_volume=float(v.min()),
+            max_volume=float(v.max()),
+            volume_ratio=float(v.max() / v.min()),
+            min_shape_quality=float(q.min()),
+            mean_shape_quality=float(q.mean()),
+            max_shape_quality=float(q.max()),
+        )

@@ -1,0 +1,1135 @@
+"""Linear solvers for symmetric positive definite (SPD) sparse systems.
+
+The systems are stiffness matrices after Dirichlet elimination: SciPy sparse,
+square, real, symmetric and positive definite.  Solvers live in one registry,
+looked up by name; adding one is one factory function and one
+:func:`register_solver` line.
+
+A *factory* is called as ``factory(A, **options)`` with a validated CSR
+float64 matrix and returns an object with a method
+``solve(b, x0=None, rtol=1e-10, maxiter=None, callback=None)`` that returns a
+:class:`SolveReport`.  :func:`prepare_solver` runs the factory once (the
+expensive set-up: a factorisation, a multigrid hierarchy) and hands back a
+:class:`PreparedSolver` to reuse for every right-hand side; :func:`solve` is
+the one-call path.
+
+Built-in solvers
+----------------
+==============  ============================================================
+name            method
+==============  ============================================================
+``direct``      sparse LU (SciPy ``splu``, SuperLU) with a fill-reducing
+                ordering; factorised once in set-up, reused for every b
+``cg``          conjugate gradients, no preconditioner
+``cg-jacobi``   conjugate gradients preconditioned by the inverse diagonal
+``cg-amg``      conjugate gradients preconditioned by one V-cycle of a
+                PyAMG smoothed-aggregation hierarchy (built once in set-up)
+==============  ============================================================
+
+The three CG methods share one preconditioned CG loop.  It stops when the
+residual of the CG recurrence satisfies ``||r_k|| <= rtol * ||b||`` and then
+checks the true residual ``b - A x_k`` (restarting from it a few times when
+rounding made the two drift apart); the last entry of the residual history is
+always the true relative residual.  Non-convergence and breakdown
+(``p.Ap <= 0``: the matrix is not SPD) are reported in the
+:class:`SolveReport`, never raised.
+
+The ``"auto"`` rule
+-------------------
+:func:`choose_method` picks ``"direct"`` while the system is small enough that
+the fill of the sparse LU factors stays cheap, and ``"cg-amg"`` beyond.  Fill
+grows much faster in 3D than in 2D, and with the element degree (more
+couplings per row), so the threshold depends on both (``degree`` defaults to
+1; an unknown dimension is treated as 3D, the conservative case):
+
+=============  =====================================
+dimension      ``"direct"`` when
+=============  =====================================
+1              ``n <= 2_000_000 / degree``
+2              ``n <= 200_000 / degree``
+3 or unknown   ``n <= 40_000 / degree``
+=============  =====================================
+
+otherwise ``"cg-amg"``.  The numbers are rules of thumb for one workstation
+(a few seconds of factorisation and well under a gigabyte of factors), not
+measured optima.
+
+Memory guard of ``"direct"``
+----------------------------
+Before factorising, ``"direct"`` estimates the memory of the LU factors with
+a crude 3D-like fill model (with a nested-dissection ordering the fill of a 3D
+grid matrix grows like ``n**(4/3)``; Lipton, Rose & Tarjan, Generalized nested
+dissection, 1979, recalled from memory; minimum-degree orderings behave
+similarly up to a constant)::
+
+    nnz(L + U) ~ max(2 * nnz(A), 2 * (nnz(A) / n) * n**(4/3))
+    bytes      ~ 16 * nnz(L + U)        (8 value + 4 index + working space)
+
+and raises :class:`~galerkit.errors.ResourceError` when that exceeds the limit:
+the option ``memory_limit_bytes`` when given, else the memory currently
+available (``MemAvailable`` of ``/proc/meminfo``, else the physical memory
+from ``os.sysconf``; no check when neither can be read).  For 2D matrices the
+model overestimates (2D fill grows like ``n log n``), so a large 2D system may
+be refused although it would fit; pass a larger ``memory_limit_bytes`` to try.
+"""
+
+from __future__ import annotations
+
+import inspect
+import math
+import numbers
+import os
+import time
+from dataclasses import dataclass, field, replace
+from typing import Any, Callable
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+from .errors import GalerkitError, InputError, ResourceError, SolverError
+
+__all__ = [
+    "SolveReport",
+    "PreparedSolver",
+    "register_solver",
+    "available_solvers",
+    "solver_description",
+    "unregister_solver",
+    "prepare_solver",
+    "solve",
+    "choose_method",
+    "AUTO_DIRECT_LIMITS",
+]
+
+#: ``"auto"`` picks ``"direct"`` when ``n <= AUTO_DIRECT_LIMITS[dim] / degree``.
+#: The key ``None`` (unknown dimension) uses the 3D value.
+AUTO_DIRECT_LIMITS = {1: 2_000_000, 2: 200_000, 3: 40_000, None: 40_000}
+
+#: Fill-reducing column orderings SuperLU accepts (``permc_spec`` of ``splu``).
+_ORDERINGS = ("MMD_AT_PLUS_A", "MMD_ATA", "COLAMD", "NATURAL")
+
+#: Restarts from the true residual when the CG recurrence drifted from it.
+_MAX_TRUE_RESIDUAL_RESTARTS = 3
+
+
+# --------------------------------------------------------------------------
+# report
+# --------------------------------------------------------------------------
+
+
+@dataclass
+class SolveReport:
+    """The outcome of one linear solve.
+
+    Attributes
+    ----------
+    x : ndarray, shape (n,), float64
+        The computed solution.
+    converged : bool
+        True when the final true relative residual is ``<= rtol`` (and no
+        breakdown happened).
+    iterations : int
+        CG iterations taken; 1 for ``"direct"``; 0 when ``b == 0``.
+    residuals : ndarray, shape (iterations + 1,), float64
+        Relative residual norms ``||b - A x_k|| / ||b||``; entry 0 belongs to
+        the initial guess (1.0 for ``x0=None``).  CG methods record the
+        recurrence residual and replace the last entry by the true residual.
+        ``"direct"`` has a single entry: the true relative residual.
+        ``b == 0`` gives ``[0.0]``.
+    setup_seconds : float
+        Wall time of the set-up (factory call) of the prepared solver, shared
+        by every report of that solver.
+    solve_seconds : float
+        Wall time of this solve.
+    method : str
+        The registry name actually used (never ``"auto"``).
+    options : dict
+        The options used: set-up options with their defaults filled in, the
+        tolerance and iteration limit, and facts of the set-up (for
+        ``"cg-amg"`` the levels and operator complexity of the hierarchy).
+    message : str
+        Empty when converged; otherwise what happened and what to try.
+    """
+
+    x: np.ndarray
+    converged: bool
+    iterations: int
+    residuals: np.ndarray
+    setup_seconds: float = 0.0
+    solve_seconds: float = 0.0
+    method: str = ""
+    options: dict = field(default_factory=dict)
+    message: str = ""
+
+    @property
+    def final_residual(self) -> float:
+        """The last relative residual norm, ``residuals[-1]`` (a float)."""
+        return float(self.residuals[-1])
+
+
+# --------------------------------------------------------------------------
+# registry
+# --------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Entry:
+    factory: Callable[..., Any]
+    description: str
+
+
+_REGISTRY: dict[str, _Entry] = {}
+
+
+def register_solver(
+    name: str,
+    factory: Callable[..., Any],
+    *,
+    description: str = "",
+    overwrite: bool = False,
+) -> None:
+    """Add a linear solver to the registry under ``name``.
+
+    Parameters
+    ----------
+    name : str
+        Registry name, a non-empty string other than ``"auto"``.
+    factory : callable
+        Called as ``factory(A, **options)`` with a validated square CSR
+        float64 matrix ``A``; returns an object with a method
+        ``solve(b, x0=None, rtol=1e-10, maxiter=None, callback=None)`` that
+        returns a :class:`SolveReport`.  When the factory takes no
+        ``**kwargs``, options it does not name are refused with an
+        :class:`~galerkit.errors.InputError` before it is called.
+    description : str, optional
+        One line shown by :func:`solver_description`.
+    overwrite : bool, optional
+        Replace an existing entry of the same name (default False).
+
+    Raises
+    ------
+    InputError
+        If ``name`` is not a non-empty string, is ``"auto"``, is already
+        registered and ``overwrite`` is False, or ``factory`` is not callable.
+
+    Examples
+    --------
+    A prepared solver is itself a valid solver object, so a factory may wrap
+    an existing method:
+
+    >>> from galerkit.solvers import (register_solver, unregister_solver,
+    ...                               available_solvers, prepare_solver)
+    >>> register_solver("lu-again", lambda A: prepare_solver(A, "direct"),
+    ...                 description="the direct solver under a second name")
+    >>> "lu-again" in available_solvers()
+    True
+    >>> unregister_solver("lu-again")
+    """
+    if not isinstance(name, str) or not name.strip():
+        raise InputError(
+            f"register_solver: the name must be a non-empty string, got {name!r}; "
+            "pass a plain name such as 'my-solver'"
+        )
+    if name == "auto":
+        raise InputError(
+            "register_solver: 'auto' is reserved for the automatic choice "
+            "(see choose_method); pick another name"
+        )
+    if not callable(factory):
+        raise InputError(
+            f"register_solver: the factory for {name!r} must be callable as "
+            f"factory(A, **options), got {type(factory).__name__}"
+        )
+    if name in _REGISTRY and not overwrite:
+        raise InputError(
+            f"register_solver: a solver named {name!r} is already registered; "
+            "pass overwrite=True to replace it, or choose another name"
+        )
+    _REGISTRY[name] = _Entry(factory=factory, description=str(description))
+
+
+def unregister_solver(name: str) -> None:
+    """Remove a solver from the registry (built-ins included).
+
+    Parameters
+    ----------
+    name : str
+        A registered name.
+
+    Raises
+    ------
+    InputError
+        If ``name`` is not registered.
+
+    Examples
+    --------
+    >>> from galerkit.solvers import register_solver, unregister_solver, solve
+    >>> register_solver("scratch", lambda A: prepare_solver(A, "cg"))
+    >>> unregister_solver("scratch")
+    >>> "scratch" in available_solvers()
+    False
+    """
+    _lookup(name, "unregister_solver")
+    del _REGISTRY[name]
+
+
+def available_solvers() -> list[str]:
+    """Sorted names of the registered solvers.
+
+    Returns
+    -------
+    list of str
+        The names accepted by ``method=`` (besides ``"auto"``).
+
+    Examples
+    --------
+    >>> from galerkit.solvers import available_solvers
+    >>> [m for m in available_solvers() if m in ("cg", "cg-amg", "cg-jacobi", "direct")]
+    ['cg', 'cg-amg', 'cg-jacobi', 'direct']
+    """
+    return sorted(_REGISTRY)
+
+
+def solver_description(name: str) -> str:
+    """The one-line description a solver was registered with.
+
+    Parameters
+    ----------
+    name : str
+        A registered name.
+
+    Returns
+    -------
+    str
+        Its description (may be empty).
+
+    Raises
+    ------
+    InputError
+        If ``name`` is not registered.
+
+    Examples
+    --------
+    >>> from galerkit.solvers import solver_description
+    >>> solver_description("cg").startswith("conjugate gradients")
+    True
+    """
+    return _lookup(name, "solver_description").description
+
+
+def _lookup(name: Any, where: str) -> _Entry:
+    entry = _REGISTRY.get(name) if isinstance(name, str) else None
+    if entry is None:
+        raise InputError(
+            f"{where}: unknown solver method {name!r}; available: "
+            f"{', '.join(available_solvers())} (or 'auto'); "
+            "add new ones with register_solver"
+        )
+    return entry
+
+
+# --------------------------------------------------------------------------
+# the auto rule
+# --------------------------------------------------------------------------
+
+
+def choose_method(n: int, dim: int | None = None, degree: int | None = None) -> str:
+    """The registry name ``method="auto"`` resolves to.
+
+    ``"direct"`` when ``n <= AUTO_DIRECT_LIMITS[dim] / degree`` (the table in
+    the module docstring: 2D 200 000, 3D or unknown 40 000, 1D 2 000 000,
+    each divided by the degree), else ``"cg-amg"``.
+
+    Parameters
+    ----------
+    n : int
+        Number of unknowns, ``n >= 0``.
+    dim : {1, 2, 3, None}, optional
+        Spatial dimension of the mesh; None (unknown) counts as 3.
+    degree : int, optional
+        Lagrange element degree, ``>= 1`` (default 1).
+
+    Returns
+    -------
+    str
+        ``"direct"`` or ``"cg-amg"``.
+
+    Raises
+    ------
+    InputError
+        If ``n``, ``dim`` or ``degree`` is out of range.
+
+    Examples
+    --------
+    >>> from galerkit.solvers import choose_method
+    >>> choose_method(10_000, dim=2), choose_method(1_000_000, dim=2)
+    ('direct', 'cg-amg')
+    >>> choose_method(30_000, dim=3, degree=2)
+    'cg-amg'
+    """
+    if isinstance(n, bool) or not isinstance(n, numbers.Integral) or n < 0:
+        raise InputError(f"choose_method: n must be an integer >= 0, got {n!r}")
+    if dim is not None and (isinstance(dim, bool) or dim not in (1, 2, 3)):
+        raise InputError(f"choose_method: dim must be 1, 2, 3 or None, got {dim!r}")
+    if degree is None:
+        degree = 1
+    if isinstance(degree, bool) or not isinstance(degree, numbers.Integral) or degree < 1:
+        raise InputError(
+            f"choose_method: degree must be an integer >= 1 (or None for 1), got {degree!r}"
+        )
+    limit = AUTO_DIRECT_LIMITS[None if dim is None else int(dim)] / int(degree)
+    return "direct" if n <= limit else "cg-amg"
+
+
+# --------------------------------------------------------------------------
+# validation
+# --------------------------------------------------------------------------
+
+
+def _validate_matrix(A: Any, where: str) -> sp.sparray | sp.spmatrix:
+    """Square, real, finite SciPy sparse matrix as CSR float64 (no copy if already)."""
+    if not sp.issparse(A):
+        shape = getattr(A, "shape", None)
+        raise InputError(
+            f"{where}: A must be a SciPy sparse matrix, got {type(A).__name__}"
+            + (f" of shape {shape}" if shape is not None else "")
+            + "; convert it with scipy.sparse.csr_array(A)"
+        )
+    if A.ndim != 2 or A.shape[0] != A.shape[1]:
+        raise InputError(
+            f"{where}: A must be square, got shape {A.shape}; a stiffness "
+            "matrix after Dirichlet elimination has as many rows as columns"
+        )
+    if A.shape[0] == 0:
+        raise InputError(f"{where}: A has shape {A.shape}: there is nothing to solve")
+    if A.dtype.kind not in "iuf":
+        raise InputError(
+            f"{where}: A has dtype {A.dtype}; the solvers need real entries "
+            "(float64); complex and non-numeric matrices are not supported"
+        )
+    A = A.tocsr()
+    if A.dtype != np.float64:
+        A = A.astype(np.float64)
+    bad = np.flatnonzero(~np.isfinite(A.data))
+    if bad.size:
+        k = int(bad[0])
+        row = int(np.searchsorted(A.indptr, k, side="right") - 1)
+        col = int(A.indices[k])
+        raise InputError(
+            f"{where}: A has {bad.size} non-finite entries, the first at "
+            f"(row {row}, column {col}) = {A.data[k]!r}; check the coefficients "
+            "and the assembly that produced A"
+        )
+    return A
+
+
+def _validate_vector(v: Any, n: int, name: str, where: str) -> np.ndarray:
+    """1-D finite float64 array of length n."""
+    if sp.issparse(v):
+        raise InputError(
+            f"{where}: {name} must be a dense 1-D array of length {n}, got a "
+            f"sparse matrix of shape {v.shape}; pass {name}.toarray().ravel()"
+        )
+    arr = np.asarray(v)
+    if arr.dtype.kind not in "iuf":
+        raise InputError(
+            f"{where}: {name} has dtype {arr.dtype}; it must be a real array of "
+            f"length {n} (float64)"
+        )
+    if arr.shape != (n,):
+        hint = f"; pass {name}.ravel()" if arr.size == n else ""
+        raise InputError(
+            f"{where}: {name} must have shape ({n},) to match A of shape "
+            f"({n}, {n}), got shape {arr.shape}{hint}"
+        )
+    arr = np.ascontiguousarray(arr, dtype=np.float64)
+    bad = np.flatnonzero(~np.isfinite(arr))
+    if bad.size:
+        i = int(bad[0])
+        raise InputError(
+            f"{where}: {name} has {bad.size} non-finite entries, the first at "
+            f"index {i} ({name}[{i}] = {arr[i]!r}); check the load vector and "
+            "boundary data"
+        )
+    return arr
+
+
+def _validate_solve_args(rtol: Any, maxiter: Any, callback: Any, where: str) -> tuple:
+    if isinstance(rtol, bool) or not isinstance(rtol, numbers.Real) or not (
+        math.isfinite(rtol) and rtol > 0
+    ):
+        raise InputError(f"{where}: rtol must be a finite number > 0, got {rtol!r}")
+    if maxiter is not None and (
+        isinstance(maxiter, bool) or not isinstance(maxiter, numbers.Integral) or maxiter < 0
+    ):
+        raise InputError(
+            f"{where}: maxiter must be an integer >= 0 or None (the method's "
+            f"default), got {maxiter!r}"
+        )
+    if callback is not None and not callable(callback):
+        raise InputError(
+            f"{where}: callback must be callable as callback(xk) or None, got "
+            f"{type(callback).__name__}"
+        )
+    return float(rtol), (None if maxiter is None else int(maxiter))
+
+
+def _check_options(name: str, factory: Callable, options: dict, where: str) -> None:
+    """Refuse options the factory does not name (unless it takes **kwargs)."""
+    try:
+        params = list(inspect.signature(factory).parameters.values())
+    except (TypeError, ValueError):  # signature not introspectable: let it decide
+        return
+    if any(p.kind is p.VAR_KEYWORD for p in params):
+        return
+    valid = [
+        p.name
+        for p in params[1:]
+        if p.kind in (p.POSITIONAL_OR_KEYWORD, p.KEYWORD_ONLY)
+    ]
+    unknown = [k for k in options if k not in valid]
+    if unknown:
+        raise InputError(
+            f"{where}: option {unknown[0]!r} is not known to solver {name!r}; "
+            f"valid options: {', '.join(valid) if valid else '(none)'}"
+        )
+
+
+# --------------------------------------------------------------------------
+# prepared solver, one-call path
+# --------------------------------------------------------------------------
+
+
+class PreparedSolver:
+    """A solver set up for one matrix, reusable for many right-hand sides.
+
+    Made by :func:`prepare_solver`; do not construct directly.
+
+    Attributes
+    ----------
+    method : str
+        The registry name used (never ``"auto"``).
+    n : int
+        Number of unknowns.
+    setup_seconds : float
+        Wall time of the set-up; copied into every report.
+    options : dict
+        The set-up options as passed.
+    """
+
+    def __init__(self, method: str, n: int, backend: Any, setup_seconds: float, options: dict):
+        self.method = method
+        self.n = n
+        self.setup_seconds = setup_seconds
+        self.options = dict(options)
+        self._backend = backend
+
+    def __repr__(self) -> str:
+        return (
+            f"PreparedSolver(method={self.method!r}, n={self.n}, "
+            f"setup_seconds={self.setup_seconds:.3g})"
+        )
+
+    def solve(
+        self,
+        b: Any,
+        x0: Any = None,
+        rtol: float = 1e-10,
+        maxiter: int | None = None,
+        callback: Callable[[np.ndarray], Any] | None = None,
+    ) -> SolveReport:
+        """Solve ``A x = b`` with the prepared set-up.
+
+        Parameters
+        ----------
+        b : array_like, shape (n,)
+            Right-hand side, real and finite.
+        x0 : array_like, shape (n,), optional
+            Initial guess (iterative methods; ``"direct"`` ignores it).
+        rtol : float, optional
+            Relative residual tolerance, ``||b - A x|| <= rtol * ||b||``.
+        maxiter : int, optional
+            Iteration limit; None takes the method's default.
+        callback : callable, optional
+            ``callback(xk)`` after each iteration with a copy of the iterate
+            (``"direct"`` calls it once with the solution).
+
+        Returns
+        -------
+        SolveReport
+            With ``method`` and ``setup_seconds`` of this prepared solver.
+
+        Raises
+        ------
+        InputError
+            If ``b`` or ``x0`` has the wrong shape or non-finite entries, or
+            ``rtol``, ``maxiter`` or ``callback`` is invalid.
+        SolverError
+            If a registered solver returns something other than a
+            :class:`SolveReport`.
+
+        Examples
+        --------
+        >>> import numpy as np, scipy.sparse as sp
+        >>> from galerkit.solvers import prepare_solver
+        >>> A = sp.diags([-1.0, 2.0, -1.0], [-1, 0, 1], shape=(5, 5), format="csr")
+        >>> lu = prepare_solver(A, "direct")
+        >>> r1, r2 = lu.solve(np.ones(5)), lu.solve(np.arange(5.0))
+        >>> r1.converged and r2.converged, r1.setup_seconds == r2.setup_seconds
+        (True, True)
+        """
+        where = f"solve with {self.method!r}"
+        b = _validate_vector(b, self.n, "b", where)
+        if x0 is not None:
+            x0 = _validate_vector(x0, self.n, "x0", where)
+        rtol, maxiter = _validate_solve_args(rtol, maxiter, callback, where)
+        t0 = time.perf_counter()
+        report = self._backend.solve(b, x0=x0, rtol=rtol, maxiter=maxiter, callback=callback)
+        elapsed = time.perf_counter() - t0
+        if not isinstance(report, SolveReport):
+            raise SolverError(
+                f"{where}: the registered solver returned {type(report).__name__}, "
+                "not a SolveReport; fix its solve() method"
+            )
+        return replace(
+            report,
+            method=self.method,
+            setup_seconds=self.setup_seconds,
+            solve_seconds=elapsed,
+        )
+
+
+def prepare_solver(
+    A: Any,
+    method: str = "auto",
+    *,
+    dim: int | None = None,
+    degree: int | None = None,
+    **options: Any,
+) -> PreparedSolver:
+    """Validate ``A`` and set up a solver once, for many right-hand sides.
+
+    Parameters
+    ----------
+    A : scipy.sparse matrix or array, shape (n, n)
+        SPD system matrix, real and finite; converted to CSR float64 when
+        it is not already (the caller's matrix is never modified).
+    method : str, optional
+        A name from :func:`available_solvers`, or ``"auto"`` (default) for
+        :func:`choose_method`.
+    dim, degree : int, optional
+        Mesh dimension and element degree, used only by ``"auto"``.
+    **options
+        Set-up options of the method, e.g. ``memory_limit_bytes`` and
+        ``ordering`` for ``"direct"``, ``amg_options`` for ``"cg-amg"``.
+
+    Returns
+    -------
+    PreparedSolver
+        Holds the set-up (factors, hierarchy) and its wall time.
+
+    Raises
+    ------
+    InputError
+        If ``A`` is not a square real finite SciPy sparse matrix, the method
+        is unknown, or an option is not known to the method.
+    ResourceError
+        If the estimated memory of the set-up exceeds what is available.
+    SolverError
+        If the set-up fails (for example a singular matrix in ``"direct"``).
+
+    Examples
+    --------
+    >>> import numpy as np, scipy.sparse as sp
+    >>> from galerkit.solvers import prepare_solver
+    >>> A = sp.diags([-1.0, 2.0, -1.0], [-1, 0, 1], shape=(50, 50), format="csr")
+    >>> amg = prepare_solver(A, "cg-amg")
+    >>> amg.method, amg.solve(np.ones(50)).converged
+    ('cg-amg', True)
+    >>> prepare_solver(A).method
+    'direct'
+    """
+    where = "prepare_solver"
+    A = _validate_matrix(A, where)
+    n = A.shape[0]
+    name = choose_method(n, dim, degree) if method == "auto" else method
+    entry = _lookup(name, where)
+    if method == "auto":
+        where = f"prepare_solver (method 'auto' chose {name!r} for n={n})"
+    _check_options(name, entry.factory, options, where)
+    t0 = time.perf_counter()
+    try:
+        backend = entry.factory(A, **options)
+    except GalerkitError:
+        raise
+    except MemoryError as exc:
+        raise ResourceError(
+            f"{where}: set-up of solver {name!r} for n={n} ran out of memory; "
+            "try 'cg-amg', which needs far less memory than a factorisation"
+        ) from exc
+    except Exception as exc:
+        raise SolverError(
+            f"{where}: set-up of solver {name!r} for a {n}x{n} matrix with "
+            f"{A.nnz} stored entries failed: {type(exc).__name__}: {exc}; check "
+            "that A is SPD, or try another method"
+        ) from exc
+    setup = time.perf_counter() - t0
+    if not callable(getattr(backend, "solve", None)):
+        raise SolverError(
+            f"{where}: the factory of solver {name!r} returned "
+            f"{type(backend).__name__}, which has no solve() method"
+        )
+    return PreparedSolver(name, n, backend, setup, options)
+
+
+def solve(
+    A: Any,
+    b: Any,
+    method: str = "auto",
+    rtol: float = 1e-10,
+    maxiter: int | None = None,
+    x0: Any = None,
+    *,
+    dim: int | None = None,
+    degree: int | None = None,
+    callback: Callable[[np.ndarray], Any] | None = None,
+    **options: Any,
+) -> SolveReport:
+    """Solve the SPD system ``A x = b`` in one call.
+
+    Same as ``prepare_solver(A, method, dim=dim, degree=degree,
+    **options).solve(b, x0, rtol, maxiter, callback)``; keep a
+    :func:`prepare_solver` object instead when several right-hand sides share
+    ``A``.
+
+    Parameters
+    ----------
+    A : scipy.sparse matrix or array, shape (n, n)
+        SPD matrix, real and finite.
+    b : array_like, shape (n,)
+        Right-hand side, real and finite.
+    method : str, optional
+        Registry name or ``"auto"`` (default, see :func:`choose_method`).
+    rtol : float, optional
+        Relative residual tolerance (default 1e-10).
+    maxiter : int, optional
+        Iteration limit; None takes the method's default (``max(1000, n)``
+        for ``"cg"`` and ``"cg-jacobi"``, 500 for ``"cg-amg"``).
+    x0 : array_like, shape (n,), optional
+        Initial guess for iterative methods.
+    dim, degree : int, optional
+        Used only by ``"auto"``.
+    callback : callable, optional
+        ``callback(xk)`` after each iteration.
+    **options
+        Set-up options of the method.
+
+    Returns
+    -------
+    SolveReport
+        Solution, convergence flag, residual history, timings.
+
+    Raises
+    ------
+    InputError
+        Invalid ``A``, ``b``, ``x0``, method, option or tolerance; a
+        non-finite ``b`` is reported with its first bad index.
+    ResourceError
+        If ``"direct"`` would need more memory than is available.
+    SolverError
+        If the set-up fails.
+
+    Examples
+    --------
+    >>> import numpy as np, scipy.sparse as sp
+    >>> from galerkit.solvers import solve
+    >>> A = sp.diags([-1.0, 2.0, -1.0], [-1, 0, 1], shape=(4, 4), format="csr")
+    >>> rep = solve(A, np.array([1.0, 0.0, 0.0, 1.0]), method="cg")
+    >>> rep.converged, rep.iterations, np.round(rep.x, 12).tolist()
+    (True, 2, [1.0, 1.0, 1.0, 1.0])
+    """
+    return prepare_solver(A, method, dim=dim, degree=degree, **options).solve(
+        b, x0=x0, rtol=rtol, maxiter=maxiter, callback=callback
+    )
+
+
+# --------------------------------------------------------------------------
+# the preconditioned conjugate gradient loop (shared by the CG methods)
+# --------------------------------------------------------------------------
+
+
+def _pcg(
+    A: Any,
+    b: np.ndarray,
+    x0: np.ndarray | None,
+    rtol: float,
+    maxiter: int,
+    precondition: Callable[[np.ndarray], np.ndarray] | None,
+    callback: Callable[[np.ndarray], Any] | None,
+) -> tuple[np.ndarray, list[float], int, str]:
+    """Preconditioned CG (Hestenes & Stiefel 1952; Saad 2003, ch. 9).
+
+    Returns ``(x, history, iterations, breakdown)`` where ``history`` holds
+    relative residual norms (the last one true) and ``breakdown`` is empty
+    unless a curvature ``p.Ap`` or ``r.z`` was not positive.
+    """
+    n = b.shape[0]
+    bnorm = float(np.linalg.norm(b))
+    if bnorm == 0.0:
+        return np.zeros(n), [0.0], 0, ""
+    if x0 is None:
+        x = np.zeros(n)
+        r = b.copy()
+    else:
+        x = x0.copy()
+        r = b - A @ x
+    target = rtol * bnorm
+    rnorm = float(np.linalg.norm(r))
+    history = [rnorm / bnorm]
+    apply = precondition if precondition is not None else (lambda v: v)
+
+    z = apply(r)
+    rz = float(r @ z)
+    p = np.array(z, dtype=np.float64, copy=True)
+    k = 0
+    restarts = 0
+    breakdown = ""
+    true_checked = False
+    while True:
+        if rnorm <= target:
+            r_true = b - A @ x
+            tnorm = float(np.linalg.norm(r_true))
+            history[-1] = tnorm / bnorm
+            true_checked = True
+            if tnorm <= target or k >= maxiter or restarts >= _MAX_TRUE_RESIDUAL_RESTARTS:
+                break
+            # rounding made the recurrence drift: restart from the true residual
+            restarts += 1
+            true_checked = False
+            r, rnorm = r_true, tnorm
+            z = apply(r)
+            rz = float(r @ z)
+            p = np.array(z, dtype=np.float64, copy=True)
+        if k >= maxiter:
+            break
+        if not rz > 0.0:
+            breakdown = (
+                f"at iteration {k + 1} the preconditioned residual gave r.z = {rz:.3e}, "
+                "not > 0, so the preconditioner or the matrix is not symmetric "
+                "positive definite (SPD)"
+            )
+            break
+        q = A @ p
+        pq = float(p @ q)
+        if not pq > 0.0:
+            breakdown = (
+                f"at iteration {k + 1} the search direction gave p.Ap = {pq:.3e}, "
+                "not > 0, so the matrix is not symmetric positive definite (SPD)"
+            )
+            break
+        alpha = rz / pq
+        x += alpha * p
+        r -= alpha * q
+        k += 1
+        true_checked = False
+        rnorm = float(np.linalg.norm(r))
+        history.append(rnorm / bnorm)
+        if callback is not None:
+            callback(x.copy())
+        if rnorm <= target:
+            continue
+        z = apply(r)
+        rz_new = float(r @ z)
+        beta = rz_new / rz
+        rz = rz_new
+        p *= beta
+        p += z
+    if not true_checked:
+        history[-1] = float(np.linalg.norm(b - A @ x)) / bnorm
+    return x, history, k, breakdown
+
+
+class _CGSolver:
+    """Backend of the CG methods: a matrix, a preconditioner, a default maxiter."""
+
+    def __init__(self, A, method, precondition, default_maxiter, options):
+        self.A = A
+        self.method = method
+        self.precondition = precondition
+        self.default_maxiter = default_maxiter
+        self.options = options
+
+    def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
+        if maxiter is None:
+            maxiter = self.default_maxiter
+        t0 = time.perf_counter()
+        x, history, k, breakdown = _pcg(
+            self.A, b, x0, rtol, maxiter, self.precondition, callback
+        )
+        elapsed = time.perf_counter() - t0
+        final = history[-1]
+        converged = not breakdown and final <= rtol
+        if breakdown:
+            message = (
+                f"{self.method}: {breakdown}; stopped after {k} iterations with "
+                f"relative residual {final:.3e} (tolerance rtol={rtol:.1e}). Check "
+                "that Dirichlet conditions were applied and the stiffness matrix "
+                "has the right sign, or use 'direct' for a symmetric indefinite matrix"
+            )
+        elif not converged:
+            message = (
+                f"{self.method}: not converged after {k} iterations: relative "
+                f"residual {final:.3e} is above the tolerance rtol={rtol:.1e}. "
+                f"Try a larger maxiter (was {maxiter}), a looser rtol, or a "
+                "stronger method ('cg-amg' or 'direct')"
+            )
+        else:
+            message = ""
+        return SolveReport(
+            x=x,
+            converged=bool(converged),
+            iterations=int(k),
+            residuals=np.asarray(history, dtype=np.float64),
+            solve_seconds=elapsed,
+            method=self.method,
+            options={**self.options, "rtol": rtol, "maxiter": maxiter},
+            message=message,
+        )
+
+
+# --------------------------------------------------------------------------
+# built-in: direct
+# --------------------------------------------------------------------------
+
+
+def _estimate_lu_bytes(n: int, nnz: int) -> float:
+    """Crude 3D-like estimate of the LU factor memory (see module docstring)."""
+    per_row = nnz / n
+    fill = max(2.0 * nnz, 2.0 * per_row * float(n) ** (4.0 / 3.0))
+    return 16.0 * fill
+
+
+def _available_memory_bytes() -> int | None:
+    """MemAvailable from /proc/meminfo, else physical memory, else None."""
+    try:
+        with open("/proc/meminfo", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    try:
+        return int(os.sysconf("SC_PHYS_PAGES")) * int(os.sysconf("SC_PAGE_SIZE"))
+    except (AttributeError, OSError, ValueError):
+        return None
+
+
+class _DirectSolver:
+    """Backend of "direct": SuperLU factors reused for every right-hand side."""
+
+    def __init__(self, A, lu, options):
+        self.A = A
+        self.lu = lu
+        self.options = options
+
+    def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
+        t0 = time.perf_counter()
+        bnorm = float(np.linalg.norm(b))
+        if bnorm == 0.0:
+            x = np.zeros(b.shape[0])
+            rel = 0.0
+        else:
+            x = np.asarray(self.lu.solve(b), dtype=np.float64)
+            rel = float(np.linalg.norm(b - self.A @ x)) / bnorm
+        if callback is not None:
+            callback(x.copy())
+        elapsed = time.perf_counter() - t0
+        converged = bool(np.isfinite(rel) and rel <= rtol)
+        message = "" if converged else (
+            f"direct: after 1 iteration (LU factorisation and triangular solves) "
+            f"the relative residual {rel:.3e} is above the tolerance "
+            f"rtol={rtol:.1e}; the matrix may be nearly singular or badly "
+            "conditioned: check the Dirichlet conditions, or loosen rtol"
+        )
+        return SolveReport(
+            x=x,
+            converged=converged,
+            iterations=1,
+            residuals=np.array([rel]),
+            solve_seconds=elapsed,
+            method="direct",
+            options={**self.options, "rtol": rtol, "maxiter": maxiter},
+            message=message,
+        )
+
+
+def _direct(A, *, ordering: str = "MMD_AT_PLUS_A", memory_limit_bytes: float | None = None):
+    """Sparse LU with diagonal pivoting in symmetric mode (suits SPD matrices).
+
+    ``ordering`` is SuperLU's column ordering; ``"MMD_AT_PLUS_A"`` (minimum
+    degree on the pattern of A + A^T) is the fill-reducing choice for
+    symmetric matrices.  Diagonal pivots (``diag_pivot_thresh=0`` with
+    ``SymmetricMode``) keep that symmetric ordering and are stable for SPD
+    matrices.
+    """
+    where = "solver 'direct'"
+    if ordering not in _ORDERINGS:
+        raise InputError(
+            f"{where}: option ordering={ordering!r} is not known; valid: "
+            f"{', '.join(_ORDERINGS)} ('MMD_AT_PLUS_A' suits symmetric matrices)"
+        )
+    if memory_limit_bytes is not None and (
+        isinstance(memory_limit_bytes, bool)
+        or not isinstance(memory_limit_bytes, numbers.Real)
+        or not memory_limit_bytes > 0
+    ):
+        raise InputError(
+            f"{where}: option memory_limit_bytes must be a number > 0 or None "
+            f"(available memory), got {memory_limit_bytes!r}"
+        )
+    n, nnz = A.shape[0], A.nnz
+    estimate = _estimate_lu_bytes(n, nnz)
+    limit = memory_limit_bytes if memory_limit_bytes is not None else _available_memory_bytes()
+    if limit is not None and estimate > limit:
+        source = "memory_limit_bytes" if memory_limit_bytes is not None else "available memory"
+        raise ResourceError(
+            f"{where}: the LU factors of this {n}x{n} matrix with {nnz} stored "
+            f"entries are estimated at {estimate / 2**20:.1f} MiB (3D-like fill "
+            f"model), above the limit of {limit / 2**20:.1f} MiB ({source}); use "
+            "method 'cg-amg' instead, or raise memory_limit_bytes if the matrix "
+            "comes from a 2D mesh (its fill is smaller)"
+        )
+    try:
+        lu = spla.splu(
+            sp.csc_matrix(A),
+            permc_spec=ordering,
+            diag_pivot_thresh=0.0,
+            options={"SymmetricMode": True},
+        )
+    except RuntimeError as exc:
+        raise SolverError(
+            f"{where}: LU factorisation of the {n}x{n} matrix failed ({exc}); "
+            "a singular matrix usually means missing Dirichlet conditions "
+            "(pure Neumann problem) or an unused dof"
+        ) from exc
+    options = {
+        "ordering": ordering,
+        "memory_limit_bytes": limit,
+        "estimated_factor_bytes": estimate,
+        "factor_nonzeros": int(lu.L.nnz + lu.U.nnz),
+    }
+    return _DirectSolver(A, lu, options)
+
+
+register_solver(
+    "direct", _direct,
+    description="sparse LU (SuperLU, minimum-degree ordering on A+A^T), factorised once",
+)
+
+
+# --------------------------------------------------------------------------
+# built-ins: the CG family
+# --------------------------------------------------------------------------
+
+
+def _cg(A):
+    """Conjugate gradients without preconditioner; default maxiter max(1000, n)."""
+    n = A.shape[0]
+    return _CGSolver(A, "cg", None, max(1000, n), {})
+
+
+register_solver(
+    "cg", _cg,
+    description="conjugate gradients, no preconditioner",
+)
+
+
+def _cg_jacobi(A):
+    """CG preconditioned by the inverse diagonal; default maxiter max(1000, n)."""
+    diag = A.diagonal()
+    bad = np.flatnonzero(~(diag > 0.0))
+    if bad.size:
+        i = int(bad[0])
+        raise InputError(
+            f"solver 'cg-jacobi': diagonal entry of row {i} is {diag[i]!r} "
+            f"({bad.size} rows have a diagonal <= 0); an SPD matrix has a "
+            "positive diagonal: check the assembly and Dirichlet elimination"
+        )
+    inv_diag = 1.0 / diag
+    n = A.shape[0]
+    return _CGSolver(A, "cg-jacobi", lambda r: inv_diag * r, max(1000, n), {})
+
+
+register_solver(
+    "cg-jacobi", _cg_jacobi,
+    description="conjugate gradients preconditioned by the inverse diagonal (Jacobi)",
+)
+
+
+def _amg_option_names() -> list[str]:
+    """Keywords pyamg.smoothed_aggregation_solver accepts (its own and the hierarchy's)."""
+    import pyamg
+
+    names = [
+        p.name
+        for p in inspect.signature(pyamg.smoothed_aggregation_solver).parameters.values()
+        if p.kind in (p.POSITIONAL_OR_KEYWORD, p.KEYWORD_ONLY) and p.name != "A"
+    ]
+    names += [
+        p.name
+        for p in inspect.signature(pyamg.MultilevelSolver.__init__).parameters.values()
+        if p.kind in (p.POSITIONAL_OR_KEYWORD, p.KEYWORD_ONLY)
+        and p.name not in ("self", "levels")
+    ]
+    return names
+
+
+def _cg_amg(A, *, amg_options: dict | None = None):
+    """CG preconditioned by one smoothed-aggregation V-cycle (PyAMG).
+
+    ``amg_options`` is passed unchanged as keywords to
+    ``pyamg.smoothed_aggregation_solver`` (for example ``max_levels``,
+    ``max_coarse``, ``strength``, ``smooth``, ``presmoother``,
+    ``postsmoother``, ``coarse_solver``); keep the smoothers symmetric so that
+    the V-cycle stays an SPD preconditioner.  Default maxiter 500.
+    """
+    import pyamg
+
+    where = "solver 'cg-amg'"
+    if amg_options is None:
+        amg_options = {}
+    if not isinstance(amg_options, dict):
+        raise InputError(
+            f"{where}: option amg_options must be a dict of keywords for "
+            f"pyamg.smoothed_aggregation_solver, got {type(amg_options).__name__}"
+        )
+    valid = _amg_option_names()
+    unknown = [k for k in amg_options if k not in valid]
+    if unknown:
+        raise InputError(
+            f"{where}: amg_options key {unknown[0]!r} is not accepted by "
+            f"pyamg.smoothed_aggregation_solver; valid keys: {', '.join(valid)}"
+        )
+    try:
+        hierarchy = pyamg.smoothed_aggregation_solver(A, **amg_options)
+    except (TypeError, ValueError) as exc:
+        raise InputError(
+            f"{where}: pyamg.smoothed_aggregation_solver refused amg_options="
+            f"{amg_options!r}: {exc}; see the PyAMG documentation of that function"
+        ) from exc
+    cycle = hierarchy.aspreconditioner(cycle="V")
+    options = {
+        "amg_options": dict(amg_options),
+        "levels": len(hierarchy.levels),
+        "operator_complexity": float(hierarchy.operator_complexity()),
+    }
+    backend = _CGSolver(A, "cg-amg", cycle.matvec, 500, options)
+    backend.hierarchy = hierarchy
+    return backend
+
+
+register_solver(
+    "cg-amg", _cg_amg,
+    description="conjugate gradients preconditioned by a smoothed-aggregation AMG V-cycle (PyAMG)",
+)
