@@ -11,3 +11,4 @@ from .refinement import refine_uniform
 from .dofs import Discretization
 from .solvers import (SolveReport, solve, prepare_solver, register_solver,
                       available_solvers, choose_method)
+from .assembly import Assembler

@@ -145,7 +145,9 @@ def _gauss_jacobi_1d(n, alpha):
     return t, w
 
 
-@lru_cache(maxsize=None)
+# typed=True: an untyped cache treats (2, 2.0) as the key (2, 2) and would
+# return a cached rule without running _check on the float degree.
+@lru_cache(maxsize=None, typed=True)
 def gauss_jacobi_rule(dim: int, degree: int) -> QuadratureRule:
     """Collapsed-coordinate Gauss--Jacobi rule exact to ``degree``.
 
@@ -202,15 +204,20 @@ def gauss_jacobi_rule(dim: int, degree: int) -> QuadratureRule:
 
 
 def _check(dim, degree):
-    if dim not in (1, 2, 3):
+    # integers only: 2.0 and True compare equal to 2 and 1 and would slip
+    # through a plain ``in`` test or range test.
+    def _is_int(v):
+        return isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
+
+    if not _is_int(dim) or dim not in (1, 2, 3):
         raise InputError(f"quadrature: dim must be 1, 2 or 3, got {dim!r}")
-    if not isinstance(degree, (int, np.integer)) or degree < 0 or degree > MAX_DEGREE:
+    if not _is_int(degree) or degree < 0 or degree > MAX_DEGREE:
         raise InputError(
             f"quadrature: degree must be an integer in 0..{MAX_DEGREE}, got {degree!r}"
         )
 
 
-@lru_cache(maxsize=None)
+@lru_cache(maxsize=None, typed=True)  # typed: see gauss_jacobi_rule
 def simplex_quadrature(dim: int, degree: int) -> QuadratureRule:
     """The cheapest rule here that is exact for polynomials of ``degree``.
 

@@ -1,0 +1,866 @@
+"""Sparse stiffness, mass and load operators: symbolic and numeric phases.
+
+:class:`Assembler` computes once per discretization (the *symbolic phase*):
+
+* the CSR sparsity pattern (sorted column indices; int32 where it fits);
+* the *cell order*: cells sorted (stably) by their smallest dof;
+* the *position map*: for each cell in that order and each local pair
+  (a, b), the offset of column ``dof[b]`` inside row ``dof[a]`` (uint8 when
+  every row has at most 256 entries, else uint16/uint32) -- ``k**2`` bytes
+  per cell for uint8, a quarter of an int32 scatter map.
+
+The *numeric phase* (every call) runs one numba kernel that computes each
+cell matrix on the fly and adds it to the CSR data with one store per entry.
+
+Parallel scatter without atomics: the rows are split into one contiguous
+range per thread; each thread walks the cells (in cell order) that touch its
+range and adds only the rows it owns.  Every matrix entry is therefore the
+sum of its cell contributions in cell order, whatever the number of threads:
+results are bitwise identical for any thread count.  A cell whose dofs
+straddle two ranges is computed by both threads (with a locality-preserving
+numbering this is a thin layer of cells).
+
+Kernels: a closed-form P1 path, and one generic path for every degree and
+dimension, driven by tabulated reference data ``R[q, t, a, b]``: the local
+matrix is ``sum_{q,t} g_t(cell, q) R[q, t, a, b]`` where ``g`` holds the
+geometric/coefficient factors (``|det J| kappa_q (J^-1 K J^-T)_{rs}`` for the
+stiffness, pairs ``r <= s``; ``|det J| c_q`` for the mass).  With constant
+per-cell coefficients ``R`` is integrated exactly once (one "point").
+"""
+
+from __future__ import annotations
+
+from functools import cached_property
+
+import numba as nb
+import numpy as np
+import scipy.sparse as sp
+
+from .coefficients import scalar_values, tensor_values
+from .dofs import Discretization
+from .elements import REFERENCE_FACETS, lagrange_element
+from .errors import InputError
+from .geometry import invert, jacobian, physical_points
+from .quadrature import simplex_quadrature
+from .topology import incidence, index_dtype
+
+__all__ = ["Assembler"]
+
+
+# ----------------------------------------------------------------------------
+# symbolic phase kernels
+# ----------------------------------------------------------------------------
+@nb.njit(cache=True)
+def _cell_order(dofs, n_dofs):
+    """Cells sorted stably by smallest dof (counting sort)."""
+    m, k = dofs.shape
+    counts = np.zeros(n_dofs + 1, dtype=np.int64)
+    low = np.empty(m, dtype=np.int64)
+    for c in range(m):
+        lo = dofs[c, 0]
+        for a in range(1, k):
+            if dofs[c, a] < lo:
+                lo = dofs[c, a]
+        low[c] = lo
+        counts[lo + 1] += 1
+    for i in range(n_dofs):
+        counts[i + 1] += counts[i]
+    order = np.empty(m, dtype=dofs.dtype)
+    for c in range(m):
+        order[counts[low[c]]] = c
+        counts[low[c]] += 1
+    return order
+
+
+@nb.njit(cache=True, parallel=True)
+def _pattern_count(dofs, offsets, items, n_blocks, row_nnz):
+    n = offsets.shape[0] - 1
+    k = dofs.shape[1]
+    per = (n + n_blocks - 1) // n_blocks
+    for blk in nb.prange(n_blocks):
+        marker = np.full(n, -1, dtype=np.int64)
+        for i in range(blk * per, min(n, (blk + 1) * per)):
+            cnt = 0
+            for j in range(offsets[i], offsets[i + 1]):
+                c = items[j]
+                for b in range(k):
+                    col = dofs[c, b]
+                    if marker[col] != i:
+                        marker[col] = i
+                        cnt += 1
+            row_nnz[i] = cnt
+
+
+@nb.njit(cache=True, parallel=True)
+def _pattern_fill(dofs, offsets, items, n_blocks, indptr, indices):
+    n = offsets.shape[0] - 1
+    k = dofs.shape[1]
+    per = (n + n_blocks - 1) // n_blocks
+    for blk in nb.prange(n_blocks):
+        marker = np.full(n, -1, dtype=np.int64)
+        for i in range(blk * per, min(n, (blk + 1) * per)):
+            pos = indptr[i]
+            for j in range(offsets[i], offsets[i + 1]):
+                c = items[j]
+                for b in range(k):
+                    col = dofs[c, b]
+                    if marker[col] != i:
+                        marker[col] = i
+                        indices[pos] = col
+                        pos += 1
+            lo = indptr[i]
+            hi = indptr[i + 1]
+            if hi - lo <= 64:
+                for s in range(lo + 1, hi):  # insertion sort: short rows
+                    v = indices[s]
+                    t = s - 1
+                    while t >= lo and indices[t] > v:
+                        indices[t + 1] = indices[t]
+                        t -= 1
+                    indices[t + 1] = v
+            else:
+                indices[lo:hi] = np.sort(indices[lo:hi])
+
+
+@nb.njit(cache=True, inline="always")
+def _find(indices, lo, hi, col):
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if indices[mid] < col:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
+@nb.njit(cache=True, parallel=True)
+def _position_map(dofs, order, indptr, indices, posmap):
+    m, k = dofs.shape
+    for p in nb.prange(m):
+        c = order[p]
+        for a in range(k):
+            row = dofs[c, a]
+            lo = indptr[row]
+            hi = indptr[row + 1]
+            for b in range(k):
+                posmap[p, a, b] = _find(indices, lo, hi, dofs[c, b]) - lo
+
+
+@nb.njit(cache=True)
+def _chunk_cells(dofs, order, chunk_rows):
+    """Per row range, the window of ordered cells that can touch it."""
+    m, k = dofs.shape
+    nch = chunk_rows.shape[0] - 1
+    out = np.empty((nch, 2), dtype=np.int64)
+    for t in range(nch):
+        out[t, 0] = m
+        out[t, 1] = 0
+    running_max = -1
+    for p in range(m):
+        c = order[p]
+        lo = dofs[c, 0]
+        hi = dofs[c, 0]
+        for a in range(1, k):
+            v = dofs[c, a]
+            if v < lo:
+                lo = v
+            if v > hi:
+                hi = v
+        if hi > running_max:
+            running_max = hi
+        for t in range(nch):
+            # cells are sorted by lo; a window starts at the first cell whose
+            # running max reaches the range and ends after the last cell whose
+            # lo is inside it
+            if running_max >= chunk_rows[t] and out[t, 0] == m:
+                out[t, 0] = p
+            if lo < chunk_rows[t + 1]:
+                out[t, 1] = p + 1
+    for t in range(nch):
+        if out[t, 0] > out[t, 1]:
+            out[t, 0] = out[t, 1]
+    return out
+
+
+# ----------------------------------------------------------------------------
+# numeric phase kernels
+# ----------------------------------------------------------------------------
+@nb.njit(cache=True, inline="always")
+def _scatter(Kloc, k, dofs, c, p, lo, hi, indptr, posmap, data):
+    for a in range(k):
+        row = dofs[c, a]
+        if row < lo or row >= hi:
+            continue
+        base = indptr[row]
+        for b in range(a):
+            data[base + posmap[p, a, b]] += Kloc[b, a]
+        for b in range(a, k):
+            data[base + posmap[p, a, b]] += Kloc[a, b]
+
+
+@nb.njit(cache=True, inline="always")
+def _p1_cofactors(points, cells, c, G):
+    """Rows of ``G`` = det(J) * grad(lambda_a) for a P1 cell; returns det(J)."""
+    v0 = cells[c, 0]
+    if points.shape[1] == 2:
+        x0 = points[v0, 0]
+        y0 = points[v0, 1]
+        a = points[cells[c, 1], 0] - x0
+        e = points[cells[c, 1], 1] - y0
+        b = points[cells[c, 2], 0] - x0
+        f = points[cells[c, 2], 1] - y0
+        G[1, 0] = f
+        G[1, 1] = -b
+        G[2, 0] = -e
+        G[2, 1] = a
+        G[0, 0] = -(f - e)
+        G[0, 1] = -(a - b)
+        return a * f - b * e
+    x0 = points[v0, 0]
+    y0 = points[v0, 1]
+    z0 = points[v0, 2]
+    v1 = cells[c, 1]
+    v2 = cells[c, 2]
+    v3 = cells[c, 3]
+    a = points[v1, 0] - x0
+    e = points[v1, 1] - y0
+    h = points[v1, 2] - z0
+    b = points[v2, 0] - x0
+    f = points[v2, 1] - y0
+    i = points[v2, 2] - z0
+    cc = points[v3, 0] - x0
+    g = points[v3, 1] - y0
+    k = points[v3, 2] - z0
+    # J = [[a, b, cc], [e, f, g], [h, i, k]]; grad lambda_j = row j-1 of J^-1
+    G[1, 0] = f * k - g * i
+    G[1, 1] = cc * i - b * k
+    G[1, 2] = b * g - cc * f
+    G[2, 0] = g * h - e * k
+    G[2, 1] = a * k - cc * h
+    G[2, 2] = cc * e - a * g
+    G[3, 0] = e * i - f * h
+    G[3, 1] = b * h - a * i
+    G[3, 2] = a * f - b * e
+    for r in range(3):
+        G[0, r] = -(G[1, r] + G[2, r] + G[3, r])
+    return a * G[1, 0] + b * G[2, 0] + cc * G[3, 0]
+
+
+@nb.njit(cache=True, inline="always")
+def _zero_rows(data, indptr, lo, hi):
+    for i in range(indptr[lo], indptr[hi]):
+        data[i] = 0.0
+
+
+@nb.njit(cache=True, parallel=True)
+def _p1_stiffness(points, cells, order, posmap, indptr, chunk_rows, chunk_cells,
+                  kappa, tensor, data):
+    """Closed-form P1 stiffness (any FEM text, e.g. Hughes 2000, ch. 3):
+    K_ab = kappa |T| grad(lambda_a) . K grad(lambda_b)
+         = kappa (C_a . K C_b) / (d! |det J|), C = cofactor rows."""
+    d = points.shape[1]
+    k = d + 1
+    fact = 2.0 if d == 2 else 6.0
+    nch = chunk_rows.shape[0] - 1
+    for t in nb.prange(nch):
+        # fixed (tetrahedron-sized) shapes let the compiler keep these in registers
+        G = np.empty((4, 3))
+        KG = np.empty((4, 3))
+        Kloc = np.empty((4, 4))
+        lo = chunk_rows[t]
+        hi = chunk_rows[t + 1]
+        _zero_rows(data, indptr, lo, hi)
+        for p in range(chunk_cells[t, 0], chunk_cells[t, 1]):
+            c = order[p]
+            det = _p1_cofactors(points, cells, c, G)
+            scale = kappa[c if kappa.shape[0] > 1 else 0, 0] / (fact * abs(det))
+            if tensor.shape[0] > 0:
+                ti = c if tensor.shape[0] > 1 else 0
+                for a in range(k):
+                    for r in range(d):
+                        s = 0.0
+                        for q in range(d):
+                            s += tensor[ti, r, q] * G[a, q]
+                        KG[a, r] = s
+                for a in range(k):
+                    for b in range(a, k):
+                        s = 0.0
+                        for r in range(d):
+                            s += G[a, r] * KG[b, r]
+                        Kloc[a, b] = scale * s
+            else:
+                for a in range(k):
+                    for b in range(a, k):
+                        s = 0.0
+                        for r in range(d):
+                            s += G[a, r] * G[b, r]
+                        Kloc[a, b] = scale * s
+            _scatter(Kloc, k, cells, c, p, lo, hi, indptr, posmap, data)
+
+
+@nb.njit(cache=True, parallel=True)
+def _generic_matrix(points, vcells, dofs, order, posmap, indptr, chunk_rows,
+                    chunk_cells, op, R, coef, tensor, data):
+    """Generic cell matrices: sum_{q,t} g_t(c, q) R[q, t] (op 0 stiffness, 1 mass)."""
+    d = points.shape[1]
+    nq, nt, k, _ = R.shape
+    nch = chunk_rows.shape[0] - 1
+    for t in nb.prange(nch):
+        J = np.empty((d, d))
+        Jinv = np.empty((d, d))
+        C = np.empty((d, d))
+        g = np.empty(nt)
+        Kloc = np.empty((k, k))
+        lo = chunk_rows[t]
+        hi = chunk_rows[t + 1]
+        _zero_rows(data, indptr, lo, hi)
+        for p in range(chunk_cells[t, 0], chunk_cells[t, 1]):
+            c = order[p]
+            jacobian(points, vcells, c, J)
+            det = abs(invert(J, Jinv))
+            if op == 0:
+                # C = |det J| J^-1 K J^-T
+                ti = c if tensor.shape[0] > 1 else 0
+                for r in range(d):
+                    for s in range(d):
+                        acc = 0.0
+                        for i in range(d):
+                            if tensor.shape[0] > 0:
+                                for j in range(d):
+                                    acc += Jinv[r, i] * tensor[ti, i, j] * Jinv[s, j]
+                            else:
+                                acc += Jinv[r, i] * Jinv[s, i]
+                        C[r, s] = det * acc
+                tt = 0
+                for r in range(d):
+                    for s in range(r, d):
+                        g[tt] = C[r, s]
+                        tt += 1
+            else:
+                g[0] = det
+            for a in range(k):
+                for b in range(a, k):
+                    Kloc[a, b] = 0.0
+            ci = c if coef.shape[0] > 1 else 0
+            for q in range(nq):
+                w = coef[ci, q]
+                for tt in range(nt):
+                    f = w * g[tt]
+                    for a in range(k):
+                        for b in range(a, k):
+                            Kloc[a, b] += f * R[q, tt, a, b]
+            _scatter(Kloc, k, dofs, c, p, lo, hi, indptr, posmap, data)
+
+
+@nb.njit(cache=True, parallel=True)
+def _generic_vector(points, vcells, dofs, order, chunk_rows, chunk_cells, mode, R,
+                    coef, fvals, out):
+    """Load vectors. mode 0: |det J| sum_q coef[c, q] R[q, a]; mode 1: |det J| (R @ f_local)."""
+    d = points.shape[1]
+    k = dofs.shape[1]
+    nch = chunk_rows.shape[0] - 1
+    for t in nb.prange(nch):
+        J = np.empty((d, d))
+        Jinv = np.empty((d, d))
+        bloc = np.empty(k)
+        lo = chunk_rows[t]
+        hi = chunk_rows[t + 1]
+        for i in range(lo, hi):
+            out[i] = 0.0
+        for p in range(chunk_cells[t, 0], chunk_cells[t, 1]):
+            c = order[p]
+            jacobian(points, vcells, c, J)
+            det = abs(invert(J, Jinv))
+            if mode == 0:
+                ci = c if coef.shape[0] > 1 else 0
+                for a in range(k):
+                    s = 0.0
+                    for q in range(R.shape[0]):
+                        s += coef[ci, q] * R[q, a]
+                    bloc[a] = det * s
+            else:
+                for a in range(k):
+                    s = 0.0
+                    for b in range(k):
+                        s += R[a, b] * fvals[dofs[c, b]]
+                    bloc[a] = det * s
+            for a in range(k):
+                row = dofs[c, a]
+                if row >= lo and row < hi:
+                    out[row] += bloc[a]
+
+
+@nb.njit(cache=True)
+def _facet_measure(points, vcells, c, f, facet_local):
+    d = points.shape[1]
+    v0 = vcells[c, facet_local[f, 0]]
+    v1 = vcells[c, facet_local[f, 1]]
+    if d == 2:
+        a = points[v1, 0] - points[v0, 0]
+        b = points[v1, 1] - points[v0, 1]
+        return np.sqrt(a * a + b * b)
+    v2 = vcells[c, facet_local[f, 2]]
+    a0 = points[v1, 0] - points[v0, 0]
+    a1 = points[v1, 1] - points[v0, 1]
+    a2 = points[v1, 2] - points[v0, 2]
+    b0 = points[v2, 0] - points[v0, 0]
+    b1 = points[v2, 1] - points[v0, 1]
+    b2 = points[v2, 2] - points[v0, 2]
+    x = a1 * b2 - a2 * b1
+    y = a2 * b0 - a0 * b2
+    z = a0 * b1 - a1 * b0
+    return 0.5 * np.sqrt(x * x + y * y + z * z)
+
+
+@nb.njit(cache=True)
+def _boundary_matrix(points, vcells, dofs, fcells, flocal, facet_local, ref_measure,
+                     R, coef, indptr, indices, data):
+    """Facet matrices sum_q |F|/|F_ref| coef[f, q] R[local facet, q] (serial)."""
+    nf = fcells.shape[0]
+    k = dofs.shape[1]
+    nq = R.shape[1]
+    for i in range(nf):
+        c = fcells[i]
+        f = flocal[i]
+        s = _facet_measure(points, vcells, c, f, facet_local) / ref_measure
+        ci = i if coef.shape[0] > 1 else 0
+        for a in range(k):
+            row = dofs[c, a]
+            lo = indptr[row]
+            hi = indptr[row + 1]
+            for b in range(k):
+                v = 0.0
+                for q in range(nq):
+                    v += coef[ci, q] * R[f, q, a, b]
+                if v != 0.0:
+                    data[_find(indices, lo, hi, dofs[c, b])] += s * v
+
+
+@nb.njit(cache=True)
+def _boundary_vector(points, vcells, dofs, fcells, flocal, facet_local, ref_measure,
+                     R, coef, out):
+    nf = fcells.shape[0]
+    k = dofs.shape[1]
+    nq = R.shape[1]
+    for i in range(nf):
+        c = fcells[i]
+        f = flocal[i]
+        s = _facet_measure(points, vcells, c, f, facet_local) / ref_measure
+        ci = i if coef.shape[0] > 1 else 0
+        for a in range(k):
+            v = 0.0
+            for q in range(nq):
+                v += coef[ci, q] * R[f, q, a]
+            out[dofs[c, a]] += s * v
+
+
+# ----------------------------------------------------------------------------
+# the Assembler
+# ----------------------------------------------------------------------------
+class Assembler:
+    """Stiffness, mass, load and facet operators of one discretization.
+
+    The sparsity pattern and scatter plan are computed once, on construction;
+    every operator call is one parallel numba kernel writing into CSR data.
+
+    Parameters
+    ----------
+    disc : Discretization
+    quadrature_degree : int, optional
+        Degree of the cell quadrature used for callable coefficients
+        (default ``2k + 1``).  Constant and per-cell coefficients are
+        integrated exactly (degree ``2k - 2`` stiffness, ``2k`` mass).
+
+    Attributes
+    ----------
+    indptr, indices : ndarray (int32 where nnz < 2**31)
+        The shared, read-only CSR pattern of every matrix returned.
+    nnz : int
+
+    Examples
+    --------
+    >>> from galerkit import structured_triangles, Discretization
+    >>> asm = Assembler(Discretization(structured_triangles(4, 4), 1))
+    >>> K = asm.stiffness()
+    >>> K.shape, bool(abs(K.sum(axis=1)).max() < 1e-12)
+    ((25, 25), True)
+    >>> round(float(asm.mass().sum()), 12)
+    1.0
+    """
+
+    def __init__(self, disc: Discretization, quadrature_degree=None):
+        if not isinstance(disc, Discretization):
+            raise InputError(
+                f"Assembler: expected a Discretization, got {type(disc).__name__}; "
+                "build one with Discretization(mesh, degree)"
+            )
+        self.disc = disc
+        self.mesh = disc.mesh
+        k = disc.degree
+        if quadrature_degree is None:
+            quadrature_degree = 2 * k + 1
+        if not isinstance(quadrature_degree, (int, np.integer)) or quadrature_degree < 0:
+            raise InputError(
+                f"Assembler: quadrature_degree must be a non-negative integer, got {quadrature_degree!r}"
+            )
+        self.quadrature_degree = int(quadrature_degree)
+        self._build_pattern()
+        self._chunks = {}
+
+    # -- symbolic phase --------------------------------------------------------
+    def _build_pattern(self):
+        disc = self.disc
+        dofs = disc.cell_dofs
+        n = disc.n_dofs
+        offsets, items = incidence(dofs, n)
+        n_blocks = max(1, min(n, 4 * nb.get_num_threads()))
+        row_nnz = np.empty(n, dtype=np.int64)
+        _pattern_count(dofs, offsets, items, n_blocks, row_nnz)
+        nnz = int(row_nnz.sum())
+        idt = index_dtype(max(nnz, n))
+        indptr = np.zeros(n + 1, dtype=idt)
+        np.cumsum(row_nnz, out=indptr[1:])
+        indices = np.empty(nnz, dtype=idt)
+        _pattern_fill(dofs, offsets, items, n_blocks, indptr, indices)
+        del offsets, items
+        order = _cell_order(dofs, n)
+        longest = int(row_nnz.max())
+        pdt = np.uint8 if longest <= 256 else (np.uint16 if longest <= 65536 else np.uint32)
+        posmap = np.empty((dofs.shape[0], dofs.shape[1], dofs.shape[1]), dtype=pdt)
+        _position_map(dofs, order, indptr, indices, posmap)
+        for a in (indptr, indices, order, posmap):
+            a.flags.writeable = False
+        self.indptr, self.indices, self.order, self.posmap = indptr, indices, order, posmap
+        self.nnz = nnz
+
+    def _chunk_plan(self):
+        nch = nb.get_num_threads()
+        if nch not in self._chunks:
+            n = self.disc.n_dofs
+            # equal numbers of stored entries per range
+            targets = np.linspace(0, self.nnz, nch + 1)
+            rows = np.searchsorted(self.indptr, targets).astype(np.int64)
+            rows[0], rows[-1] = 0, n
+            rows = np.maximum.accumulate(rows)
+            cells = _chunk_cells(self.disc.cell_dofs, self.order, rows)
+            self._chunks[nch] = (rows, cells)
+        return self._chunks[nch]
+
+    @property
+    def n_dofs(self) -> int:
+        return self.disc.n_dofs
+
+    def memory_bytes(self) -> dict:
+        """Bytes held by the pattern and the scatter plan."""
+        return {
+            "indptr": self.indptr.nbytes,
+            "indices": self.indices.nbytes,
+            "cell_order": self.order.nbytes,
+            "position_map": self.posmap.nbytes,
+        }
+
+    # -- helpers -----------------------------------------------------------------
+    def _new_matrix(self, out, zero=False):
+        n = self.n_dofs
+        if out is None:
+            data = np.empty(self.nnz) if not zero else np.zeros(self.nnz)
+        else:
+            if not isinstance(out, (sp.csr_array, sp.csr_matrix)) or out.shape != (n, n):
+                raise InputError(
+                    "out= must be a CSR matrix returned earlier by this Assembler "
+                    f"(shape ({n}, {n})), got {type(out).__name__} {getattr(out, 'shape', '')}"
+                )
+            if not (out.indices is self.indices or (
+                    out.indices.shape == self.indices.shape and out.indptr.shape == self.indptr.shape
+                    and np.array_equal(out.indptr, self.indptr)
+                    and np.array_equal(out.indices, self.indices))):
+                raise InputError(
+                    "out=: the matrix does not have this Assembler's sparsity pattern "
+                    "(was it modified, e.g. by eliminate_zeros, or built by another Assembler?)"
+                )
+            if out.data.dtype != np.float64 or not out.data.flags.c_contiguous \
+                    or not out.data.flags.writeable:
+                raise InputError("out=: the matrix data must be writeable contiguous float64")
+            data = out.data
+            if zero:
+                data[:] = 0.0
+        return data, out
+
+    def _wrap(self, data, out):
+        if out is not None:
+            return out
+        n = self.n_dofs
+        A = sp.csr_array((data, self.indices, self.indptr), shape=(n, n), copy=False)
+        A.has_sorted_indices = True
+        A.has_canonical_format = True
+        return A
+
+    def _new_vector(self, out, zero=False):
+        n = self.n_dofs
+        if out is None:
+            return np.zeros(n) if zero else np.empty(n)
+        if not isinstance(out, np.ndarray) or out.shape != (n,) or out.dtype != np.float64 \
+                or not out.flags.c_contiguous or not out.flags.writeable:
+            raise InputError(f"out= must be a writeable contiguous float64 array of shape ({n},)")
+        if zero:
+            out[:] = 0.0
+        return out
+
+    def _rule(self, degree):
+        return simplex_quadrature(self.mesh.dim, max(int(degree), 0))
+
+    def _cell_coefficient(self, value, name, positive, degree):
+        """(values, rule) for a scalar coefficient: rule None when constant."""
+        m = self.mesh.n_cells
+        if callable(value):
+            rule = self._rule(degree)
+            vals = scalar_values(
+                value, m, name, positive=positive,
+                points=lambda: physical_points(self.mesh.points, self.mesh.cells, rule.points),
+                point_shape=(m, rule.n_points))
+            return vals, rule
+        return scalar_values(value, m, name, positive=positive), None
+
+    @cached_property
+    def _stiffness_reference(self):
+        return {}
+
+    def _stiffness_tables(self, rule):
+        """R[q, t, a, b] = w_q d_r phi_a d_s phi_b (+ the (s, r) term), pairs r <= s."""
+        key = (rule.dim, rule.degree, rule.n_points)
+        cache = self._stiffness_reference
+        if key not in cache:
+            el = self.disc.element
+            G = el.tabulate_gradients(rule.points)  # (nq, k, d)
+            d = el.dim
+            pairs = [(r, s) for r in range(d) for s in range(r, d)]
+            R = np.empty((rule.n_points, len(pairs), el.n_local, el.n_local))
+            for t, (r, s) in enumerate(pairs):
+                S = np.einsum("q,qa,qb->qab", rule.weights, G[:, :, r], G[:, :, s])
+                R[:, t] = S if r == s else S + S.transpose(0, 2, 1)
+            cache[key] = R
+        return cache[key]
+
+    def _mass_tables(self, rule):
+        el = self.disc.element
+        V = el.tabulate(rule.points)
+        return np.ascontiguousarray(np.einsum("q,qa,qb->qab", rule.weights, V, V)[:, None])
+
+    # -- operators -----------------------------------------------------------------
+    def stiffness(self, conductivity=1.0, *, out=None, quadrature_degree=None):
+        """Stiffness matrix of ``integral(kappa grad u . grad v)``.
+
+        Parameters
+        ----------
+        conductivity : float, ndarray (n_cells,), callable, ndarray (d, d) or (n_cells, d, d)
+            Positive scalar, per-cell values, a callable ``kappa(x)`` with ``x``
+            of shape (dim, n) (integrated with degree ``quadrature_degree``), or
+            a symmetric positive definite tensor, constant or per cell.
+        out : csr_array, optional
+            A matrix returned earlier by this Assembler: re-assembled in place.
+        quadrature_degree : int, optional
+            Overrides the Assembler's degree for a callable conductivity.
+
+        Returns
+        -------
+        scipy.sparse.csr_array, shape (n_dofs, n_dofs), float64
+
+        Raises
+        ------
+        InputError
+            Non-finite or non-positive conductivity (first cell named), a tensor
+            that is not SPD, wrong shapes.
+        """
+        disc, mesh = self.disc, self.mesh
+        d, k = mesh.dim, disc.degree
+        tensor = tensor_values(conductivity, mesh.n_cells, d, "conductivity")
+        if tensor is not None:
+            kappa = np.ones((1, 1))
+            rule = None
+        else:
+            deg = self.quadrature_degree if quadrature_degree is None else quadrature_degree
+            kappa, rule = self._cell_coefficient(conductivity, "conductivity", True, deg)
+            tensor = np.zeros((0, d, d))
+        data, out = self._new_matrix(out)
+        rows, cells = self._chunk_plan()
+        if k == 1:
+            if rule is not None:  # gradients are constant: average kappa per cell
+                kappa = np.ascontiguousarray(
+                    (kappa @ rule.weights)[:, None] / rule.weights.sum())
+            _p1_stiffness(mesh.points, mesh.cells, self.order, self.posmap, self.indptr,
+                          rows, cells, kappa, tensor, data)
+        else:
+            if rule is None:
+                rule = self._rule(2 * k - 2)
+                R = self._stiffness_tables(rule).sum(axis=0, keepdims=True)
+            else:
+                R = self._stiffness_tables(rule)
+            _generic_matrix(mesh.points, mesh.cells, disc.cell_dofs, self.order, self.posmap,
+                            self.indptr, rows, cells, 0, R, kappa, tensor, data)
+        return self._wrap(data, out)
+
+    def mass(self, coefficient=1.0, *, out=None, quadrature_degree=None):
+        """Mass matrix of ``integral(c u v)``.
+
+        Parameters
+        ----------
+        coefficient : float, ndarray (n_cells,) or callable
+            Any finite values (a reaction or capacity coefficient).
+        out : csr_array, optional
+            Re-assemble in place into a matrix returned earlier.
+        quadrature_degree : int, optional
+            For a callable coefficient (default the Assembler's).
+
+        Returns
+        -------
+        scipy.sparse.csr_array, shape (n_dofs, n_dofs), float64
+        """
+        disc, mesh = self.disc, self.mesh
+        k = disc.degree
+        deg = self.quadrature_degree if quadrature_degree is None else quadrature_degree
+        coef, rule = self._cell_coefficient(coefficient, "mass coefficient", False, deg)
+        if rule is None:
+            R = self._mass_tables(self._rule(2 * k))
+            R = np.ascontiguousarray(R.sum(axis=0, keepdims=True))
+        else:
+            R = self._mass_tables(rule)
+        data, out = self._new_matrix(out)
+        rows, cells = self._chunk_plan()
+        _generic_matrix(mesh.points, mesh.cells, disc.cell_dofs, self.order, self.posmap,
+                        self.indptr, rows, cells, 1, R, coef, np.zeros((0, mesh.dim, mesh.dim)),
+                        data)
+        return self._wrap(data, out)
+
+    def load(self, source, *, out=None, quadrature_degree=None):
+        """Load vector of ``integral(f v)``.
+
+        Parameters
+        ----------
+        source : float, callable, or ndarray (n_dofs,)
+            A constant, a callable ``f(x)`` (quadrature of degree
+            ``quadrature_degree``), or a dof vector: the load of its finite
+            element interpolant (exactly ``M @ f``).
+        out : ndarray (n_dofs,), optional
+
+        Returns
+        -------
+        ndarray, shape (n_dofs,), float64
+        """
+        disc, mesh = self.disc, self.mesh
+        k = disc.degree
+        b = self._new_vector(out)
+        rows, cells = self._chunk_plan()
+        el = disc.element
+        arr = None if callable(source) else np.asarray(source)
+        if arr is not None and arr.ndim == 1 and arr.shape == (disc.n_dofs,):
+            f = np.ascontiguousarray(arr, dtype=np.float64)
+            bad = ~np.isfinite(f)
+            if bad.any():
+                i = int(np.flatnonzero(bad)[0])
+                raise InputError(f"source: dof vector has a non-finite value {f[i]} at dof {i}")
+            rule = self._rule(2 * k)
+            V = el.tabulate(rule.points)
+            Mref = np.ascontiguousarray(np.einsum("q,qa,qb->ab", rule.weights, V, V))
+            _generic_vector(mesh.points, mesh.cells, disc.cell_dofs, self.order, rows, cells,
+                            1, Mref, np.zeros((1, 1)), f, b)
+            return b
+        if arr is not None and arr.ndim == 1 and arr.shape != (mesh.n_cells,):
+            raise InputError(
+                f"source: array of shape {arr.shape}; expected a dof vector ({disc.n_dofs},), "
+                f"per-cell values ({mesh.n_cells},), a number or a callable"
+            )
+        deg = self.quadrature_degree if quadrature_degree is None else quadrature_degree
+        coef, rule = self._cell_coefficient(source, "source", False, deg)
+        if rule is None:
+            rule = self._rule(k)
+            R = np.ascontiguousarray((rule.weights[:, None] * el.tabulate(rule.points)).sum(
+                axis=0, keepdims=True))
+        else:
+            R = np.ascontiguousarray(rule.weights[:, None] * el.tabulate(rule.points))
+        _generic_vector(mesh.points, mesh.cells, disc.cell_dofs, self.order, rows, cells,
+                        0, R, coef, np.zeros(1), b)
+        return b
+
+    # -- facet terms ----------------------------------------------------------------
+    def _facet_setup(self, tag, value, name, degree):
+        mesh, disc = self.mesh, self.disc
+        d = mesh.dim
+        ids = mesh.tagged_facets(tag)
+        fcells = np.ascontiguousarray(mesh.boundary_facet_cells[ids])
+        flocal = np.ascontiguousarray(mesh.boundary_facet_local[ids])
+        frule = simplex_quadrature(d - 1, max(int(degree), 0))
+        facet_local = np.array(REFERENCE_FACETS[d], dtype=np.int64)
+        # reference cell coordinates of the facet points, for each local facet
+        verts = np.vstack([np.zeros(d), np.eye(d)])
+        Xf = []
+        for f in range(d + 1):
+            v = verts[facet_local[f]]
+            Xf.append(v[0] + frule.points @ (v[1:] - v[0]))
+        Xf = np.array(Xf)  # (d+1, nq, d)
+        ref_measure = 1.0 if d == 2 else 0.5
+
+        def pts():
+            # physical points of every tagged facet's quadrature points
+            cells = mesh.cells[fcells]
+            x0 = mesh.points[cells[:, 0]]
+            J = np.stack([mesh.points[cells[:, j + 1]] - x0 for j in range(d)], axis=2)
+            X = np.einsum("fij,fqj->fqi", J, Xf[flocal]) + x0[:, None, :]
+            return np.ascontiguousarray(X.reshape(-1, d).T)
+
+        coef = scalar_values(value, len(ids), f"{name} on {tag!r}", points=pts,
+                             point_shape=(len(ids), frule.n_points), unit="facet")
+        if coef.shape[1] == 1 and frule.n_points > 1:
+            coef = np.ascontiguousarray(np.repeat(coef, frule.n_points, axis=1))
+        V = np.array([disc.element.tabulate(Xf[f]) for f in range(d + 1)])  # (d+1, nq, k)
+        return fcells, flocal, facet_local, ref_measure, frule, V, coef
+
+    def boundary_mass(self, tag, coefficient=1.0, *, out=None, quadrature_degree=None):
+        """Facet mass matrix ``integral over tag of (alpha u v)`` (Robin term).
+
+        Parameters
+        ----------
+        tag : str
+            Facet tag of the mesh.
+        coefficient : float, ndarray (n_tagged_facets,) or callable
+        out : csr_array, optional
+
+        Returns
+        -------
+        scipy.sparse.csr_array on the full pattern, shape (n_dofs, n_dofs)
+        """
+        k = self.disc.degree
+        deg = (2 * k + 1 if callable(coefficient) else 2 * k) if quadrature_degree is None \
+            else quadrature_degree
+        fcells, flocal, facet_local, refm, frule, V, coef = self._facet_setup(
+            tag, coefficient, "boundary coefficient", deg)
+        R = np.ascontiguousarray(np.einsum("q,fqa,fqb->fqab", frule.weights, V, V))
+        data, out = self._new_matrix(out, zero=True)
+        _boundary_matrix(self.mesh.points, self.mesh.cells, self.disc.cell_dofs, fcells, flocal,
+                         facet_local, refm, R, coef, self.indptr, self.indices, data)
+        return self._wrap(data, out)
+
+    def boundary_load(self, tag, flux=1.0, *, out=None, quadrature_degree=None):
+        """Facet load vector ``integral over tag of (g v)`` (Neumann/Robin data).
+
+        Parameters
+        ----------
+        tag : str
+        flux : float, ndarray (n_tagged_facets,) or callable
+            Outward... rather: the prescribed flux value ``g`` entering the
+            weak form as ``+ integral(g v)``.
+        out : ndarray (n_dofs,), optional
+
+        Returns
+        -------
+        ndarray, shape (n_dofs,)
+        """
+        k = self.disc.degree
+        deg = (2 * k + 1 if callable(flux) else k) if quadrature_degree is None \
+            else quadrature_degree
+        fcells, flocal, facet_local, refm, frule, V, coef = self._facet_setup(
+            tag, flux, "boundary flux", deg)
+        R = np.ascontiguousarray(frule.weights[None, :, None] * V)
+        b = self._new_vector(out, zero=True)
+        _boundary_vector(self.mesh.points, self.mesh.cells, self.disc.cell_dofs, fcells, flocal,
+                         facet_local, refm, R, coef, b)
+        return b

@@ -1,0 +1,172 @@
+"""Coefficients (conductivity, mass coefficient, source, flux) as arrays.
+
+A coefficient reaches a kernel as validated arrays:
+
+* a scalar -> ``values`` of shape (1, 1);
+* a per-cell (or per-facet) array of shape (m,) -> (m, 1);
+* a callable ``f(x)``, ``x`` of shape (dim, n) -> values at the physical
+  quadrature points, shape (m, n_quadrature_points);
+* for conductivities also a constant (d, d) or per-cell (m, d, d) symmetric
+  positive definite tensor.
+
+Every value is checked to be finite (and positive, or SPD, where the
+physics requires it) before any kernel sees it; an error names the first
+offending cell or facet and the point.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = ["evaluate_callable", "scalar_values", "tensor_values"]
+
+#: points per block when evaluating a user callable (bounds temporary memory)
+BLOCK_POINTS = 1 << 20
+
+
+def evaluate_callable(func, x, name):
+    """Call ``func`` on points ``x`` (dim, N) in blocks; validate the result.
+
+    Returns
+    -------
+    ndarray, shape (N,), float64
+    """
+    n = x.shape[1]
+    out = np.empty(n)
+    for lo in range(0, n, BLOCK_POINTS):
+        hi = min(n, lo + BLOCK_POINTS)
+        xb = np.ascontiguousarray(x[:, lo:hi])
+        try:
+            v = func(xb)
+        except InputError:
+            raise
+        except Exception as exc:
+            raise InputError(
+                f"{name}: the callable failed on points of shape {xb.shape}: "
+                f"{type(exc).__name__}: {exc}. It must take x of shape (dim, n) and "
+                "return shape (n,)"
+            ) from exc
+        v = np.asarray(v, dtype=np.float64)
+        if v.ndim == 0:
+            v = np.full(hi - lo, float(v))
+        if v.shape != (hi - lo,):
+            raise InputError(
+                f"{name}: the callable returned shape {v.shape} for x of shape {xb.shape}; "
+                f"expected ({hi - lo},)"
+            )
+        out[lo:hi] = v
+    return out
+
+
+def _first_bad(values, bad, where_shape, name, what, points=None, unit="cell"):
+    flat = np.flatnonzero(bad.ravel())
+    i = int(flat[0])
+    c = i // where_shape[1] if values.ndim == 2 else i
+    msg = (f"{name}: {what} value {values.ravel()[i]!r} in {unit} {c} "
+           f"({flat.size} such values)")
+    if points is not None:
+        msg += f" at x = {points[:, i].tolist()}"
+    raise InputError(msg)
+
+
+def scalar_values(value, n_items, name, *, positive=False, points=None,
+                  point_shape=None, unit="cell"):
+    """Normalise a scalar coefficient.
+
+    Parameters
+    ----------
+    value : float, ndarray (n_items,), or callable
+    n_items : int
+        Number of cells (or facets).
+    name : str
+        For messages ("conductivity", "source", ...).
+    positive : bool
+        Require every value > 0 (conductivities).
+    points : callable or None
+        ``points()`` returns the physical quadrature points (dim, n_items*nq);
+        only called for callables.
+    point_shape : tuple
+        ``(n_items, nq)`` of the points.
+
+    Returns
+    -------
+    ndarray, shape (1, 1), (n_items, 1) or (n_items, nq), float64, C-contiguous
+    """
+    if callable(value):
+        x = points()
+        v = evaluate_callable(value, x, name).reshape(point_shape)
+        _validate(v, name, positive, x, unit)
+        return np.ascontiguousarray(v)
+    if isinstance(value, (bool, np.bool_)):
+        raise InputError(f"{name}: expected a number, an array or a callable, got a bool")
+    arr = np.asarray(value)
+    if arr.dtype == object or not (np.issubdtype(arr.dtype, np.number)):
+        raise InputError(
+            f"{name}: expected a number, an array of shape ({n_items},) or a callable, "
+            f"got {type(value).__name__}"
+        )
+    if np.iscomplexobj(arr):
+        raise InputError(f"{name}: complex values are not supported")
+    arr = arr.astype(np.float64)
+    if arr.ndim == 0:
+        v = arr.reshape(1, 1)
+    elif arr.shape == (n_items,):
+        v = arr.reshape(n_items, 1)
+    else:
+        raise InputError(
+            f"{name}: array of shape {arr.shape} given; expected a scalar or one value "
+            f"per {unit}, shape ({n_items},)"
+        )
+    _validate(v, name, positive, None, unit)
+    return np.ascontiguousarray(v)
+
+
+def _validate(v, name, positive, points, unit):
+    bad = ~np.isfinite(v)
+    if bad.any():
+        _first_bad(v, bad, v.shape, name, "non-finite", points, unit)
+    if positive:
+        bad = v <= 0
+        if bad.any():
+            _first_bad(v, bad, v.shape, name, "non-positive", points, unit)
+
+
+def tensor_values(value, n_cells, dim, name):
+    """A constant (d, d) or per-cell (m, d, d) SPD tensor -> (1|m, d, d).
+
+    Returns ``None`` when ``value`` is not tensor-shaped (a scalar form).
+    """
+    if callable(value) or np.ndim(value) < 2:
+        return None
+    arr = np.asarray(value, dtype=np.float64)
+    if arr.shape == (dim, dim):
+        arr = arr.reshape(1, dim, dim)
+    elif arr.shape != (n_cells, dim, dim):
+        raise InputError(
+            f"{name}: tensor of shape {arr.shape} given; expected ({dim}, {dim}) or "
+            f"({n_cells}, {dim}, {dim})"
+        )
+    fin = np.isfinite(arr).all(axis=(1, 2))
+    if not fin.all():
+        c = int(np.flatnonzero(~fin)[0])
+        raise InputError(f"{name}: tensor of cell {c} has non-finite entries")
+    asym = np.abs(arr - arr.transpose(0, 2, 1)).max(axis=(1, 2))
+    scale = np.abs(arr).max(axis=(1, 2))
+    bad = asym > 1e-12 * np.maximum(scale, 1e-300)
+    if bad.any():
+        c = int(np.flatnonzero(bad)[0])
+        raise InputError(
+            f"{name}: tensor of cell {c} is not symmetric: {arr[c].tolist()}; "
+            "conductivity tensors must be symmetric positive definite"
+        )
+    lam = np.linalg.eigvalsh(arr).min(axis=1)
+    bad = lam <= 0
+    if bad.any():
+        c = int(np.flatnonzero(bad)[0])
+        raise InputError(
+            f"{name}: tensor of cell {c} is not positive definite (smallest eigenvalue "
+            f"{lam[c]:.3e}); conductivity tensors must be symmetric positive definite"
+        )
+    return np.ascontiguousarray(arr)

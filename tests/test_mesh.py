@@ -1,0 +1,371 @@
+"""Specification of the mesh (galerkit.mesh) and the mesh generators.
+
+Geometry and topology checks use independent facts: domain volumes, the
+Euler characteristic of a disc / ball (common practice), boundary facet counts
+of structured grids (counted by hand), and the mean-ratio shape quality that
+is 1 for the equilateral triangle and the regular tetrahedron (common
+practice, e.g. Liu & Joe, BIT 34, 1994; value from memory).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from galerkit import (
+    Mesh,
+    l_shaped_triangles,
+    refine_uniform,
+    structured_tetrahedra,
+    structured_triangles,
+)
+from galerkit.elements import REFERENCE_EDGES, REFERENCE_FACES, REFERENCE_FACETS
+from galerkit.errors import InputError, MeshError
+from galerkit.mesh import remove_unreferenced_vertices
+from galerkit.topology import enumerate_entities
+
+
+def signed_volumes(points, cells):
+    """Signed cell volumes, computed with numpy determinants (independent)."""
+    p = np.asarray(points, dtype=np.float64)
+    c = np.asarray(cells)
+    d = p.shape[1]
+    J = p[c[:, 1:]] - p[c[:, :1]]  # (m, d, d): rows are edge vectors
+    fact = 2.0 if d == 2 else 6.0
+    return np.linalg.det(J) / fact
+
+
+def n_entities(mesh, local):
+    ent, _, _, _ = enumerate_entities(mesh.cells, np.array(local), mesh.n_vertices)
+    return ent.shape[0]
+
+
+def euler_characteristic(mesh):
+    V, C = mesh.n_vertices, mesh.n_cells
+    E = n_entities(mesh, REFERENCE_EDGES[mesh.dim])
+    if mesh.dim == 2:
+        return V - E + C
+    F = n_entities(mesh, REFERENCE_FACES[3])
+    return V - E + F - C
+
+
+MESHES = {
+    "square 3x2": (lambda: structured_triangles(3, 2), 1.0),
+    "rectangle 4x3 on [-1,2]x[0,0.5]": (
+        lambda: structured_triangles(4, 3, (-1.0, 0.0), (2.0, 0.5)), 1.5),
+    "L-shape n=2": (lambda: l_shaped_triangles(2), 3.0),
+    "cube 2x2x2": (lambda: structured_tetrahedra(2, 2, 2), 1.0),
+    "box 2x1x3 on [0,2]x[0,1]x[0,3]": (
+        lambda: structured_tetrahedra(2, 1, 3, (0, 0, 0), (2.0, 1.0, 3.0)), 6.0),
+}
+
+
+# -- generated meshes: geometry and topology ---------------------------------------
+@pytest.mark.parametrize("name", list(MESHES))
+def test_generated_mesh_volume_equals_the_domain_volume(name):
+    make, volume = MESHES[name]
+    mesh = make()
+    assert abs(mesh.cell_volumes.sum() - volume) <= 1e-13 * volume
+    np.testing.assert_allclose(signed_volumes(mesh.points, mesh.cells), mesh.cell_volumes,
+                               rtol=1e-12)
+    assert mesh.n_reoriented == 0  # the generators emit positively oriented cells
+
+
+@pytest.mark.parametrize("name", list(MESHES))
+def test_refined_mesh_volume_equals_the_domain_volume(name):
+    make, volume = MESHES[name]
+    fine = refine_uniform(make())
+    assert abs(fine.cell_volumes.sum() - volume) <= 1e-13 * volume
+    assert np.all(signed_volumes(fine.points, fine.cells) > 0)
+
+
+@pytest.mark.parametrize("name", list(MESHES))
+def test_euler_characteristic_of_a_disc_or_ball_is_one(name):
+    # V - E + F = 1 for a triangulated disc, V - E + F - T = 1 for a ball
+    # (common practice: Euler-Poincare formula)
+    mesh = MESHES[name][0]()
+    assert euler_characteristic(mesh) == 1
+    assert euler_characteristic(refine_uniform(mesh)) == 1
+
+
+@pytest.mark.parametrize("nx,ny", [(1, 1), (3, 2), (5, 4)])
+def test_structured_triangles_have_2_nx_ny_cells_and_2_nx_plus_ny_boundary_edges(nx, ny):
+    mesh = structured_triangles(nx, ny)
+    assert mesh.n_vertices == (nx + 1) * (ny + 1)
+    assert mesh.n_cells == 2 * nx * ny
+    assert mesh.boundary_facets.shape == (2 * (nx + ny), 2)
+    assert mesh.n_facets == n_entities(mesh, REFERENCE_EDGES[2])
+
+
+@pytest.mark.parametrize("nx,ny,nz", [(1, 1, 1), (2, 3, 1), (2, 2, 3)])
+def test_structured_tetrahedra_have_6_nx_ny_nz_cells_and_4_sum_boundary_triangles(nx, ny, nz):
+    mesh = structured_tetrahedra(nx, ny, nz)
+    assert mesh.n_vertices == (nx + 1) * (ny + 1) * (nz + 1)
+    assert mesh.n_cells == 6 * nx * ny * nz
+    assert mesh.boundary_facets.shape == (4 * (nx * ny + ny * nz + nx * nz), 3)
+    assert mesh.n_facets == n_entities(mesh, REFERENCE_FACES[3])
+
+
+@pytest.mark.parametrize("name", list(MESHES))
+def test_boundary_facets_are_the_facets_of_their_cells_opposite_the_local_vertex(name):
+    mesh = MESHES[name][0]()
+    d = mesh.dim
+    local = np.array(REFERENCE_FACETS[d])
+    verts = np.sort(mesh.cells[mesh.boundary_facet_cells[:, None],
+                               local[mesh.boundary_facet_local]], axis=1)
+    np.testing.assert_array_equal(verts, mesh.boundary_facets)
+    # every facet appears once
+    assert len({tuple(f) for f in mesh.boundary_facets.tolist()}) == len(mesh.boundary_facets)
+
+
+def _box_tag_sizes(counts):
+    if len(counts) == 2:
+        nx, ny = counts
+        return {"left": ny, "right": ny, "bottom": nx, "top": nx}
+    nx, ny, nz = counts
+    return {"left": 2 * ny * nz, "right": 2 * ny * nz, "bottom": 2 * nx * nz,
+            "top": 2 * nx * nz, "front": 2 * nx * ny, "back": 2 * nx * ny}
+
+
+@pytest.mark.parametrize("counts", [(3, 2), (2, 3, 1)])
+def test_side_tags_have_the_right_sizes_and_lie_on_their_side(counts):
+    lower = (-1.0, 0.5, 2.0)[: len(counts)]
+    upper = (1.0, 2.0, 2.5)[: len(counts)]
+    if len(counts) == 2:
+        mesh = structured_triangles(*counts, lower, upper)
+    else:
+        mesh = structured_tetrahedra(*counts, lower, upper)
+    sizes = _box_tag_sizes(counts)
+    sides = [("left", "right"), ("bottom", "top"), ("front", "back")]
+    for axis in range(mesh.dim):
+        for name, value in zip(sides[axis], (lower[axis], upper[axis])):
+            ids = mesh.facet_tags[name]
+            assert len(ids) == sizes[name], name
+            x = mesh.points[mesh.boundary_facets[ids]]  # (k, d, dim)
+            np.testing.assert_allclose(x[..., axis], value, rtol=0, atol=1e-14)
+
+
+@pytest.mark.parametrize("name", list(MESHES))
+def test_side_tags_partition_the_boundary_and_boundary_tag_covers_it(name):
+    mesh = MESHES[name][0]()
+    k = mesh.boundary_facets.shape[0]
+    np.testing.assert_array_equal(mesh.facet_tags["boundary"], np.arange(k))
+    sides = [t for t in mesh.facet_tags if t != "boundary"]
+    ids = np.concatenate([mesh.facet_tags[t] for t in sides])
+    assert len(ids) == k, "side tags overlap or miss facets"
+    np.testing.assert_array_equal(np.sort(ids), np.arange(k))
+
+
+def test_l_shape_tags_include_the_two_reentrant_edges_meeting_at_the_origin():
+    n = 3
+    mesh = l_shaped_triangles(n)
+    sizes = {"left": 2 * n, "right": n, "bottom": n, "top": 2 * n, "reentrant": 2 * n}
+    assert {t: len(mesh.facet_tags[t]) for t in sizes} == sizes
+    x = mesh.points[mesh.boundary_facets[mesh.facet_tags["reentrant"]]]
+    on_x0 = np.all(np.abs(x[..., 0]) < 1e-14, axis=1) & np.all(x[..., 1] <= 1e-14, axis=1)
+    on_y0 = np.all(np.abs(x[..., 1]) < 1e-14, axis=1) & np.all(x[..., 0] >= -1e-14, axis=1)
+    assert np.all(on_x0 | on_y0)
+    assert on_x0.sum() == n and on_y0.sum() == n
+
+
+def test_tag_boundary_selects_facets_whose_midpoints_satisfy_the_predicate():
+    mesh = structured_triangles(4, 3)
+    ids = mesh.tag_boundary("outlet", lambda x: x[0] > 1 - 1e-12)
+    assert len(ids) == 3
+    np.testing.assert_array_equal(mesh.facet_tags["outlet"], ids)
+    np.testing.assert_allclose(mesh.facet_midpoints(ids)[0], 1.0)
+    np.testing.assert_array_equal(ids, mesh.facet_tags["right"])
+    # replacing a tag of the same name
+    ids2 = mesh.tag_boundary("outlet", lambda x: (x[0] > 1 - 1e-12) & (x[1] < 0.6))
+    assert len(ids2) == 2 and len(mesh.tagged_facets("outlet")) == 2
+
+
+def test_tag_boundary_with_a_bad_predicate_raises_mesh_error():
+    mesh = structured_triangles(2, 2)
+    with pytest.raises(MeshError, match="boolean array of shape"):
+        mesh.tag_boundary("x", lambda x: x[0])
+    with pytest.raises(MeshError, match="boolean array of shape"):
+        mesh.tag_boundary("x", lambda x: np.ones(3, dtype=bool))
+    with pytest.raises(MeshError, match="selects no boundary facet"):
+        mesh.tag_boundary("x", lambda x: x[0] > 2)
+
+
+def test_facet_tag_errors_name_the_tag_and_the_bad_id():
+    mesh = structured_triangles(2, 2)
+    with pytest.raises(MeshError, match=r"facet id 8 is outside 0\.\.7"):
+        mesh.set_facet_tag("bad", [0, 8])
+    with pytest.raises(MeshError, match=r"no facet tag 'nope'.*known tags"):
+        mesh.tagged_facets("nope")
+    with pytest.raises(MeshError, match="non-empty"):
+        mesh.set_facet_tag("", [0])
+
+
+def test_mesh_arrays_are_read_only_float64_points_and_int32_cells():
+    mesh = structured_tetrahedra(1, 1, 1)
+    assert mesh.points.dtype == np.float64 and mesh.cells.dtype == np.int32
+    assert mesh.points.flags.c_contiguous and mesh.cells.flags.c_contiguous
+    for a in (mesh.points, mesh.cells, mesh.cell_volumes, mesh.boundary_facets):
+        assert not a.flags.writeable
+
+
+# -- bad input ---------------------------------------------------------------------
+SQ_POINTS = np.array([[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [1.0, 1.0], [2.0, 0.5]])
+SQ_CELLS = np.array([[0, 1, 2], [1, 3, 2], [1, 4, 3]])
+
+
+def test_the_reference_square_is_valid():
+    mesh = Mesh(SQ_POINTS, SQ_CELLS)
+    assert mesh.n_cells == 3 and mesh.n_reoriented == 0
+
+
+def test_mesh_error_is_an_input_error_and_a_value_error():
+    assert issubclass(MeshError, InputError) and issubclass(MeshError, ValueError)
+
+
+def test_index_out_of_range_names_the_first_offending_cell():
+    cells = SQ_CELLS.copy()
+    cells[1, 2] = 7
+    cells[2, 0] = 99
+    with pytest.raises(MeshError, match=r"cell 1 has vertex indices \[1, 3, 7\] outside "
+                                        r"0\.\.4 \(2 such cells\)"):
+        Mesh(SQ_POINTS, cells)
+
+
+def test_negative_index_names_the_first_offending_cell():
+    cells = SQ_CELLS.copy()
+    cells[2, 1] = -1
+    with pytest.raises(MeshError, match=r"cell 2 has vertex indices \[1, -1, 3\] outside"):
+        Mesh(SQ_POINTS, cells)
+
+
+@pytest.mark.parametrize("bad", [np.nan, np.inf, -np.inf])
+def test_non_finite_coordinate_names_the_first_offending_vertex(bad):
+    pts = SQ_POINTS.copy()
+    pts[3, 1] = bad
+    pts[4, 0] = np.nan
+    with pytest.raises(MeshError, match=r"vertex 3 has a non-finite coordinate.*\(2 such vertices\)"):
+        Mesh(pts, SQ_CELLS)
+
+
+def test_degenerate_cell_names_the_first_offending_cell():
+    pts = np.vstack([SQ_POINTS, [[3.0, 1.0]]])
+    cells = np.vstack([SQ_CELLS, [[4, 5, 3]]])
+    pts[5] = 2 * pts[4] - pts[3]  # collinear with vertices 3 and 4: zero area
+    with pytest.raises(MeshError, match=r"cell 3 \(vertices \[4, 5, 3\]\) is degenerate"):
+        Mesh(pts, cells)
+
+
+def test_degenerate_tetrahedron_is_rejected():
+    pts = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0.3, 0.3, 0.0]])
+    with pytest.raises(MeshError, match=r"cell 0 .* is degenerate"):
+        Mesh(pts, [[0, 1, 2, 3]])
+
+
+@pytest.mark.parametrize(
+    "cells,pattern",
+    [
+        (np.array([[0, 1, 2, 3]]), r"triangles \(m, 3\) for 2D points, got shape \(1, 4\)"),
+        (np.array([0, 1, 2]), r"got shape \(3,\)"),
+        (np.zeros((0, 3), dtype=np.int64), "no cells"),
+    ],
+)
+def test_cells_of_the_wrong_shape_raise_mesh_error(cells, pattern):
+    with pytest.raises(MeshError, match=pattern):
+        Mesh(SQ_POINTS, cells)
+
+
+def test_float_cells_raise_mesh_error_suggesting_a_conversion():
+    with pytest.raises(MeshError, match=r"integer array.*astype"):
+        Mesh(SQ_POINTS, SQ_CELLS.astype(np.float64))
+
+
+@pytest.mark.parametrize("points", [np.arange(5.0), np.zeros((5, 1)), np.zeros((5, 4))])
+def test_points_that_are_not_2d_or_3d_raise_mesh_error(points):
+    with pytest.raises(MeshError, match=r"shape \(n_vertices, 2\) or \(n_vertices, 3\)"):
+        Mesh(points, SQ_CELLS)
+
+
+def test_unreferenced_vertex_names_the_vertex_and_the_fix():
+    pts = np.vstack([SQ_POINTS, [[5.0, 5.0]]])
+    with pytest.raises(MeshError, match=r"vertex 5 belongs to no cell.*remove_unreferenced_vertices"):
+        Mesh(pts, SQ_CELLS)
+    p2, c2, old_to_new = remove_unreferenced_vertices(pts, SQ_CELLS)
+    assert Mesh(p2, c2).n_vertices == 5 and old_to_new[5] == -1
+
+
+def test_repeated_vertex_in_a_cell_names_the_cell():
+    cells = SQ_CELLS.copy()
+    cells[1] = [1, 3, 1]
+    with pytest.raises(MeshError, match=r"cell 1 repeats a vertex \[1, 3, 1\]"):
+        Mesh(SQ_POINTS, cells)
+
+
+def test_three_triangles_sharing_one_edge_are_non_manifold():
+    pts = np.array([[0.0, 0.0], [1.0, 0.0], [0.5, 1.0], [0.5, -1.0], [0.2, 2.0]])
+    cells = np.array([[0, 1, 2], [1, 0, 3], [0, 1, 4]])
+    with pytest.raises(MeshError, match=r"facet with vertices \[0, 1\] is shared by 3 cells"):
+        Mesh(pts, cells)
+
+
+# -- orientation --------------------------------------------------------------------
+@pytest.mark.parametrize("make", [lambda: structured_triangles(3, 3),
+                                  lambda: structured_tetrahedra(2, 2, 1)])
+def test_negatively_oriented_cells_are_reoriented_and_counted(make):
+    ref = make()
+    cells = np.array(ref.cells)
+    flip = np.zeros(len(cells), dtype=bool)
+    flip[::3] = True
+    cells[flip, 0], cells[flip, 1] = cells[flip, 1].copy(), cells[flip, 0].copy()
+    assert np.all(signed_volumes(ref.points, cells)[flip] < 0)
+    mesh = Mesh(ref.points, cells)
+    assert mesh.n_reoriented == int(flip.sum())
+    assert mesh.quality().n_reoriented == int(flip.sum())
+    assert np.all(mesh.cell_volumes > 0)
+    # the stored cells are really re-oriented, not just given |volume|
+    np.testing.assert_allclose(signed_volumes(mesh.points, mesh.cells), mesh.cell_volumes,
+                               rtol=1e-12)
+    # same cells as vertex sets, same geometry
+    np.testing.assert_array_equal(np.sort(mesh.cells, axis=1), np.sort(ref.cells, axis=1))
+    assert abs(mesh.cell_volumes.sum() - ref.cell_volumes.sum()) <= 1e-14
+    np.testing.assert_array_equal(mesh.boundary_facets, ref.boundary_facets)
+
+
+# -- quality ---------------------------------------------------------------------------
+def test_equilateral_triangle_has_shape_quality_one():
+    pts = [[0.0, 0.0], [1.0, 0.0], [0.5, np.sqrt(3) / 2]]
+    q = Mesh(pts, [[0, 1, 2]]).quality()
+    assert abs(q.min_shape_quality - 1.0) <= 1e-14
+    assert abs(q.max_shape_quality - 1.0) <= 1e-14
+
+
+def test_regular_tetrahedron_has_shape_quality_one():
+    pts = [[1, 1, 1], [1, -1, -1], [-1, 1, -1], [-1, -1, 1]]
+    q = Mesh(pts, [[0, 1, 2, 3]]).quality()
+    assert q.n_reoriented in (0, 1)
+    assert abs(q.min_shape_quality - 1.0) <= 1e-14
+
+
+@pytest.mark.parametrize(
+    "pts,cells",
+    [
+        ([[0.0, 0.0], [1.0, 0.0], [0.5, 0.01]], [[0, 1, 2]]),
+        ([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0.3, 0.3, 0.01]], [[0, 1, 2, 3]]),
+    ],
+    ids=["triangle", "tetrahedron"],
+)
+def test_flat_cell_has_shape_quality_below_one_tenth(pts, cells):
+    q = Mesh(pts, cells).cell_quality()
+    assert 0 < q[0] < 0.1
+
+
+def test_quality_summary_counts_and_ranges():
+    mesh = structured_triangles(2, 3)
+    q = mesh.quality()
+    assert (q.n_vertices, q.n_cells, q.n_boundary_facets) == (12, 12, 10)
+    assert abs(q.min_volume - 1 / 12) <= 1e-15 and abs(q.max_volume - 1 / 12) <= 1e-15
+    assert abs(q.volume_ratio - 1.0) <= 1e-12
+    # right isosceles triangle: 4 sqrt(3) A / sum l^2 = sqrt(3)/2 (scale free)
+    mesh = structured_triangles(2, 2)
+    np.testing.assert_allclose(mesh.cell_quality(), np.sqrt(3) / 2, rtol=1e-14)
+    q = mesh.quality()
+    assert q.min_shape_quality <= q.mean_shape_quality <= q.max_shape_quality <= 1.0
