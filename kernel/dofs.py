@@ -210,7 +210,14 @@ class Discretization:
             Wrong shape returned, or non-finite values (the first dof named).
         """
         if np.isscalar(func):
-            val = float(func)
+            # np.isscalar is also True for str and complex: report those as
+            # InputError rather than letting float() raise a bare error.
+            try:
+                val = float(func)
+            except (TypeError, ValueError):
+                raise InputError(
+                    f"interpolate: expected a callable or a real number, got {func!r}"
+                ) from None
             if not np.isfinite(val):
                 raise InputError(f"interpolate: the constant {func!r} is not finite")
             return np.full(self.n_dofs, val)

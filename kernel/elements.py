@@ -101,9 +101,14 @@ class LagrangeElement:
     """
 
     def __init__(self, dim: int, degree: int):
-        if dim not in (2, 3):
+        # integers only: 2.0 and True pass a plain ``in`` test (2.0 == 2,
+        # True == 1) and then fail later with a bare TypeError or a bool degree.
+        def _is_int(v):
+            return isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
+
+        if not _is_int(dim) or dim not in (2, 3):
             raise InputError(f"Lagrange element: dim must be 2 or 3, got {dim!r}")
-        if degree not in SUPPORTED_DEGREES:
+        if not _is_int(degree) or degree not in SUPPORTED_DEGREES:
             raise InputError(
                 f"Lagrange element: degree {degree!r} is not supported; "
                 f"choose one of {SUPPORTED_DEGREES}"
@@ -209,7 +214,7 @@ class LagrangeElement:
         return np.ascontiguousarray(dl[:, :, 1:] - dl[:, :, :1])
 
 
-@lru_cache(maxsize=None)
+@lru_cache(maxsize=None, typed=True)  # typed: (2, 2.0) must not hit the (2, 2) entry
 def lagrange_element(dim: int, degree: int) -> LagrangeElement:
     """Cached :class:`LagrangeElement` (elements are immutable)."""
     return LagrangeElement(dim, degree)

@@ -37,17 +37,17 @@ def invert(J, Jinv):
         return det
     a, b, c = J[0, 0], J[0, 1], J[0, 2]
     e, f, g = J[1, 0], J[1, 1], J[1, 2]
-    h, i, k = J[2, 0], J[2, 1], J[2, 2]
-    A = f * k - g * i
+    h, i_, k = J[2, 0], J[2, 1], J[2, 2]
+    A = f * k - g * i_
     B = g * h - e * k
-    C = e * i - f * h
+    C = e * i_ - f * h
     det = a * A + b * B + c * C
     Jinv[0, 0] = A / det
     Jinv[1, 0] = B / det
     Jinv[2, 0] = C / det
-    Jinv[0, 1] = (c * i - b * k) / det
+    Jinv[0, 1] = (c * i_ - b * k) / det
     Jinv[1, 1] = (a * k - c * h) / det
-    Jinv[2, 1] = (b * h - a * i) / det
+    Jinv[2, 1] = (b * h - a * i_) / det
     Jinv[0, 2] = (b * g - c * f) / det
     Jinv[1, 2] = (c * e - a * g) / det
     Jinv[2, 2] = (a * f - b * e) / det

@@ -206,13 +206,13 @@ def test_lagrange_element_is_cached_and_is_a_lagrange_element():
 
 
 # -- bad input ---------------------------------------------------------------------
-@pytest.mark.parametrize("dim", [1, 4, 0])
+@pytest.mark.parametrize("dim", [1, 4, 0, 2.0, "3"])
 def test_unsupported_dimension_raises_input_error(dim):
     with pytest.raises(InputError, match="dim"):
         LagrangeElement(dim, 1)
 
 
-@pytest.mark.parametrize("degree", [0, 5, -1, 1.5])
+@pytest.mark.parametrize("degree", [0, 5, -1, 1.5, 2.0, True, "2"])
 def test_unsupported_degree_raises_input_error_listing_the_choices(degree):
     with pytest.raises(InputError, match=r"degree .* not supported"):
         LagrangeElement(2, degree)
