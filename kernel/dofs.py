@@ -186,7 +186,10 @@ class Discretization:
         elif isinstance(tag, str):
             ids = mesh.tagged_facets(tag)
         else:
-            ids = np.unique(np.concatenate([mesh.tagged_facets(t) for t in tag]))
+            tags = list(tag)
+            if not tags:
+                raise InputError("boundary_dofs: empty list of tags; pass None for the whole boundary")
+            ids = np.unique(np.concatenate([mesh.tagged_facets(t) for t in tags]))
         cells = mesh.boundary_facet_cells[ids]
         local = self.element.facet_nodes[mesh.boundary_facet_local[ids]]
         dofs = np.take_along_axis(self.cell_dofs[cells], local, axis=1)

@@ -12,6 +12,7 @@ import numpy as np
 
 from .errors import InputError
 from .mesh import Mesh, remove_unreferenced_vertices
+from .topology import index_dtype
 
 __all__ = ["structured_triangles", "structured_tetrahedra", "l_shaped_triangles"]
 
@@ -117,20 +118,23 @@ def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.
     pts = _grid_points((nx, ny, nz), lo, hi)
     sx, sy = 1, nx + 1
     sz = (nx + 1) * (ny + 1)
-    k, j, i = np.meshgrid(np.arange(nz), np.arange(ny), np.arange(nx), indexing="ij")
-    v000 = (i * sx + j * sy + k * sz).ravel()
+    idt = index_dtype(pts.shape[0])
+    v000 = (np.arange(nx, dtype=idt)[None, None, :] + sy * np.arange(ny, dtype=idt)[None, :, None]
+            + sz * np.arange(nz, dtype=idt)[:, None, None]).ravel()
     step = (sx, sy, sz)
     # the six axis orderings; odd ones get their last two vertices swapped so
     # that every tetrahedron is positively oriented
     perms = [((0, 1, 2), False), ((1, 2, 0), False), ((2, 0, 1), False),
              ((0, 2, 1), True), ((2, 1, 0), True), ((1, 0, 2), True)]
-    cells = np.empty((6 * v000.size, 4), dtype=np.int64)
+    cells = np.empty((v000.size, 6, 4), dtype=idt)
     for t, (p, odd) in enumerate(perms):
         a = v000 + step[p[0]]
         b = a + step[p[1]]
         c = b + step[p[2]]
         cols = [v000, a, c, b] if odd else [v000, a, b, c]
-        cells[t::6] = np.stack(cols, axis=1)
+        for j, col in enumerate(cols):
+            cells[:, t, j] = col
+    cells = cells.reshape(-1, 4)
     mesh = Mesh(pts, cells)
     return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny, nz))
 

@@ -305,7 +305,8 @@ class Mesh:
     @cached_property
     def _facet_topology(self):
         local = np.array(REFERENCE_FACETS[self.dim], dtype=np.int64)
-        ent, cell_ent, mult, first = enumerate_entities(self.cells, local, self.n_vertices)
+        ent, _, mult, first = enumerate_entities(self.cells, local, self.n_vertices,
+                                                 with_cell_entities=False)
         if (mult > 2).any():
             i = int(np.flatnonzero(mult > 2)[0])
             raise MeshError(

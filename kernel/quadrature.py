@@ -129,7 +129,8 @@ def _tet4():
 CLASSICAL_RULES = {
     (1, 1): lambda: (np.array([[0.5]]), np.array([1.0])),
     (2, 1): lambda: (np.array([[1 / 3, 1 / 3]]), np.array([0.5])),
-    # Edge-interior 3-point rule, degree 2 (Strang & Fix 1973, table 4.1).
+    # Interior 3-point rule at barycentric (2/3, 1/6, 1/6), degree 2 (Strang & Fix
+    # 1973, table 4.1; recalled from memory, checked by the monomial tests).
     (2, 2): lambda: _sym_tri([(1 / 3, (2 / 3, 1 / 6, 1 / 6))]),
     (2, 5): _radon7,
     (3, 1): lambda: (np.array([[0.25, 0.25, 0.25]]), np.array([1 / 6])),

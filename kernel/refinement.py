@@ -99,7 +99,9 @@ def _carry_tags(coarse: Mesh, fine: Mesh, vertex_parents, n_children):
     order = np.argsort(key_coarse)
     pos = np.searchsorted(key_coarse[order], key_fine)
     coarse_facet = order[pos]
-    assert np.array_equal(key_coarse[coarse_facet], key_fine), "refinement: facet map broken"
+    if not np.array_equal(key_coarse[coarse_facet], key_fine):
+        raise RuntimeError("refine_uniform: a child boundary facet has no parent boundary "
+                           "facet (internal error; please report with the mesh)")
     in_tag = np.zeros(coarse.boundary_facets.shape[0], dtype=bool)
     for name, ids in coarse.facet_tags.items():
         in_tag[:] = False

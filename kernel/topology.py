@@ -78,29 +78,44 @@ def _sorted_tuple(cells, c, local, e, out):
         out[j + 1] = v
 
 
-@nb.njit(cache=True)
-def _bucket(cells, local, n_vertices, offsets, occ, keys):
+@nb.njit(cache=True, parallel=True)
+def _bucket(cells, local, n_vertices, n_chunks, offsets, occ, keys):
+    """Counting sort of all occurrences by smallest vertex, chunk-parallel.
+
+    Chunks are contiguous cell ranges, so the order inside each bucket is the
+    global cell order whatever the number of chunks.
+    """
     m = cells.shape[0]
     ne, ev = local.shape
-    t = np.empty(ev, dtype=np.int64)
-    for c in range(m):
-        for e in range(ne):
-            _sorted_tuple(cells, c, local, e, t)
-            offsets[t[0] + 1] += 1
-    for i in range(n_vertices):
-        offsets[i + 1] += offsets[i]
-    fill = offsets[:-1].copy()
-    for c in range(m):
-        for e in range(ne):
-            _sorted_tuple(cells, c, local, e, t)
-            # the remaining vertices as one int64 key (n_vertices < 2**31)
-            key = 0
-            for j in range(1, ev):
-                key = key * n_vertices + t[j]
-            pos = fill[t[0]]
-            occ[pos] = c * ne + e
-            keys[pos] = key
-            fill[t[0]] += 1
+    per = (m + n_chunks - 1) // n_chunks
+    counts = np.zeros((n_chunks, n_vertices), dtype=np.int64)
+    for t in nb.prange(n_chunks):
+        tup = np.empty(ev, dtype=np.int64)
+        for c in range(t * per, min(m, (t + 1) * per)):
+            for e in range(ne):
+                _sorted_tuple(cells, c, local, e, tup)
+                counts[t, tup[0]] += 1
+    running = 0
+    for v in range(n_vertices):
+        offsets[v] = running
+        for t in range(n_chunks):
+            cnt = counts[t, v]
+            counts[t, v] = running
+            running += cnt
+    offsets[n_vertices] = running
+    for t in nb.prange(n_chunks):
+        tup = np.empty(ev, dtype=np.int64)
+        for c in range(t * per, min(m, (t + 1) * per)):
+            for e in range(ne):
+                _sorted_tuple(cells, c, local, e, tup)
+                # the remaining vertices as one int64 key (n_vertices < 2**31)
+                key = 0
+                for j in range(1, ev):
+                    key = key * n_vertices + tup[j]
+                pos = counts[t, tup[0]]
+                occ[pos] = c * ne + e
+                keys[pos] = key
+                counts[t, tup[0]] = pos + 1
 
 
 @nb.njit(cache=True, parallel=True)
@@ -148,10 +163,12 @@ def _assign(cells, local, offsets, occ, keys, base, entities, cell_entities,
                 multiplicity[eid] = 0
                 first[eid] = o
             multiplicity[eid] += 1
-            cell_entities[c, e] = eid
+            if cell_entities.shape[0] > 0:
+                cell_entities[c, e] = eid
 
 
-def enumerate_entities(cells: np.ndarray, local: np.ndarray, n_vertices: int):
+def enumerate_entities(cells: np.ndarray, local: np.ndarray, n_vertices: int, *,
+                       with_cell_entities: bool = True):
     """Number the distinct sub-entities (edges, faces) of a cell table.
 
     Parameters
@@ -168,7 +185,8 @@ def enumerate_entities(cells: np.ndarray, local: np.ndarray, n_vertices: int):
     entities : ndarray, shape (E, n_entity_vertices), same dtype as cells
         Sorted vertex tuples, rows in lexicographic order.
     cell_entities : ndarray, shape (m, n_entities_per_cell)
-        Global entity id of each local entity.
+        Global entity id of each local entity (shape (0, n) when
+        ``with_cell_entities`` is False, which saves time and memory).
     multiplicity : ndarray, shape (E,), int32
         Number of cells sharing the entity (for facets: 1 boundary,
         2 interior, more is non-manifold).
@@ -184,14 +202,15 @@ def enumerate_entities(cells: np.ndarray, local: np.ndarray, n_vertices: int):
     offsets = np.zeros(n_vertices + 1, dtype=np.int64)
     occ = np.empty(m * ne, dtype=index_dtype(m * ne))
     keys = np.empty(m * ne, dtype=np.int64)
-    _bucket(cells, local, n_vertices, offsets, occ, keys)
+    n_chunks = max(1, min(nb.get_num_threads(), m))
+    _bucket(cells, local, n_vertices, n_chunks, offsets, occ, keys)
     n_unique = np.zeros(n_vertices + 1, dtype=np.int64)
     _sort_and_count(offsets, occ, keys, n_unique)
     base = np.cumsum(n_unique)
     n_entities = int(base[-1])
     idt = index_dtype(max(n_entities, n_vertices))
     entities = np.empty((n_entities, ev), dtype=cells.dtype)
-    cell_entities = np.empty((m, ne), dtype=idt)
+    cell_entities = np.empty((m if with_cell_entities else 0, ne), dtype=idt)
     multiplicity = np.empty(n_entities, dtype=np.int32)
     first = np.empty(n_entities, dtype=np.int64)
     _assign(cells, local, offsets, occ, keys, base, entities, cell_entities, multiplicity, first)

@@ -90,9 +90,17 @@ def simplex_integral(expr, dim):
     return sum((c * _monomial_simplex_integral(m) for m, c in poly.terms()), sy.Integer(0))
 
 
+@lru_cache(maxsize=None)
+def _monomial_box_integral(exponents):
+    """sympy.integrate of a monomial over the unit square / cube."""
+    mono = sy.Mul(*[SX[r] ** e for r, e in enumerate(exponents)])
+    return sy.integrate(mono, *[(SX[r], 0, 1) for r in range(len(exponents))])
+
+
 def box_integral(expr, dim):
-    """Exact integral over the unit square / cube (sympy.integrate)."""
-    return sy.integrate(sy.expand(expr), *[(SX[r], 0, 1) for r in range(dim)])
+    """Exact integral of a polynomial over the unit square / cube (SymPy)."""
+    poly = sy.Poly(sy.expand(expr), *SX[:dim])
+    return sum((c * _monomial_box_integral(m) for m, c in poly.terms()), sy.Integer(0))
 
 
 def sym_gradient(f, dim):
@@ -180,6 +188,8 @@ def test_simplex_integral_helper_matches_sympy_integrate_and_stroud():
     x, y, z = SX
     e = x**2 * y + 3 * x * y**2 - y
     assert simplex_integral(e, 2) == sy.integrate(e, (y, 0, 1 - x), (x, 0, 1))
+    e3 = x**2 * y * z + 2 * z**3 - x
+    assert box_integral(e3, 3) == sy.integrate(e3, (x, 0, 1), (y, 0, 1), (z, 0, 1))
     for a, b, c in [(0, 0, 0), (2, 1, 0), (1, 1, 3)]:
         stroud = sy.Rational(sy.factorial(a) * sy.factorial(b) * sy.factorial(c),
                              sy.factorial(a + b + c + 3))
