@@ -764,10 +764,13 @@ class Assembler:
             _generic_vector(mesh.points, mesh.cells, disc.cell_dofs, self.order, rows, cells,
                             1, Mref, np.zeros((1, 1)), f, b)
             return b
-        if arr is not None and arr.ndim == 1 and arr.shape != (mesh.n_cells,):
+        if arr is not None and arr.ndim >= 1:
+            # per-cell source values are refused: with n_cells == n_dofs they could not
+            # be told from a dof vector, and a silent misreading is a wrong answer
             raise InputError(
-                f"source: array of shape {arr.shape}; expected a dof vector ({disc.n_dofs},), "
-                f"per-cell values ({mesh.n_cells},), a number or a callable"
+                f"source: array of shape {arr.shape}; expected a dof vector of shape "
+                f"({disc.n_dofs},), a number or a callable (for piecewise-constant sources "
+                "use a callable of x)"
             )
         deg = self.quadrature_degree if quadrature_degree is None else quadrature_degree
         coef, rule = self._cell_coefficient(source, "source", False, deg)
@@ -833,7 +836,8 @@ class Assembler:
             else quadrature_degree
         fcells, flocal, facet_local, refm, frule, V, coef = self._facet_setup(
             tag, coefficient, "boundary coefficient", deg)
-        R = np.ascontiguousarray(np.einsum("q,fqa,fqb->fqab", frule.weights, V, V))
+        R = np.einsum("q,fqa,fqb->fqab", frule.weights, V, V)
+        R = np.ascontiguousarray(0.5 * (R + R.transpose(0, 1, 3, 2)))  # exactly symmetric
         data, out = self._new_matrix(out, zero=True)
         _boundary_matrix(self.mesh.points, self.mesh.cells, self.disc.cell_dofs, fcells, flocal,
                          facet_local, refm, R, coef, self.indptr, self.indices, data)
@@ -846,8 +850,8 @@ class Assembler:
         ----------
         tag : str
         flux : float, ndarray (n_tagged_facets,) or callable
-            Outward... rather: the prescribed flux value ``g`` entering the
-            weak form as ``+ integral(g v)``.
+            The prescribed flux ``g`` into the domain, entering the weak form
+            as ``+ integral(g v)``.
         out : ndarray (n_dofs,), optional
 
         Returns

@@ -20,7 +20,6 @@ References used below (each test names its own):
 
 from __future__ import annotations
 
-import itertools
 from functools import lru_cache
 
 import numba
@@ -380,6 +379,42 @@ def test_matches_vectorised_coo_reference_on_perturbed_mesh(dim, k):
     K_ref, M_ref = reference_matrices(disc, conductivity=kap, coefficient=cof)
     assert rel_diff(asm.stiffness(kap), K_ref) <= 1e-12
     assert rel_diff(asm.mass(cof), M_ref) <= 1e-12
+
+
+@pytest.mark.parametrize("dim,k", [(2, 1), (2, 3), (3, 1), (3, 2)])
+def test_matches_coo_reference_with_shuffled_numbering(dim, k):
+    # vertices and cells in random order: no locality for the row-range
+    # scatter to rely on; values and thread independence must not change
+    base = small_mesh(dim, 5 if dim == 2 else 3)
+    rng = np.random.default_rng(50 + k)
+    perm = rng.permutation(base.n_vertices)
+    cells = np.argsort(perm)[base.cells][rng.permutation(base.n_cells)]
+    mesh = Mesh(base.points[perm], cells)
+    disc = Discretization(mesh, k)
+    asm = Assembler(disc)
+    K_ref, M_ref = reference_matrices(disc)
+    assert rel_diff(asm.stiffness(), K_ref) <= 1e-12
+    assert rel_diff(asm.mass(), M_ref) <= 1e-12
+    if numba.config.NUMBA_NUM_THREADS >= 2:
+        saved = numba.get_num_threads()
+        try:
+            numba.set_num_threads(1)
+            one = [asm.stiffness().data.tobytes(), asm.mass().data.tobytes()]
+            numba.set_num_threads(2)
+            two = [asm.stiffness().data.tobytes(), asm.mass().data.tobytes()]
+        finally:
+            numba.set_num_threads(saved)
+        assert one == two
+
+
+def test_p4_tetrahedra_long_rows_match_coo_reference():
+    # P4 rows exceed 256 entries here: the wider position-map type is used
+    disc = Discretization(structured_tetrahedra(3, 3, 3), 4)
+    asm = Assembler(disc)
+    assert np.diff(asm.indptr).max() > 256
+    K_ref, M_ref = reference_matrices(disc)
+    assert rel_diff(asm.stiffness(), K_ref) <= 1e-12
+    assert rel_diff(asm.mass(), M_ref) <= 1e-12
 
 
 # ----------------------------------------------------------------------------

@@ -1,0 +1,1 @@
+"""asv benchmark suite of galerkit (see README.md here)."""
