@@ -95,11 +95,16 @@ class DirichletElimination:
     def __init__(self, A, dofs):
         A = sp.csr_array(A)
         n = A.shape[0]
-        dofs = np.unique(np.asarray(dofs, dtype=np.int64))
+        # Fix: remember the dofs in the order given, so that values given in
+        # that order (the documented "any order") land on the right dofs; the
+        # sorted unique order was silently assumed before.
+        given = np.asarray(dofs, dtype=np.int64).ravel()
+        dofs = np.unique(given)
         if dofs.size and (dofs[0] < 0 or dofs[-1] >= n):
             raise InputError(f"Dirichlet dofs must lie in 0..{n - 1}, got {dofs[[0, -1]].tolist()}")
         self.n = n
         self.dofs = dofs
+        self._given = given
         new_index = np.zeros(n, dtype=np.int64)
         new_index[dofs] = -1
         free = np.flatnonzero(new_index == 0)
@@ -118,9 +123,31 @@ class DirichletElimination:
         return self.free.size
 
     def _check(self, A):
-        if A.shape != (self.n, self.n) or not (A.indptr is self._indptr or np.array_equal(
-                A.indptr, self._indptr)):
+        # Fix: compare the column indices too (and require CSR); a matrix with
+        # the same row lengths but other columns passed before and was reduced
+        # to garbage.
+        if not (sp.issparse(A) and A.format == "csr") or A.shape != (self.n, self.n) or not (
+                (A.indptr is self._indptr or np.array_equal(A.indptr, self._indptr))
+                and (A.indices is self._indices or np.array_equal(A.indices, self._indices))):
             raise InputError("DirichletElimination: the matrix is not on the pattern it was built for")
+
+    def _full_values(self, values):
+        """Dirichlet values as a full vector (zero on free dofs).
+
+        ``values``: a number, one value per dof in the order the dofs were
+        given, or one per sorted unique Dirichlet dof (``self.dofs``).
+        """
+        g_full = np.zeros(self.n)
+        v = np.asarray(values, dtype=np.float64)
+        if v.ndim == 0 or v.shape == (self._given.size,):
+            g_full[self._given] = v
+        elif v.shape == (self.dofs.size,):
+            g_full[self.dofs] = v
+        else:
+            raise InputError(
+                f"DirichletElimination: expected {self._given.size} Dirichlet values (one per "
+                f"dof given), got shape {v.shape}")
+        return g_full
 
     def reduce_matrix(self, A, out=None):
         """``A_ff`` as a CSR array (in place into ``out`` when given)."""
@@ -132,17 +159,27 @@ class DirichletElimination:
                              shape=(self.n_free, self.n_free), copy=False)
             R.has_sorted_indices = True
             return R
+        # Fix: validate out= before the kernel writes into it (a too small
+        # data array was written past its end)
+        if not (sp.issparse(out) and out.format == "csr" and out.shape == (self.n_free, self.n_free)
+                and out.data.dtype == np.float64 and out.data.flags.c_contiguous
+                and out.data.flags.writeable and out.data.shape == self._src.shape
+                and np.array_equal(out.indptr, self.reduced_indptr)
+                and np.array_equal(out.indices, self.reduced_indices)):
+            raise InputError("DirichletElimination: out= must be a matrix returned earlier by "
+                             "reduce_matrix of this elimination (same reduced pattern, float64 data)")
         _gather(A.data, self._src, out.data)
         return out
 
     def reduce_rhs(self, A, b, values):
         """``b_f - A_fd g`` for Dirichlet values ``g`` (one per Dirichlet dof)."""
         self._check(A)
-        g_full = np.zeros(self.n)
-        g_full[self.dofs] = values
+        g_full = self._full_values(values)
+        b = np.ascontiguousarray(b, dtype=np.float64)
+        if b.shape != (self.n,):  # Fix: the kernel read past the end of a short b
+            raise InputError(f"DirichletElimination: rhs must have shape ({self.n},), got {b.shape}")
         out = np.empty(self.n_free)
-        _lift(A.indptr, A.indices, A.data, self.new_index, self.free,
-              np.ascontiguousarray(b, dtype=np.float64), g_full, out)
+        _lift(A.indptr, A.indices, A.data, self.new_index, self.free, b, g_full, out)
         return out
 
     def reduce(self, A, b, values):
@@ -151,9 +188,8 @@ class DirichletElimination:
 
     def expand(self, u_free, values):
         """The full vector from the free part and the Dirichlet values."""
-        u = np.empty(self.n)
+        u = self._full_values(values)  # values in the order the dofs were given
         u[self.free] = u_free
-        u[self.dofs] = values
         return u
 
 

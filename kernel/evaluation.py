@@ -78,6 +78,8 @@ def evaluate(disc, u, x, *, outside="error"):
     outside : {"error", "nan"}
         What to do with points outside the mesh.
     """
+    if outside not in ("error", "nan"):  # Fix: a misspelt option silently meant "nan"
+        raise InputError(f"evaluate: outside must be 'error' or 'nan', got {outside!r}")
     cells, xi = locate_points(disc.mesh, x)
     bad = cells < 0
     if bad.any() and outside == "error":
