@@ -12,8 +12,14 @@ the parent's vertex order x0..x3 and edge midpoints x_ij, the children are
 which cuts the inner octahedron along the diagonal x02-x13 and keeps the
 number of congruence classes bounded, so shape quality does not decay under
 repeated refinement.  Children of cell ``c`` are cells ``8c .. 8c+7``
-(``4c .. 4c+3`` in 2D).  New vertices (edge midpoints) are numbered after the
-old ones in edge order.
+(``4c .. 4c+3`` in 2D).
+
+Fine vertices are numbered lexicographically by their coordinates (x
+fastest, then y, then z).  Appending the midpoints after the old vertices
+would put neighbours far apart in the numbering; the sweep order keeps the
+matrices banded, which the assembler's row ranges and aggregation-based
+multigrid both rely on (for generated boxes it reproduces the generators'
+order).  ``vertex_parents`` records the hierarchy whatever the numbering.
 """
 
 from __future__ import annotations
@@ -73,8 +79,15 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     pattern = _TRI_CHILDREN if d == 2 else _TET_CHILDREN
     n_children = pattern.shape[0]
     children = local[:, pattern].reshape(-1, d + 1)
-    fine = Mesh(points, children)
     parents = np.concatenate([np.stack([np.arange(n)] * 2, axis=1), edges.astype(np.int64)])
+    # renumber: sweep order by coordinates (last key of lexsort is the primary one)
+    order = np.lexsort(tuple(points[:, j] for j in range(d)))
+    new_id = np.empty_like(order)
+    new_id[order] = np.arange(order.size)
+    points = np.ascontiguousarray(points[order])
+    parents = np.ascontiguousarray(parents[order])
+    children = new_id[children].astype(cells.dtype)
+    fine = Mesh(points, children)
     fine.parent = mesh
     fine.parent_cells = np.repeat(np.arange(mesh.n_cells), n_children)
     fine.vertex_parents = parents

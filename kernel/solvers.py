@@ -1085,6 +1085,17 @@ def _amg_option_names() -> list[str]:
     return names
 
 
+#: PyAMG keywords used unless amg_options overrides them: two symmetric
+#: Gauss-Seidel sweeps before and after each coarse-grid correction.  With
+#: PyAMG's single sweep the CG iteration count grew by 4 per uniform
+#: refinement of the unit cube (4, 8, 11, 14 from 4^3 cells); with two, by
+#: 2-3 (3, 5, 8, 11), measured on P1 Poisson at rtol 1e-10.
+DEFAULT_AMG_OPTIONS = {
+    "presmoother": ("gauss_seidel", {"sweep": "symmetric", "iterations": 2}),
+    "postsmoother": ("gauss_seidel", {"sweep": "symmetric", "iterations": 2}),
+}
+
+
 def _cg_amg(A, *, amg_options: dict | None = None):
     """CG preconditioned by one smoothed-aggregation V-cycle (PyAMG).
 
@@ -1111,8 +1122,15 @@ def _cg_amg(A, *, amg_options: dict | None = None):
             f"{where}: amg_options key {unknown[0]!r} is not accepted by "
             f"pyamg.smoothed_aggregation_solver; valid keys: {', '.join(valid)}"
         )
+    # Explicit zeros of the pattern (right angles give zero couplings) would count
+    # as connections when aggregating: build the hierarchy from a pruned copy.
+    pruned = A
+    if A.nnz and not np.all(A.data):
+        pruned = A.copy()
+        pruned.eliminate_zeros()
+    keywords = {**DEFAULT_AMG_OPTIONS, **amg_options}
     try:
-        hierarchy = pyamg.smoothed_aggregation_solver(A, **amg_options)
+        hierarchy = pyamg.smoothed_aggregation_solver(pruned, **keywords)
     except (TypeError, ValueError) as exc:
         raise InputError(
             f"{where}: pyamg.smoothed_aggregation_solver refused amg_options="
@@ -1120,7 +1138,7 @@ def _cg_amg(A, *, amg_options: dict | None = None):
         ) from exc
     cycle = hierarchy.aspreconditioner(cycle="V")
     options = {
-        "amg_options": dict(amg_options),
+        "amg_options": dict(keywords),
         "levels": len(hierarchy.levels),
         "operator_complexity": float(hierarchy.operator_complexity()),
     }

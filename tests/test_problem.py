@@ -353,13 +353,6 @@ def test_every_solver_agrees_with_direct(dim):
         assert np.linalg.norm(sol.u - ref) <= 1e-8 * np.linalg.norm(ref), method
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "known defect, outside the driver: with the current cg-amg set-up the iteration "
-    "count grows by 4-5 per uniform refinement (2D 8x8: 6, 11, 16, 20; 3D 4^3: 5, 8, "
-    "13, 17 at rtol 1e-10). Causes measured: explicit zeros of the stiffness pattern "
-    "(structured meshes) count as strong connections for PyAMG, and the vertex "
-    "numbering of refine_uniform degrades the greedy aggregation; pruning zeros or "
-    "an RCM ordering brings 2D to +2..3 per level"))
 @pytest.mark.parametrize("dim, n0", [(2, 8), (3, 4)])
 def test_amg_iterations_grow_at_most_3_per_refinement(dim, n0):
     # common practice: AMG-preconditioned CG needs nearly mesh-independent

@@ -146,19 +146,23 @@ def test_new_vertices_are_midpoints_of_their_two_parent_vertices(name):
     vp = np.asarray(fine.vertex_parents)
     n = coarse.n_vertices
     assert vp.shape == (fine.n_vertices, 2)
-    np.testing.assert_array_equal(vp[:n], np.stack([np.arange(n)] * 2, axis=1))
-    np.testing.assert_array_equal(fine.points[:n], coarse.points)
-    new = vp[n:]
+    # old vertices carry (v, v): each coarse vertex appears exactly once, at its place
+    kept = vp[:, 0] == vp[:, 1]
+    assert kept.sum() == n
+    np.testing.assert_array_equal(np.sort(vp[kept, 0]), np.arange(n))
+    np.testing.assert_array_equal(fine.points[kept], coarse.points[vp[kept, 0]])
+    new = vp[~kept]
     assert np.all(new[:, 0] != new[:, 1])
     np.testing.assert_allclose(
-        fine.points[n:], 0.5 * (coarse.points[new[:, 0]] + coarse.points[new[:, 1]]),
+        fine.points[~kept], 0.5 * (coarse.points[new[:, 0]] + coarse.points[new[:, 1]]),
         rtol=0, atol=1e-15,
     )
     # one new vertex per coarse edge, each coarse edge once
     edges, _, _, _ = enumerate_entities(coarse.cells, np.array(REFERENCE_EDGES[coarse.dim]),
                                         coarse.n_vertices)
     assert fine.n_vertices == n + len(edges)
-    np.testing.assert_array_equal(np.sort(new, axis=1), edges)
+    pairs = np.sort(new, axis=1)
+    np.testing.assert_array_equal(pairs[np.lexsort(pairs.T[::-1])], edges)
 
 
 # -- conformity -----------------------------------------------------------------------------
