@@ -132,6 +132,9 @@ def _integrate(disc, u, mode, exact=None, exact_gradient=None, conductivity=1.0,
         kappa_val = conductivity if need_kappa else 1.0
     else:
         kappa_val = 1.0
+    source_dofs = None
+    if mode == _FUNCTIONAL and np.ndim(source):
+        source_dofs = _check_u(disc, source, "source (a dof vector)")
     total = np.empty(m)
     for first in range(0, m, BLOCK_CELLS):
         last = min(m, first + BLOCK_CELLS)
@@ -170,8 +173,10 @@ def _integrate(disc, u, mode, exact=None, exact_gradient=None, conductivity=1.0,
             scalar_values(np.asarray(kappa_val)[first:last], nb_, "conductivity", positive=True)
         src = np.zeros((1, 1))
         if mode == _FUNCTIONAL:
-            src = scalar_values(source, nb_, "source", points=pts, point_shape=(nb_, nq)) \
-                if not np.ndim(source) else scalar_values(np.asarray(source)[first:last], nb_, "source")
+            if np.ndim(source):  # a dof vector: its interpolant at the quadrature points
+                src = np.ascontiguousarray(source_dofs[disc.cell_dofs[first:last]] @ V.T)
+            else:
+                src = scalar_values(source, nb_, "source", points=pts, point_shape=(nb_, nq))
         # cells are indexed from `first`; coefficient arrays are block-local
         out = np.empty(nb_)
         _cell_integrals(mesh.points, mesh.cells, disc.cell_dofs, first, u, V, dV, rule.weights,
@@ -241,6 +246,8 @@ def h1_norm(disc, u, *, quadrature_degree=None):
 
 def energy(disc, u, conductivity=1.0, source=0.0, *, quadrature_degree=None):
     """The energy functional ``1/2 a(u_h, u_h) - (f, u_h)``.
+
+    ``source`` is a number, a callable, or a dof vector (its interpolant).
 
     Its discrete minimiser is the Galerkin solution (homogeneous natural
     boundary terms are not included).
