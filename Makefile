@@ -22,6 +22,7 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(PY) benchmarks/compare.py
+	$(PY) benchmarks/compare_poisson.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info

@@ -1,0 +1,146 @@
+"""End-to-end P1 Poisson, ours beside the pipeline a user writes by hand.
+
+Problem: -Laplace(u) = 1 on the unit cube (or square), u = 0 on the boundary,
+P1 elements, CG to relative residual 1e-8.  In one run, each in its own child
+process (so peak RSS belongs to it alone):
+
+* **ours**: ``PoissonProblem(...).solve(1, method="cg-amg", rtol=1e-8)``,
+  seconds per phase (mesh, discretize, assemble, constrain, solver setup,
+  solve), iterations, peak RSS;
+* **by hand**: the vectorised NumPy COO assembly (``compare.coo_assembly``),
+  Dirichlet rows and columns removed by SciPy fancy indexing, a PyAMG
+  smoothed-aggregation hierarchy with PyAMG's defaults, and SciPy's ``cg``
+  preconditioned by it.
+
+Usage::
+
+    python benchmarks/compare_poisson.py              # ~1M dofs, 3D and 2D
+    python benchmarks/compare_poisson.py --scale 0.1
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import time
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+
+from compare import cells_per_axis, peak_rss_bytes  # noqa: E402
+
+CASES = {"3D": (3, 99), "2D": (2, 999)}
+
+
+def _mesh(dim, n):
+    import galerkit as gk
+
+    return gk.structured_tetrahedra(n, n, n) if dim == 3 else gk.structured_triangles(n, n)
+
+
+def run_ours(dim, n):
+    import galerkit as gk
+
+    t = time.perf_counter()
+    mesh = _mesh(dim, n)
+    t_mesh = time.perf_counter() - t
+    sol = gk.PoissonProblem(mesh, 1.0, 1.0, {"boundary": 0.0}).solve(1, method="cg-amg",
+                                                                     rtol=1e-8)
+    total = t_mesh + sum(sol.seconds.values())
+    return {"pipeline": "ours", "dofs": sol.disc.n_dofs, "mesh": t_mesh, **sol.seconds,
+            "total": total, "iterations": sol.report.iterations,
+            "residual": sol.report.final_residual, "u_max": float(sol.u.max())}
+
+
+def run_by_hand(dim, n):
+    import numpy as np
+    import pyamg
+    import scipy.sparse.linalg as spla
+
+    import galerkit as gk
+    from compare import coo_assembly
+
+    t = time.perf_counter()
+    mesh = _mesh(dim, n)
+    t_mesh = time.perf_counter() - t
+    t = time.perf_counter()
+    disc = gk.Discretization(mesh, 1)
+    t_disc = time.perf_counter() - t
+    t = time.perf_counter()
+    K = coo_assembly(disc, "stiffness")
+    b = coo_assembly(disc, "mass") @ np.ones(disc.n_dofs)
+    t_asm = time.perf_counter() - t
+    t = time.perf_counter()
+    fixed = disc.boundary_dofs()
+    free = np.setdiff1d(np.arange(disc.n_dofs), fixed)
+    Kf = K[free][:, free].tocsr()
+    bf = b[free]
+    t_con = time.perf_counter() - t
+    t = time.perf_counter()
+    ml = pyamg.smoothed_aggregation_solver(Kf)
+    M = ml.aspreconditioner()
+    t_setup = time.perf_counter() - t
+    it = [0]
+    t = time.perf_counter()
+    x, info = spla.cg(Kf, bf, rtol=1e-8, M=M, callback=lambda xk: it.__setitem__(0, it[0] + 1))
+    t_solve = time.perf_counter() - t
+    res = float(np.linalg.norm(bf - Kf @ x) / np.linalg.norm(bf))
+    total = t_mesh + t_disc + t_asm + t_con + t_setup + t_solve
+    return {"pipeline": "by hand", "dofs": disc.n_dofs, "mesh": t_mesh, "discretize": t_disc,
+            "assemble": t_asm, "constrain": t_con, "solver_setup": t_setup, "solve": t_solve,
+            "total": total, "iterations": it[0], "residual": res, "u_max": float(x.max())}
+
+
+def worker(spec):
+    name, pipeline, n = spec.split(":")
+    dim = CASES[name][0]
+    row = (run_ours if pipeline == "ours" else run_by_hand)(dim, int(n))
+    row["case"] = name
+    row["peak_rss_mb"] = peak_rss_bytes() / 2**20
+    print(json.dumps(row))
+
+
+COLS = ["case", "pipeline", "dofs", "mesh", "discretize", "assemble", "constrain",
+        "solver_setup", "solve", "total", "iterations", "residual", "peak_rss_mb"]
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--scale", type=float, default=1.0)
+    ap.add_argument("--cases", default=",".join(CASES))
+    ap.add_argument("--skip-by-hand", action="store_true")
+    ap.add_argument("--worker", help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.worker:
+        worker(args.worker)
+        return 0
+    rows = []
+    for name in args.cases.split(","):
+        dim, full = CASES[name]
+        n = cells_per_axis(full, dim, args.scale)
+        for pipeline in ("ours",) + (() if args.skip_by_hand else ("by hand",)):
+            out = subprocess.run([sys.executable, __file__, "--worker", f"{name}:{pipeline}:{n}"],
+                                 capture_output=True, text=True, check=True)
+            rows.append(json.loads(out.stdout.strip().splitlines()[-1]))
+    print("| " + " | ".join(COLS) + " |")
+    print("|" + "|".join("---" for _ in COLS) + "|")
+    for r in rows:
+        cells = []
+        for c in COLS:
+            v = r.get(c, "")
+            cells.append(f"{v:.3g}" if isinstance(v, float) else str(v))
+        print("| " + " | ".join(cells) + " |")
+    by = {(r["case"], r["pipeline"]): r for r in rows}
+    for name in args.cases.split(","):
+        if (name, "by hand") in by:
+            a, h = by[(name, "ours")], by[(name, "by hand")]
+            print(f"{name}: by hand / ours total {h['total'] / a['total']:.1f}x, assembly "
+                  f"{h['assemble'] / a['assemble']:.1f}x, peak RSS {h['peak_rss_mb']:.0f} vs "
+                  f"{a['peak_rss_mb']:.0f} MB")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
