@@ -1,18 +1,33 @@
 """The ``galerkit`` command line.
 
-Subcommands: ``demo`` (a built-in scenario), ``verify`` (a manufactured-
-solution convergence study) and ``mesh-info`` (counts, tags and quality of a
-mesh file).  Exit codes: 0 success, 1 a solver did not converge or a check
-failed, 2 bad input.
+Subcommands
+-----------
+``demo``       a built-in scenario (cooling plate); writes VTU and PNG
+``verify``     a manufactured-solution convergence study; writes a PNG
+``mesh-info``  counts, tags and quality of a mesh file
+``solve``      solve a problem file (TOML, see ``docs/problem-file.md``)
+``bench``      every registered solver on one assembled system
+
+``--quiet`` (no progress bars, no headings, no caution: the result lines only)
+and ``--json`` (one JSON object on stdout) go before or after the subcommand.
+Progress bars (tqdm, on stderr) appear on a terminal, and only for steps that
+take more than a second.  Exit codes: 0 success, 1 a solver did not converge or a check
+failed, 2 bad input (a bad file, bad TOML, a bad formula, an unknown key or
+option; the message on stderr names the problem).
 """
 
 from __future__ import annotations
 
 import argparse
+import gc
 import json
+import math
 import resource
 import sys
 import time
+import tracemalloc
+import warnings
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -23,14 +38,95 @@ CAUTION = (
     "under the applicable local codes and standards."
 )
 
+#: What the memory column of ``bench`` measures.
+BENCH_MEMORY_MEASURE = (
+    "peak of the memory traced by tracemalloc (Python and NumPy allocations, which in "
+    "SciPy include the SuperLU factors) during set-up and solve of each method, "
+    "beyond what was allocated before it; timings are taken with tracemalloc on"
+)
+
 
 def _peak_rss_mb() -> float:
+    """Peak resident set size of this process so far, MB (Linux reports KiB)."""
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
-def _say(args, text=""):
-    if not args.quiet:
-        print(text)
+class _Report:
+    """Text output: headings and notes are dropped by --quiet, result lines are not."""
+
+    def __init__(self, args):
+        self.quiet = args.quiet
+        self.silent = args.json
+
+    def head(self, text=""):
+        if not (self.quiet or self.silent):
+            print(text)
+
+    def result(self, text):
+        if not self.silent:
+            print(text)
+
+    def caution(self):
+        self.head()
+        self.head(CAUTION)
+
+
+def _progress(args, total, desc):
+    """A tqdm bar on stderr, shown only on a terminal and after one second; None with --quiet."""
+    if args.quiet:
+        return None
+    from tqdm import tqdm
+
+    # disable=None: no bar when stderr is not a terminal (logs, pipes, tests)
+    return tqdm(total=total, desc=desc, file=sys.stderr, delay=1.0, leave=False,
+                dynamic_ncols=True, disable=None)
+
+
+def _json_default(v):
+    if isinstance(v, (np.integer,)):
+        return int(v)
+    if isinstance(v, (np.floating,)):
+        return float(v)
+    if isinstance(v, np.ndarray):
+        return v.tolist()
+    if isinstance(v, Path):
+        return str(v)
+    return str(v)
+
+
+def _finite(v):
+    """NaN and infinities become null, so the output is strict JSON."""
+    if isinstance(v, dict):
+        return {k: _finite(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_finite(x) for x in v]
+    if isinstance(v, (float, np.floating)) and not math.isfinite(float(v)):
+        return None
+    return v
+
+
+def _print_json(info):
+    print(json.dumps(_finite(info), default=_json_default, allow_nan=False))
+
+
+def _plural(cell_type: str) -> str:
+    return {"tetrahedron": "tetrahedra"}.get(cell_type, cell_type + "s")
+
+
+def _iterations(n) -> str:
+    return f"{n} iteration" + ("" if n == 1 else "s")
+
+
+def _folder(path) -> Path:
+    from galerkit.errors import InputError
+
+    p = Path(path)
+    try:
+        p.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"output folder {str(p)!r} cannot be created: "
+                         f"{exc.strerror or exc}; pass another one with --output") from None
+    return p
 
 
 # -- demo ------------------------------------------------------------------------
@@ -43,11 +139,13 @@ def _demo(args) -> int:
     demonstration.
     """
     import galerkit as gk
+    from galerkit.errors import InputError
     from .files import write_solution
     from .plots import plot_field
 
-    out = Path(args.output)
-    out.mkdir(parents=True, exist_ok=True)
+    if args.size < 3:
+        raise InputError(f"demo: --size must be at least 3, got {args.size}")
+    out = _folder(args.output)
     nx, ny = args.size, (2 * args.size) // 3
     mesh = gk.structured_triangles(nx, ny, (0.0, 0.0), (0.30, 0.20))
     kappa = 160.0  # W/(m K), aluminium alloy plate (demo value)
@@ -89,29 +187,33 @@ def _demo(args) -> int:
         "outputs": [str(vtu), str(png)],
     }
     if args.json:
-        print(json.dumps({**info, "caution": CAUTION}))
-    else:
-        _say(args, "galerkit demo: steady temperature in a battery-pack cooling plate")
-        _say(args, f"  mesh        {mesh.n_cells} triangles, {mesh.n_vertices} vertices")
-        _say(args, f"  unknowns    {sol.disc.n_dofs} (P1)")
-        _say(args, f"  solver      {rep.method}: {rep.iterations} iterations, relative residual "
-                   f"{rep.final_residual:.2e}, converged={rep.converged}")
-        for k, v in info["seconds"].items():
-            _say(args, f"  {k:<12s}{v:8.3f} s")
-        _say(args, f"  peak memory {info['peak_rss_mb']:.0f} MB")
-        _say(args, f"  temperature {info['temperature_min']:.2f} .. {info['temperature_max']:.2f} deg C")
-        _say(args, f"  wrote       {vtu}")
-        _say(args, f"  wrote       {png}")
-        _say(args)
-        _say(args, CAUTION)
+        _print_json({**info, "caution": CAUTION})
+        return 0 if rep.converged else 1
+    say = _Report(args)
+    say.head("galerkit demo: steady temperature in a battery-pack cooling plate")
+    say.result(f"  mesh        {mesh.n_cells} triangles, {mesh.n_vertices} vertices")
+    say.result(f"  unknowns    {sol.disc.n_dofs} (P1)")
+    say.result(f"  solver      {rep.method}: {_iterations(rep.iterations)}, relative residual "
+               f"{rep.final_residual:.2e}, converged={rep.converged}")
+    for k, v in info["seconds"].items():
+        say.result(f"  {k:<12s}{v:8.3f} s")
+    say.result(f"  peak memory {info['peak_rss_mb']:.0f} MB (peak resident set size)")
+    say.result(f"  temperature {info['temperature_min']:.2f} .. {info['temperature_max']:.2f} deg C")
+    say.result(f"  wrote       {vtu}")
+    say.result(f"  wrote       {png}")
+    say.caution()
     return 0 if rep.converged else 1
 
 
 # -- verify ------------------------------------------------------------------------
 def _verify(args) -> int:
     import galerkit as gk
+    from galerkit.errors import InputError
     from .plots import plot_convergence
 
+    if args.levels < 2:
+        raise InputError(f"verify: --levels must be at least 2 (an order needs two meshes), "
+                         f"got {args.levels}")
     pi = np.pi
     d = 2 if args.cell == "triangle" else 3
     k = args.degree
@@ -131,25 +233,37 @@ def _verify(args) -> int:
 
     mesh = gk.structured_triangles(2, 2) if d == 2 else gk.structured_tetrahedra(1, 1, 1)
     problem = gk.PoissonProblem(mesh, source=source, dirichlet={"boundary": 0.0})
-    progress = None if args.quiet else (lambda msg: print("  " + msg, file=sys.stderr))
-    table = gk.convergence_study(problem, args.levels, k, exact, grad, progress=progress)
+    bar = _progress(args, args.levels, "verify: levels")
+
+    def progress(msg):
+        if bar is not None:
+            bar.set_postfix_str(msg)
+            bar.update(1)
+
+    try:
+        table = gk.convergence_study(problem, args.levels, k, exact, grad, progress=progress)
+    finally:
+        if bar is not None:
+            bar.close()
     l2 = table.column("eoc_l2")[-1]
     h1 = table.column("eoc_h1")[-1]
     ok_l2 = abs(l2 - (k + 1)) <= args.tolerance
     ok_h1 = abs(h1 - k) <= args.tolerance
     png = Path(args.output)
+    if png.parent != Path("."):
+        _folder(png.parent)
     plot_convergence(png, table, title=f"P{k} on {args.cell}s: u = prod sin(pi x_i)")
     if args.json:
-        print(json.dumps({"rows": table.rows, "eoc_l2": l2, "eoc_h1": h1, "pass_l2": ok_l2,
-                          "pass_h1": ok_h1, "plot": str(png), "caution": CAUTION}))
+        _print_json({"rows": table.rows, "eoc_l2": l2, "eoc_h1": h1, "pass_l2": ok_l2,
+                     "pass_h1": ok_h1, "plot": str(png), "caution": CAUTION})
     else:
-        _say(args, f"galerkit verify: manufactured solution prod sin(pi x_i), P{k} on {args.cell}s")
-        _say(args, table.to_markdown())
-        _say(args, f"  L2 order {l2:.2f} (theory {k + 1}): {'pass' if ok_l2 else 'FAIL'}")
-        _say(args, f"  H1 order {h1:.2f} (theory {k}): {'pass' if ok_h1 else 'FAIL'}")
-        _say(args, f"  wrote {png}")
-        _say(args)
-        _say(args, CAUTION)
+        say = _Report(args)
+        say.head(f"galerkit verify: manufactured solution prod sin(pi x_i), P{k} on {args.cell}s")
+        say.result(table.to_markdown())
+        say.result(f"  L2 order {l2:.2f} (theory {k + 1}): {'pass' if ok_l2 else 'FAIL'}")
+        say.result(f"  H1 order {h1:.2f} (theory {k}): {'pass' if ok_h1 else 'FAIL'}")
+        say.result(f"  wrote {png}")
+        say.caution()
     return 0 if (ok_l2 and ok_h1) else 1
 
 
@@ -157,7 +271,10 @@ def _verify(args) -> int:
 def _mesh_info(args) -> int:
     from .files import read_mesh
 
-    mesh = read_mesh(args.file)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        mesh = read_mesh(args.file)
+    notes = [str(w.message) for w in caught]
     q = mesh.quality()
     hist, edges = np.histogram(mesh.cell_quality(), bins=10, range=(0.0, 1.0))
     info = {"file": args.file, "cell_type": mesh.cell_type, "cells": mesh.n_cells,
@@ -166,58 +283,468 @@ def _mesh_info(args) -> int:
             "tags": {k: int(len(v)) for k, v in mesh.facet_tags.items()},
             "volume": float(mesh.cell_volumes.sum()),
             "min_shape_quality": q.min_shape_quality, "mean_shape_quality": q.mean_shape_quality,
-            "quality_histogram": hist.tolist()}
+            "quality_histogram": hist.tolist(), "warnings": notes}
     if args.json:
-        print(json.dumps(info))
+        _print_json(info)
         return 0
-    _say(args, f"{args.file}: {mesh.n_cells} {mesh.cell_type}s, {mesh.n_vertices} vertices, "
+    say = _Report(args)
+    say.result(f"{args.file}: {mesh.n_cells} {_plural(mesh.cell_type)}, {mesh.n_vertices} vertices, "
                f"{info['boundary_facets']} boundary facets, volume {info['volume']:.6g}")
     if mesh.n_reoriented:
-        _say(args, f"  {mesh.n_reoriented} cells were negatively oriented and re-oriented")
+        say.result(f"  {mesh.n_reoriented} cells were negatively oriented and re-oriented")
     for k, v in info["tags"].items():
-        _say(args, f"  tag {k!r}: {v} facets")
-    _say(args, f"  shape quality min {q.min_shape_quality:.3f}, mean {q.mean_shape_quality:.3f}")
+        say.result(f"  tag {k!r}: {v} facets")
+    for n in notes:
+        say.result(f"  warning: {n}")
+    say.result(f"  shape quality min {q.min_shape_quality:.3f}, mean {q.mean_shape_quality:.3f}")
     top = max(hist.max(), 1)
     for count, lo in zip(hist, edges[:-1]):
-        _say(args, f"  {lo:3.1f}-{lo + 0.1:3.1f} {count:9d} " + "#" * int(40 * count / top))
+        say.result(f"  {lo:3.1f}-{lo + 0.1:3.1f} {count:9d} " + "#" * int(40 * count / top))
     return 0
 
 
+# -- solve ------------------------------------------------------------------------
+def _check_rtol(rtol):
+    from galerkit.errors import InputError
+
+    if rtol is not None and not (math.isfinite(rtol) and 0 < rtol < 1):
+        raise InputError(f"--rtol must be a number between 0 and 1, got {rtol!r}")
+
+
+def _apply_overrides(args, opts):
+    from galerkit.errors import InputError
+    from galerkit.solvers import available_solvers
+
+    _check_rtol(getattr(args, "rtol", None))
+    method = getattr(args, "method", None)
+    if method is not None and method != "auto" and method not in available_solvers():
+        raise InputError(f"--method: unknown solver method {method!r}; available: "
+                         f"{', '.join(available_solvers())} (or 'auto')")
+    maxiter = getattr(args, "maxiter", None)
+    if maxiter is not None and maxiter < 1:
+        raise InputError(f"--maxiter must be at least 1, got {maxiter}")
+    changes = {}
+    for key in ("degree", "method", "rtol", "maxiter"):
+        v = getattr(args, key, None)
+        if v is not None:
+            changes[key] = v
+    if getattr(args, "output", None) is not None:
+        changes["folder"] = Path(args.output)
+    if getattr(args, "plot", False):
+        changes["plot"] = True
+    if getattr(args, "mesh_overlay", False):
+        changes["mesh_overlay"] = True
+    return replace(opts, **changes)
+
+
+def _errors(sol, opts):
+    """Errors against the exact solution of the problem file, or None."""
+    from galerkit.functionals import energy_error, h1_seminorm_error, l2_error
+
+    if opts.exact is None:
+        return None
+    disc = sol.disc
+    out = {"l2": l2_error(disc, sol.u, opts.exact),
+           "max_at_nodes": float(np.abs(sol.u - disc.interpolate(opts.exact)).max())}
+    if opts.exact_gradient is not None:
+        out["h1_seminorm"] = h1_seminorm_error(disc, sol.u, opts.exact_gradient)
+        out["energy"] = energy_error(disc, sol.u, opts.exact_gradient,
+                                     sol.problem.conductivity)
+    return out
+
+
+def _solve(args) -> int:
+    from galerkit.errors import InputError
+    from .files import write_solution
+    from .plots import plot_field
+    from .problemfile import load_problem
+
+    bar = _progress(args, 4, "solve")
+
+    def step(name):
+        if bar is not None:
+            bar.set_postfix_str(name)
+            bar.update(1)
+
+    t0 = time.perf_counter()
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            spec = load_problem(args.problem)
+        problem, opts = spec.build()
+        opts = _apply_overrides(args, opts)
+        notes = [str(w.message) for w in caught]
+        load_seconds = time.perf_counter() - t0
+        step("assemble and solve")
+        try:
+            sol = problem.solve(degree=opts.degree, method=opts.method, rtol=opts.rtol,
+                                maxiter=opts.maxiter)
+        except InputError as exc:  # e.g. a formula that is not finite somewhere
+            raise InputError(f"problem file {str(args.problem)!r}: {exc}") from None
+        step("errors")
+        t1 = time.perf_counter()
+        errors = _errors(sol, opts)
+        error_seconds = time.perf_counter() - t1
+        step("write")
+        rep = sol.report
+        outputs = []
+        t1 = time.perf_counter()
+        if not rep.converged:
+            notes.append("no files written: the solver did not converge")
+        else:
+            if opts.vtu or opts.plot:
+                folder = _folder(opts.folder)
+            if opts.vtu:
+                outputs.append(write_solution(folder / f"{opts.stem}.vtu", sol, name=opts.name))
+            if opts.plot and spec.mesh.dim == 2:
+                label = opts.name + (f" [{opts.units}]" if opts.units else "")
+                outputs.append(plot_field(folder / f"{opts.stem}.png", sol,
+                                          title=opts.title or opts.stem, units=label,
+                                          show_mesh=opts.mesh_overlay,
+                                          length_unit=opts.length_unit))
+            elif opts.plot:
+                notes.append("plot skipped: PNG pictures are drawn for 2D solutions only; "
+                             "open the VTU file in a viewer such as ParaView")
+        write_seconds = time.perf_counter() - t1
+        step("done")
+    finally:
+        if bar is not None:
+            bar.close()
+    mesh = spec.mesh
+    seconds = {"load": load_seconds, **sol.seconds, "errors": error_seconds,
+               "write": write_seconds}
+    seconds["total"] = time.perf_counter() - t0
+    notes += list(sol.notes)
+    if rep.message:
+        notes.append(rep.message)
+    chosen = rep.method if opts.method != "auto" else f"{rep.method} (chosen by 'auto')"
+    info = {
+        "problem": str(args.problem), "title": opts.title,
+        "mesh": {"source": spec.mesh_description, "cell_type": mesh.cell_type,
+                 "cells": mesh.n_cells, "vertices": mesh.n_vertices,
+                 "tags": {k: int(len(v)) for k, v in mesh.facet_tags.items()}},
+        "degree": sol.disc.degree, "dofs": sol.disc.n_dofs,
+        "solver": {"requested": opts.method, "method": rep.method,
+                   "iterations": rep.iterations, "relative_residual": rep.final_residual,
+                   "rtol": opts.rtol, "converged": rep.converged, "message": rep.message},
+        "seconds": seconds, "peak_rss_mb": _peak_rss_mb(),
+        "field": {"name": opts.name, "min": float(sol.u.min()), "max": float(sol.u.max()),
+                  "units": opts.units},
+        "errors": errors, "outputs": [str(p) for p in outputs], "notes": notes,
+    }
+    code = 0 if rep.converged else 1
+    if args.json:
+        _print_json({**info, "caution": CAUTION})
+        return code
+    say = _Report(args)
+    say.head(f"galerkit solve: {opts.title or args.problem}")
+    say.result(f"  mesh        {spec.mesh_description}: {mesh.n_cells} {_plural(mesh.cell_type)}, "
+               f"{mesh.n_vertices} vertices")
+    say.result(f"  unknowns    {sol.disc.n_dofs} (P{sol.disc.degree})")
+    status = "converged" if rep.converged else "NOT CONVERGED"
+    say.result(f"  solver      {chosen}: {_iterations(rep.iterations)}, relative residual "
+               f"{rep.final_residual:.2e} (rtol {opts.rtol:g}), {status}")
+    for k, v in seconds.items():
+        say.result(f"  {k:<12s}{v:8.3f} s")
+    say.result(f"  peak memory {info['peak_rss_mb']:.0f} MB (peak resident set size)")
+    unit = f" {opts.units}" if opts.units else ""
+    say.result(f"  {opts.name:<12s}{info['field']['min']:.6g} .. {info['field']['max']:.6g}{unit}")
+    if errors is not None:
+        parts = [f"L2 {errors['l2']:.3e}"]
+        if "h1_seminorm" in errors:
+            parts += [f"H1 seminorm {errors['h1_seminorm']:.3e}",
+                      f"energy {errors['energy']:.3e}"]
+        parts.append(f"max at nodes {errors['max_at_nodes']:.3e}")
+        say.result("  error       " + ", ".join(parts) + " (against [exact])")
+    for p in outputs:
+        say.result(f"  wrote       {p}")
+    for n in notes:
+        say.result(f"  note        {n}")
+    say.caution()
+    return code
+
+
+# -- bench ------------------------------------------------------------------------
+class _Recorder:
+    """A registered 'solver' that keeps the constrained system and solves nothing."""
+
+    def __init__(self):
+        self.A = None
+        self.b = None
+
+    def factory(self, A):
+        self.A = A.copy()  # the kernel's own matrix stays the kernel's
+        return self
+
+    def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
+        from galerkit.solvers import SolveReport
+
+        self.b = np.array(b, dtype=np.float64)
+        return SolveReport(x=np.zeros_like(self.b), converged=True, iterations=0,
+                           residuals=np.array([1.0]))
+
+
+class _Replay:
+    """A registered 'solver' that hands back a report computed earlier."""
+
+    def __init__(self):
+        self.report = None
+
+    def factory(self, A):
+        return self
+
+    def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
+        return self.report
+
+
+def _bench_one(m, A, b, dim, degree, opts, prepare_solver):
+    """Set up and solve with one method under tracemalloc: (row, report or None)."""
+    from galerkit.errors import GalerkitError
+
+    row = {"method": m, "setup_seconds": None, "solve_seconds": None, "iterations": None,
+           "final_residual": None, "converged": False, "peak_mb": None, "l2_error": None,
+           "h1_error": None, "message": "", "facts": {}}
+    gc.collect()
+    tracemalloc.start()
+    try:
+        prepared = prepare_solver(A, m, dim=dim, degree=degree)
+        rep = prepared.solve(b, rtol=opts.rtol, maxiter=opts.maxiter)
+    except GalerkitError as exc:
+        row["message"] = f"{type(exc).__name__}: {exc}"
+        return row, None
+    finally:
+        row["peak_mb"] = tracemalloc.get_traced_memory()[1] / 2**20
+        tracemalloc.stop()
+    row.update(setup_seconds=rep.setup_seconds, solve_seconds=rep.solve_seconds,
+               iterations=rep.iterations, final_residual=rep.final_residual,
+               converged=rep.converged, message=rep.message,
+               facts={k: v for k, v in rep.options.items()
+                      if isinstance(v, (int, float, str, bool)) or v is None})
+    return row, rep
+
+
+def _warm_up(methods, prepare_solver):
+    """Set up and solve a 4x4 system with each method, so imports and compilation
+    (PyAMG, numba) are not part of the timings."""
+    import scipy.sparse as sp
+
+    from galerkit.errors import GalerkitError
+
+    A = sp.csr_array(sp.diags([-1.0, 2.0, -1.0], [-1, 0, 1], shape=(4, 4)))
+    for m in methods:
+        try:
+            prepare_solver(A, m).solve(np.ones(4))
+        except GalerkitError:
+            pass  # the real run reports it
+
+
+def _generated_problem(kind, size, degree):
+    """The manufactured problem of ``bench --generate``: u = prod sin(pi x_i)."""
+    from .problemfile import parse_problem
+
+    d = 2 if kind == "square" else 3
+    coords = "xyz"[:d]
+    u = "*".join(f"sin(pi*{c})" for c in coords)
+    grad = ["*".join((f"pi*cos(pi*{c})" if c == a else f"sin(pi*{c})") for c in coords)
+            for a in coords]
+    data = {"mesh": {"generator": kind, "cells": size},
+            "discretization": {"degree": degree or 1},
+            "source": {"value": f"{d}*pi^2*{u}"},
+            "boundary": [{"tag": "boundary", "kind": "fixed", "value": 0}],
+            "exact": {"solution": u, "gradient": grad}}
+    return parse_problem(data, source=f"--generate {kind} --size {size}", stem=f"bench-{kind}")
+
+
+def _bench(args) -> int:
+    from galerkit.errors import InputError
+    from galerkit.solvers import available_solvers, prepare_solver, register_solver, \
+        unregister_solver
+    from .plots import plot_residuals
+    from .problemfile import load_problem
+
+    if (args.problem is None) == (args.generate is None):
+        raise InputError("bench: give a problem file or --generate square|box, not "
+                         + ("both" if args.problem else "neither"))
+    if args.generate is None and args.size is not None:
+        raise InputError("bench: --size applies to --generate only; the problem file "
+                         "gives its own mesh")
+    known = available_solvers()
+    if args.methods:
+        methods = [m.strip() for m in args.methods.split(",") if m.strip()]
+        for m in methods:
+            if m not in known:
+                raise InputError(f"bench: --methods: {m!r} is not a registered solver; "
+                                 f"available: {', '.join(known)}")
+        if not methods:
+            raise InputError("bench: --methods is empty; give names such as direct,cg-amg")
+    else:
+        methods = known
+    if args.generate is not None:
+        size = args.size if args.size is not None else {"square": 64, "box": 10}[args.generate]
+        if size < 1:
+            raise InputError(f"bench: --size must be at least 1, got {size}")
+        spec = _generated_problem(args.generate, size, args.degree)
+        where = f"generated {args.generate}"
+    else:
+        spec = load_problem(args.problem)
+        where = str(args.problem)
+    problem, opts = spec.build()
+    opts = _apply_overrides(args, opts)
+    recorder, replay = _Recorder(), _Replay()
+    record_name, replay_name = "bench:record", "bench:replay"
+    register_solver(record_name, recorder.factory, overwrite=True)
+    register_solver(replay_name, replay.factory, overwrite=True)
+    rows, histories = [], {}
+    try:
+        base = problem.solve(degree=opts.degree, method=record_name, rtol=opts.rtol)
+        A, b = recorder.A, recorder.b
+        dim, degree = spec.mesh.dim, base.disc.degree
+        _warm_up(methods, prepare_solver)
+        bar = _progress(args, len(methods), "bench")
+        for m in methods:
+            if bar is not None:
+                bar.set_postfix_str(m)
+            row, rep = _bench_one(m, A, b, dim, degree, opts, prepare_solver)
+            if rep is not None:
+                histories[m] = rep.residuals
+                if opts.exact is not None:
+                    replay.report = rep
+                    sol = problem.solve(assembler=base.assembler, method=replay_name,
+                                        rtol=opts.rtol)
+                    errs = _errors(sol, opts)
+                    row["l2_error"] = errs["l2"]
+                    row["h1_error"] = errs.get("h1_seminorm")
+            rows.append(row)
+            if bar is not None:
+                bar.update(1)
+        if bar is not None:
+            bar.close()
+    finally:
+        unregister_solver(record_name)
+        unregister_solver(replay_name)
+    folder = _folder(opts.folder)
+    png = plot_residuals(folder / f"{opts.stem}-residuals.png", histories, rtol=opts.rtol,
+                         title=f"{where}: P{degree}, {A.shape[0]} unknowns")
+    ok = all(r["converged"] for r in rows)
+    info = {"problem": where, "mesh": {"source": spec.mesh_description,
+                                       "cell_type": spec.mesh.cell_type,
+                                       "cells": spec.mesh.n_cells},
+            "degree": degree, "dofs": base.disc.n_dofs, "unknowns": int(A.shape[0]),
+            "matrix_nonzeros": int(A.nnz), "rtol": opts.rtol,
+            "assemble_seconds": {k: base.seconds[k] for k in ("discretize", "assemble",
+                                                              "constrain")},
+            "rows": rows, "memory_measure": BENCH_MEMORY_MEASURE, "plot": str(png),
+            "peak_rss_mb": _peak_rss_mb(), "all_converged": ok}
+    if args.json:
+        _print_json({**info, "caution": CAUTION})
+        return 0 if ok else 1
+    say = _Report(args)
+    say.head(f"galerkit bench: {where} ({spec.mesh_description})")
+    say.result(f"  system      {A.shape[0]} unknowns ({base.disc.n_dofs} dofs, P{degree}), "
+               f"{A.nnz} stored entries, assembled once in "
+               f"{sum(info['assemble_seconds'].values()):.3f} s; rtol {opts.rtol:g}")
+    head = (f"  {'method':<12s}{'setup s':>9s}{'solve s':>9s}{'iter.':>7s}{'residual':>11s}"
+            f"{'peak MB':>9s}{'L2 error':>11s}{'H1 error':>11s}  converged")
+    say.result(head)
+
+    def fmt(v, spec_):
+        return format(v, spec_) if v is not None else "-"
+
+    for r in rows:
+        say.result(f"  {r['method']:<12s}{fmt(r['setup_seconds'], '9.3f'):>9s}"
+                   f"{fmt(r['solve_seconds'], '9.3f'):>9s}{fmt(r['iterations'], '7d'):>7s}"
+                   f"{fmt(r['final_residual'], '11.2e'):>11s}{fmt(r['peak_mb'], '9.1f'):>9s}"
+                   f"{fmt(r['l2_error'], '11.3e'):>11s}{fmt(r['h1_error'], '11.3e'):>11s}  "
+                   f"{'yes' if r['converged'] else 'NO'}")
+        if r["message"]:
+            say.result(f"    {r['method']}: {r['message']}")
+    say.head(f"  peak MB: {BENCH_MEMORY_MEASURE}")
+    say.result(f"  wrote       {png}")
+    say.caution()
+    return 0 if ok else 1
+
+
+# -- parser ------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="galerkit", description="Lagrange finite elements for "
                                 "Poisson and diffusion problems on triangles and tetrahedra.")
-    p.add_argument("--quiet", action="store_true", help="print only results")
+    p.add_argument("--quiet", action="store_true",
+                   help="no progress bars or headings: print the results only")
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    # the same two flags are accepted after the subcommand too
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS,
+                        help="no progress bars or headings: print the results only")
+    common.add_argument("--json", action="store_true", default=argparse.SUPPRESS,
+                        help="print one JSON object")
     sub = p.add_subparsers(dest="command", required=True)
-    d = sub.add_parser("demo", help="built-in cooling-plate scenario; writes VTU and PNG")
+    d = sub.add_parser("demo", parents=[common],
+                       help="built-in cooling-plate scenario; writes VTU and PNG")
     d.add_argument("--output", default="galerkit-out", help="folder for the results")
     d.add_argument("--size", type=int, default=600, help="squares along x (default 600)")
     d.add_argument("--method", default="auto", help="solver name (default auto)")
     d.set_defaults(run=_demo)
-    v = sub.add_parser("verify", help="manufactured-solution convergence study")
+    v = sub.add_parser("verify", parents=[common],
+                       help="manufactured-solution convergence study")
     v.add_argument("--cell", choices=["triangle", "tetrahedron"], default="triangle")
-    v.add_argument("--degree", type=int, default=1)
+    v.add_argument("--degree", type=int, choices=[1, 2, 3, 4], default=1)
     v.add_argument("--levels", type=int, default=5)
     v.add_argument("--tolerance", type=float, default=0.1, help="allowed order deviation")
     v.add_argument("--output", default="galerkit-verify.png", help="PNG of error versus h")
     v.set_defaults(run=_verify)
-    m = sub.add_parser("mesh-info", help="counts, tags and quality of a mesh file")
+    m = sub.add_parser("mesh-info", parents=[common],
+                       help="counts, tags and quality of a mesh file")
     m.add_argument("file")
     m.set_defaults(run=_mesh_info)
+    s = sub.add_parser("solve", parents=[common],
+                       help="solve a problem file (TOML); writes VTU and, with --plot, PNG",
+                       description="Solve the problem of a TOML problem file (see "
+                       "docs/problem-file.md). Flags override the file.")
+    s.add_argument("problem", help="the problem file (.toml)")
+    s.add_argument("--degree", type=int, choices=[1, 2, 3, 4], help="element degree")
+    s.add_argument("--method", help="solver name, or auto")
+    s.add_argument("--rtol", type=float, help="relative residual tolerance")
+    s.add_argument("--maxiter", type=int, help="iteration limit of iterative solvers")
+    s.add_argument("--output", help="output folder (default: [output] folder, else "
+                   "galerkit-out)")
+    s.add_argument("--plot", action="store_true", help="also write a PNG (2D only)")
+    s.add_argument("--mesh-overlay", action="store_true", help="draw the mesh on the PNG")
+    s.set_defaults(run=_solve)
+    b = sub.add_parser("bench", parents=[common],
+                       help="run every registered solver on one assembled system",
+                       description="Assemble one system, then set up and solve it with "
+                       "every registered solver (or --methods); prints a table and writes "
+                       "a PNG of the residual histories.")
+    b.add_argument("problem", nargs="?", help="a problem file (.toml); or use --generate")
+    b.add_argument("--generate", choices=["square", "box"],
+                   help="a manufactured problem u = prod sin(pi x_i) on the unit square/cube")
+    b.add_argument("--size", type=int, help="cells per axis for --generate (default 64 "
+                   "square, 10 box)")
+    b.add_argument("--degree", type=int, choices=[1, 2, 3, 4], help="element degree")
+    b.add_argument("--methods", help="comma-separated solver names (default: all registered)")
+    b.add_argument("--rtol", type=float, help="relative residual tolerance")
+    b.add_argument("--maxiter", type=int, help="iteration limit of iterative solvers")
+    b.add_argument("--output", help="folder for the PNG (default galerkit-out)")
+    b.set_defaults(run=_bench)
     return p
 
 
 def main(argv=None) -> int:
-    from galerkit.errors import InputError, SolverError
+    from galerkit.errors import InputError, ResourceError, SolverError
 
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
         return args.run(args)
+    except BrokenPipeError:  # e.g. `galerkit mesh-info f.msh | head`
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except InputError as exc:
         print(f"galerkit: error: {exc}", file=sys.stderr)
         return 2
-    except SolverError as exc:
+    except (SolverError, ResourceError) as exc:
         print(f"galerkit: solver error: {exc}", file=sys.stderr)
         return 1
 

@@ -1,52 +1,89 @@
-"""PNG pictures: 2D fields and convergence plots (matplotlib, no screen needed)."""
+"""PNG pictures: 2D fields, convergence plots, residual histories.
+
+matplotlib with the Agg backend (no screen needed).  Every picture is
+written atomically (a temporary sibling, then a rename).
+"""
 
 from __future__ import annotations
-
-import os
 
 import matplotlib
 
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
+from matplotlib.ticker import MaxNLocator  # noqa: E402
 import numpy as np  # noqa: E402
 
-from .files import atomic_path  # noqa: E402
+from galerkit.errors import InputError  # noqa: E402
 
-__all__ = ["plot_field", "plot_convergence"]
+from .files import sample_solution, write_atomically  # noqa: E402
+
+__all__ = ["plot_field", "plot_convergence", "plot_residuals", "PNG_SIGNATURE"]
+
+#: The first eight bytes of every PNG file (PNG specification, section 5.2).
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
 
 def _save(fig, path):
-    tmp = atomic_path(path)
     try:
-        fig.savefig(tmp, dpi=120, bbox_inches="tight")
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
+        return write_atomically(path, lambda tmp: fig.savefig(tmp, dpi=120, bbox_inches="tight",
+                                                              format="png"))
     finally:
         plt.close(fig)
-        if os.path.exists(tmp):
-            os.unlink(tmp)
 
 
-def plot_field(path, solution, *, title="", units="", show_mesh=False, length_unit=""):
-    """Tripcolor picture of a 2D solution (vertex values) with a colour bar."""
+def plot_field(path, solution, *, title="", units="", show_mesh=False, length_unit="",
+               refinements=None):
+    """Colour picture (tripcolor) of a 2D solution with a colour bar.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Target ``.png``.
+    solution : Solution
+        A 2D solution.  P2 and higher are drawn on the refined P1 mesh of
+        :func:`galerkit.bindings.files.sample_solution` (values exact at its
+        vertices, linear in between).
+    title : str
+    units : str
+        Label of the colour bar, for example ``"temperature [K]"``.
+    show_mesh : bool
+        Draw the edges of the computational mesh on top.
+    length_unit : str
+        Unit of the axes, for example ``"m"``.
+    refinements : int, optional
+        Override the refinements of the drawing mesh.
+
+    Returns
+    -------
+    pathlib.Path
+
+    Raises
+    ------
+    InputError
+        For a 3D solution.
+    """
     mesh = solution.disc.mesh
     if mesh.dim != 2:
-        raise ValueError("plot_field draws 2D solutions only")
-    u = solution.u[solution.disc.vertex_dofs]
+        raise InputError("plot_field draws 2D solutions only; open the VTU file of a 3D "
+                         "solution in a viewer such as ParaView")
+    s = sample_solution(solution, refinements)
+    fine = s.mesh
     fig, ax = plt.subplots(figsize=(7, 5))
-    tpc = ax.tripcolor(mesh.points[:, 0], mesh.points[:, 1], mesh.cells, u, shading="gouraud",
-                       cmap="inferno")
+    tpc = ax.tripcolor(fine.points[:, 0], fine.points[:, 1], fine.cells, s.values,
+                       shading="gouraud", cmap="inferno")
     if show_mesh:
-        ax.triplot(mesh.points[:, 0], mesh.points[:, 1], mesh.cells, lw=0.2, color="w", alpha=0.5)
+        ax.triplot(mesh.points[:, 0], mesh.points[:, 1], mesh.cells, lw=0.3, color="w",
+                   alpha=0.6)
     cb = fig.colorbar(tpc, ax=ax)
     if units:
         cb.set_label(units)
     ax.set_aspect("equal")
+    ax.xaxis.set_major_locator(MaxNLocator(nbins=5))
+    ax.yaxis.set_major_locator(MaxNLocator(nbins=6))
     ax.set_xlabel(f"x{' [' + length_unit + ']' if length_unit else ''}")
     ax.set_ylabel(f"y{' [' + length_unit + ']' if length_unit else ''}")
     ax.set_title(title)
-    _save(fig, path)
-    return path
+    return _save(fig, path)
 
 
 def plot_convergence(path, table, *, title=""):
@@ -67,5 +104,42 @@ def plot_convergence(path, table, *, title=""):
     ax.grid(True, which="both", alpha=0.3)
     ax.legend()
     ax.set_title(title or f"P{k} convergence")
-    _save(fig, path)
-    return path
+    return _save(fig, path)
+
+
+def plot_residuals(path, histories, *, title="", rtol=None):
+    """Relative residual against iteration, one line per solver (semilogy).
+
+    Parameters
+    ----------
+    path : str or path-like
+    histories : dict
+        ``method -> residuals`` (1D arrays of relative residual norms, entry
+        0 the initial guess).  A single-entry history (a direct solver) is
+        drawn as one marker at iteration 1.
+    title : str
+    rtol : float, optional
+        Draws the tolerance as a horizontal line.
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    fig, ax = plt.subplots(figsize=(6.5, 4.5))
+    floor = np.finfo(float).tiny
+    for method, res in histories.items():
+        r = np.maximum(np.asarray(res, dtype=np.float64), floor)
+        if r.size == 0:
+            continue
+        if r.size == 1:
+            ax.semilogy([1], r, "s", ms=7, label=f"{method} (1 step)")
+        else:
+            ax.semilogy(np.arange(r.size), r, "-", lw=1.4, label=f"{method} ({r.size - 1} it.)")
+    if rtol is not None:
+        ax.axhline(rtol, color="grey", ls=":", lw=1, label=f"rtol {rtol:g}")
+    ax.set_xlabel("iteration")
+    ax.set_ylabel("relative residual ||b - A x|| / ||b||")
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=8)
+    ax.set_title(title or "residual histories")
+    return _save(fig, path)

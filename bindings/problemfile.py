@@ -1,0 +1,754 @@
+"""Problem files: a Poisson/diffusion problem described in TOML.
+
+A problem file names a mesh (a file, or one of the built-in generators), the
+element degree, the conductivity, the source, the boundary conditions by
+facet tag, the solver, the outputs and, optionally, an exact solution to
+measure the error against.  Coefficients are short formulas of the
+coordinates ``x``, ``y``, ``z`` read by
+:func:`galerkit.bindings.expressions.compile_expression` (never run as Python).
+The schema is documented in ``docs/problem-file.md``; in short::
+
+    title = "..."                      # optional
+    [constants]   name = number, ...   # usable in every formula
+    [mesh]        file = "part.msh" | generator = "square" | "box" | "l-shape",
+                  cells, lower, upper, refine
+    [discretization]  degree = 1..4
+    [material]    conductivity = number | "formula" | [[kxx, kxy], [kxy, kyy]]
+    [source]      value = number | "formula"
+    [[boundary]]  tag = "name", kind = "fixed" (value) | "flux" (flux)
+                  | "convection" (coefficient, ambient)
+    [solver]      method = "auto" | registered name, rtol, maxiter
+    [output]      folder, name, vtu, plot, mesh_overlay, units, length_unit
+    [exact]       solution = "formula", gradient = ["d/dx", "d/dy", ...]
+
+:func:`load_problem` reads and checks the whole file -- including reading the
+mesh, compiling every formula and checking every tag -- so that every mistake
+surfaces before anything is solved, as an :class:`~galerkit.errors.InputError`
+whose message names the file, the line where it can be found, the key path
+(``boundary[2].kind``; entries of ``[[boundary]]`` count from 1), what is
+wrong and what to write instead.  Unknown keys are named together with the
+valid ones.
+
+Examples
+--------
+>>> import os, tempfile
+>>> folder = tempfile.mkdtemp()
+>>> path = os.path.join(folder, "plate.toml")
+>>> with open(path, "w") as f:
+...     _ = f.write('''
+... [mesh]
+... generator = "square"
+... cells = [8, 8]
+... [source]
+... value = "2*pi^2*sin(pi*x)*sin(pi*y)"
+... [[boundary]]
+... tag = "boundary"
+... kind = "fixed"
+... value = 0
+... [exact]
+... solution = "sin(pi*x)*sin(pi*y)"
+... ''')
+>>> spec = load_problem(path)
+>>> problem, options = spec.build()
+>>> options.degree, options.method, sorted(problem.dirichlet)
+(1, 'auto', ['boundary'])
+>>> sol = problem.solve(options.degree, options.method, options.rtol)
+>>> from galerkit import l2_error
+>>> l2_error(sol.disc, sol.u, options.exact) < 0.05
+True
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+try:  # Python 3.11+
+    import tomllib
+except ModuleNotFoundError:  # pragma: no cover - Python 3.10
+    import tomli as tomllib
+
+from galerkit.errors import InputError
+
+from .expressions import Expression, compile_expression
+
+__all__ = ["load_problem", "parse_problem", "ProblemSpec", "RunOptions", "BoundaryEntry",
+           "SECTIONS", "BOUNDARY_KINDS", "GENERATORS"]
+
+#: The top-level keys and sections, and the keys each section accepts.
+SECTIONS = {
+    "title": None,
+    "constants": None,  # any names
+    "mesh": ("file", "generator", "cells", "lower", "upper", "refine"),
+    "discretization": ("degree",),
+    "material": ("conductivity",),
+    "source": ("value",),
+    "boundary": ("tag", "kind", "value", "flux", "coefficient", "ambient"),
+    "solver": ("method", "rtol", "maxiter"),
+    "output": ("folder", "name", "vtu", "plot", "mesh_overlay", "units", "length_unit"),
+    "exact": ("solution", "gradient"),
+}
+
+#: ``kind -> (value keys, meaning)`` of the boundary conditions.
+BOUNDARY_KINDS = {
+    "fixed": (("value",), "u = value (Dirichlet)"),
+    "flux": (("flux",), "conductivity * du/dn = flux, the flux into the domain (Neumann)"),
+    "convection": (("coefficient", "ambient"),
+                   "conductivity * du/dn = coefficient * (ambient - u) (Robin)"),
+}
+
+#: the trade's names of the conditions, for hints
+_TRADE_WORDS = {"dirichlet": "fixed", "neumann": "flux", "robin": "convection"}
+
+#: ``generator -> (dimension, default cells)`` of the built-in meshes.
+GENERATORS = {"square": (2, 16), "box": (3, 8), "l-shape": (2, 8)}
+
+
+# ----------------------------------------------------------------------------
+# results
+# ----------------------------------------------------------------------------
+@dataclass
+class BoundaryEntry:
+    """One ``[[boundary]]`` entry, checked.
+
+    ``values`` maps the kind's value keys to a float or a compiled
+    :class:`~galerkit.bindings.expressions.Expression`.
+    """
+
+    index: int  # counts from 1, as in messages
+    tag: str
+    kind: str
+    values: dict
+
+
+@dataclass
+class RunOptions:
+    """What to do with a problem, beside the problem itself.
+
+    Attributes
+    ----------
+    degree : int
+    method : str
+        ``"auto"`` or a registered solver name.
+    rtol : float
+    maxiter : int or None
+    folder : pathlib.Path
+        Output folder (relative paths in the file start at the file's folder;
+        the default is ``galerkit-out`` in the current folder).
+    stem : str
+        Base name of the output files (the problem file's name without suffix).
+    name : str
+        Name of the field in the outputs.
+    vtu, plot, mesh_overlay : bool
+    units, length_unit : str
+    title : str
+    exact : callable or None
+        Exact solution, ``exact(x)`` with ``x`` (dim, n) -> (n,).
+    exact_gradient : callable or None
+        ``exact_gradient(x)`` -> (dim, n).
+    """
+
+    degree: int = 1
+    method: str = "auto"
+    rtol: float = 1e-10
+    maxiter: int | None = None
+    folder: Path = Path("galerkit-out")
+    stem: str = "solution"
+    name: str = "u"
+    vtu: bool = True
+    plot: bool = False
+    mesh_overlay: bool = False
+    units: str = ""
+    length_unit: str = ""
+    title: str = ""
+    exact: Any = None
+    exact_gradient: Any = None
+
+
+@dataclass
+class ProblemSpec:
+    """A checked problem file; :meth:`build` turns it into a problem.
+
+    Attributes
+    ----------
+    source : str
+        Where it came from (the file path, or a description).
+    data : dict
+        The raw TOML table.
+    mesh : Mesh
+        The mesh, read or generated (and refined) at load time.
+    mesh_description : str
+        One line for reports, e.g. ``"generator square, 16 x 16 cells"``.
+    conductivity, source_term :
+        Numbers, compiled expressions, or a constant tensor (ndarray).
+    boundary : list of BoundaryEntry
+    options : RunOptions
+    constants : dict
+    """
+
+    source: str
+    data: dict
+    mesh: Any
+    mesh_description: str
+    conductivity: Any
+    source_term: Any
+    boundary: list
+    options: RunOptions
+    constants: dict = field(default_factory=dict)
+
+    def build(self):
+        """The :class:`~galerkit.PoissonProblem` and the :class:`RunOptions`.
+
+        Returns
+        -------
+        (PoissonProblem, RunOptions)
+            A new problem each call (on the same mesh); the options are a
+            copy, free to change (for example from command-line flags).
+        """
+        from dataclasses import replace
+
+        from galerkit.problem import PoissonProblem
+
+        dirichlet, neumann, robin = {}, {}, {}
+        for e in self.boundary:
+            v = {k: _kernel_value(x) for k, x in e.values.items()}
+            if e.kind == "fixed":
+                dirichlet[e.tag] = v["value"]
+            elif e.kind == "flux":
+                neumann[e.tag] = v["flux"]
+            else:
+                robin[e.tag] = (v["coefficient"], v["ambient"])
+        problem = PoissonProblem(self.mesh, conductivity=_kernel_value(self.conductivity),
+                                 source=_kernel_value(self.source_term), dirichlet=dirichlet,
+                                 neumann=neumann, robin=robin)
+        return problem, replace(self.options)
+
+
+def _kernel_value(v):
+    """Constants go to the kernel as floats (cheaper paths), formulas as callables."""
+    if isinstance(v, Expression) and v.is_constant:
+        return v.value
+    return v
+
+
+# ----------------------------------------------------------------------------
+# reading
+# ----------------------------------------------------------------------------
+def load_problem(path) -> ProblemSpec:
+    """Read, check and prepare a problem file.
+
+    Parameters
+    ----------
+    path : str or path-like
+        A TOML file in the schema of this module (``docs/problem-file.md``).
+
+    Returns
+    -------
+    ProblemSpec
+
+    Raises
+    ------
+    InputError
+        A missing or unreadable file, a TOML syntax error (with the line, the
+        column and a caret), an unknown section or key (with the valid ones),
+        a value of the wrong type or out of range (with the key path), a bad
+        formula (with the caret of the expression reader), an unreadable mesh
+        file, or a boundary tag the mesh does not have (with the tags it has).
+    """
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"problem file {str(p)!r} does not exist; check the path")
+    if p.is_dir():
+        raise InputError(f"problem file {str(p)!r} is a folder; pass a .toml file")
+    try:
+        raw = p.read_bytes()
+    except OSError as exc:
+        raise InputError(f"problem file {str(p)!r} cannot be read: {exc.strerror or exc}") \
+            from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        col = exc.start - (raw.rfind(b"\n", 0, exc.start) + 1) + 1
+        raise InputError(f"problem file {str(p)!r}, line {line}, column {col}: byte "
+                         f"0x{raw[exc.start]:02x} is not UTF-8 text; save the file as "
+                         "UTF-8") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(_toml_message(str(p), text, exc)) from None
+    return parse_problem(data, source=str(p), base=p.parent, text=text, stem=p.stem)
+
+
+def _toml_message(where: str, text: str, exc) -> str:
+    msg = str(exc)
+    m = re.search(r"\(at line (\d+), column (\d+)\)", msg)
+    if m is None:
+        head = msg.replace(" (at end of document)", "")
+        return (f"problem file {where!r}: TOML syntax error at the end of the file: {head}; "
+                "check for an unclosed bracket or string")
+    line, col = int(m.group(1)), int(m.group(2))
+    head = msg[: m.start()].rstrip()
+    lines = text.splitlines()
+    shown = lines[line - 1] if 0 < line <= len(lines) else ""
+    caret = " " * (max(col, 1) - 1) + "^"
+    return (f"problem file {where!r}, line {line}, column {col}: TOML syntax error: {head}\n"
+            f"    {shown}\n    {caret}\n"
+            "write key = value pairs, strings in double quotes (formulas too: "
+            "value = \"sin(pi*x)\"), and section names in [brackets]")
+
+
+class _Reader:
+    """Checks one problem table; every message names source, line and key path."""
+
+    def __init__(self, source: str, text: str | None):
+        self.source = source
+        self.lines = text.splitlines() if text is not None else None
+
+    # -- locations -----------------------------------------------------------
+    def line_of(self, path: tuple) -> int | None:
+        """Best-effort line of a key path such as ("boundary", 1, "kind") (0-based index)."""
+        if self.lines is None or not path:
+            return None
+        section, rest = path[0], list(path[1:])
+        index = rest.pop(0) if rest and isinstance(rest[0], int) else None
+        key = rest[0] if rest else None
+        if len(path) == 1:
+            top = self._top_key_line(section)
+            if top is not None:
+                return top
+        header = None
+        count = -1
+        for i, line in enumerate(self.lines):
+            m = re.match(r"^\[\[?\s*\"?([A-Za-z0-9_\-]+)\"?\s*\]", line.strip())
+            if m and m.group(1) == section:
+                count += 1
+                if index is None or count == index:
+                    header = i
+                    break
+        if header is None:  # an inline table, or a dotted key at the top
+            return self._top_key_line(section)
+        if key is None:
+            return header + 1
+        for j in range(header + 1, len(self.lines)):
+            s = self.lines[j].strip()
+            if s.startswith("["):
+                break
+            if re.match(rf"^\"?{re.escape(str(key))}\"?\s*=", s):
+                return j + 1
+        return header + 1
+
+    def _top_key_line(self, key) -> int | None:
+        for i, line in enumerate(self.lines or []):
+            s = line.strip()
+            if s.startswith("["):
+                return None
+            if re.match(rf"^\"?{re.escape(str(key))}\"?\s*(=|\.)", s):
+                return i + 1
+        return None
+
+    def where(self, path: tuple) -> str:
+        line = self.line_of(path)
+        loc = f"problem file {self.source!r}" + (f", line {line}" if line else "")
+        return f"{loc}: {_path_text(path)}"
+
+    def fail(self, path: tuple, what: str, todo: str = ""):
+        raise InputError(f"{self.where(path)}: {what}" + (f"; {todo}" if todo else ""))
+
+    # -- tables and values ---------------------------------------------------------
+    def table(self, value, path: tuple, allowed) -> dict:
+        if not isinstance(value, dict):
+            self.fail(path, f"must be a table ([{_path_text(path)}] section with key = value "
+                      f"lines), got {_type_word(value)}")
+        if allowed is not None:
+            for k in value:
+                if k not in allowed:
+                    self.unknown(path + (k,), k, allowed)
+        return value
+
+    def unknown(self, path, key, allowed):
+        near = difflib.get_close_matches(str(key), list(allowed), n=1)
+        hint = f"did you mean {near[0]!r}? " if near else ""
+        what = "section" if len(path) == 1 else "key"
+        self.fail(path, f"unknown {what} {key!r}",
+                  f"{hint}valid {what}s{' here' if len(path) > 1 else ''}: "
+                  f"{', '.join(allowed)}")
+
+    def integer(self, value, path, lo=None, hi=None) -> int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            self.fail(path, f"must be an integer, got {_type_word(value)}",
+                      "write a whole number without quotes, for example 2")
+        if (lo is not None and value < lo) or (hi is not None and value > hi):
+            rng = f"{lo} to {hi}" if hi is not None else f"at least {lo}"
+            self.fail(path, f"must be {rng}, got {value}")
+        return int(value)
+
+    def number(self, value, path, positive=False) -> float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            self.fail(path, f"must be a number, got {_type_word(value)}",
+                      "write a number without quotes, for example 1e-10")
+        f = float(value)
+        if not math.isfinite(f):
+            self.fail(path, f"must be finite, got {f}")
+        if positive and f <= 0:
+            self.fail(path, f"must be positive, got {f}")
+        return f
+
+    def string(self, value, path, choices=None) -> str:
+        if not isinstance(value, str):
+            self.fail(path, f"must be a string, got {_type_word(value)}",
+                      "put the text in double quotes")
+        if choices is not None and value not in choices:
+            near = difflib.get_close_matches(value, list(choices), n=1)
+            hint = f"did you mean {near[0]!r}? " if near else ""
+            self.fail(path, f"{value!r} is not one of the accepted values",
+                      f"{hint}write one of: {', '.join(repr(c) for c in choices)}")
+        return value
+
+    def boolean(self, value, path) -> bool:
+        if not isinstance(value, bool):
+            self.fail(path, f"must be true or false, got {_type_word(value)}",
+                      "write true or false without quotes")
+        return value
+
+    def formula(self, value, path, dim, constants) -> Expression:
+        if isinstance(value, bool) or not isinstance(value, (str, int, float)):
+            self.fail(path, f"must be a number or a formula in double quotes, got "
+                      f"{_type_word(value)}", "for example 1.5 or \"1 + x^2\"")
+        try:
+            return compile_expression(value, dim=dim, name=_path_text(path), constants=constants)
+        except InputError as exc:
+            line = self.line_of(path)
+            loc = f"problem file {self.source!r}" + (f", line {line}" if line else "")
+            raise InputError(f"{loc}: {exc}") from None
+
+
+def _path_text(path: tuple) -> str:
+    out = ""
+    for part in path:
+        if isinstance(part, int):
+            out += f"[{part + 1}]"
+        else:
+            out += ("." if out else "") + str(part)
+    return out
+
+
+def _type_word(v) -> str:
+    if isinstance(v, bool):
+        return f"true/false ({str(v).lower()})"
+    if isinstance(v, int):
+        return f"an integer ({v})"
+    if isinstance(v, float):
+        return f"a number ({v})"
+    if isinstance(v, str):
+        return f"a string ({v!r})"
+    if isinstance(v, list):
+        return "a list"
+    if isinstance(v, dict):
+        return "a table"
+    return f"a {type(v).__name__}"
+
+
+def parse_problem(data: dict, *, source: str = "<problem>", base=".", text: str | None = None,
+                  stem: str = "solution") -> ProblemSpec:
+    """Check a problem given as a dict (the parsed TOML) and prepare it.
+
+    Parameters
+    ----------
+    data : dict
+        The problem table, as ``tomllib.loads`` returns it.
+    source : str
+        Named in messages (a file name).
+    base : path-like
+        Folder that relative paths (``mesh.file``, ``output.folder``) start from.
+    text : str, optional
+        The TOML text, used to give line numbers in messages.
+    stem : str
+        Base name of the output files.
+
+    Returns
+    -------
+    ProblemSpec
+
+    Raises
+    ------
+    InputError
+        As :func:`load_problem`.
+    """
+    r = _Reader(source, text)
+    base = Path(base)
+    r.table(data, (), tuple(SECTIONS))
+    if "mesh" not in data:
+        raise InputError(f"problem file {source!r}: the [mesh] section is missing; add one "
+                         "with file = \"part.msh\" or generator = \"square\"")
+    # constants
+    constants = {}
+    if "constants" in data:
+        r.table(data["constants"], ("constants",), None)
+        for k, v in data["constants"].items():
+            constants[k] = r.number(v, ("constants", k))
+    title = r.string(data["title"], ("title",)) if "title" in data else ""
+    mesh, description = _read_mesh_section(r, data["mesh"], base)
+    dim = mesh.dim
+    if constants:
+        try:  # the expression reader checks the names (no x, y, z, pi, functions)
+            compile_expression("0", dim=dim, name="constants", constants=constants)
+        except InputError as exc:
+            r.fail(("constants",), str(exc).splitlines()[0].removeprefix("constants: "))
+    opts = RunOptions(title=title, stem=stem)
+    if "discretization" in data:
+        t = r.table(data["discretization"], ("discretization",), SECTIONS["discretization"])
+        if "degree" in t:
+            opts.degree = r.integer(t["degree"], ("discretization", "degree"), 1, 4)
+    conductivity = 1.0
+    if "material" in data:
+        t = r.table(data["material"], ("material",), SECTIONS["material"])
+        if "conductivity" in t:
+            conductivity = _conductivity(r, t["conductivity"], dim, constants)
+    source_term = 0.0
+    if "source" in data:
+        t = r.table(data["source"], ("source",), SECTIONS["source"])
+        if "value" in t:
+            source_term = r.formula(t["value"], ("source", "value"), dim, constants)
+    boundary = _boundary_entries(r, data.get("boundary", []), mesh, dim, constants)
+    if "solver" in data:
+        _solver_section(r, data["solver"], opts)
+    if "output" in data:
+        _output_section(r, data["output"], opts, base)
+    if "exact" in data:
+        _exact_section(r, data["exact"], opts, dim, constants)
+    return ProblemSpec(source=source, data=data, mesh=mesh, mesh_description=description,
+                       conductivity=conductivity, source_term=source_term, boundary=boundary,
+                       options=opts, constants=constants)
+
+
+def _read_mesh_section(r: _Reader, t, base: Path):
+    from galerkit import refine_uniform
+    from galerkit.generators import l_shaped_triangles, structured_tetrahedra, \
+        structured_triangles
+
+    t = r.table(t, ("mesh",), SECTIONS["mesh"])
+    has_file, has_gen = "file" in t, "generator" in t
+    if has_file == has_gen:
+        r.fail(("mesh",), "give exactly one of file and generator" if has_file else
+               "neither file nor generator is given",
+               "write file = \"part.msh\" (a mesh file) or generator = \"square\", \"box\" or "
+               "\"l-shape\"")
+    refine = r.integer(t["refine"], ("mesh", "refine"), 0, 8) if "refine" in t else 0
+    if has_file:
+        for k in ("cells", "lower", "upper"):
+            if k in t:
+                r.fail(("mesh", k), "applies to generated meshes only, not to mesh files",
+                       "remove it, or use generator = ... instead of file")
+        name = r.string(t["file"], ("mesh", "file"))
+        fpath = Path(name)
+        if not fpath.is_absolute():
+            fpath = base / fpath
+        from .files import read_mesh
+
+        try:
+            mesh = read_mesh(fpath)
+        except InputError as exc:
+            r.fail(("mesh", "file"), str(exc))
+        description = f"file {str(fpath)}"
+    else:
+        gen = r.string(t["generator"], ("mesh", "generator"), tuple(GENERATORS))
+        dim, default = GENERATORS[gen]
+        if gen == "l-shape":
+            for k in ("lower", "upper"):
+                if k in t:
+                    r.fail(("mesh", k), "does not apply to the l-shape generator (the "
+                           "domain is (-1, 1)^2 without the quadrant x > 0, y < 0)",
+                           "remove it")
+            n = r.integer(t["cells"], ("mesh", "cells"), 1, 10_000) if "cells" in t else default
+            mesh = l_shaped_triangles(n)
+            description = f"generator l-shape, {n} cells per unit length"
+        else:
+            counts = _cells(r, t.get("cells", default), dim)
+            lower = _point(r, t, "lower", dim, 0.0)
+            upper = _point(r, t, "upper", dim, 1.0)
+            for a in range(dim):
+                if not upper[a] > lower[a]:
+                    r.fail(("mesh", "upper"), f"must exceed mesh.lower in every coordinate; "
+                           f"coordinate {a + 1} has lower {lower[a]} and upper {upper[a]}")
+            if gen == "square":
+                mesh = structured_triangles(*counts, lower, upper)
+            else:
+                mesh = structured_tetrahedra(*counts, lower, upper)
+            description = (f"generator {gen}, {' x '.join(map(str, counts))} cells on "
+                           f"{list(lower)}..{list(upper)}")
+    for _ in range(refine):
+        mesh = refine_uniform(mesh)
+    if refine:
+        description += f", refined {refine} time{'s' if refine > 1 else ''}"
+    return mesh, description
+
+
+def _cells(r: _Reader, v, dim):
+    path = ("mesh", "cells")
+    if isinstance(v, list):
+        if len(v) != dim:
+            r.fail(path, f"needs {dim} counts (one per axis), got {len(v)}",
+                   f"write cells = {[8] * dim} or one number for all axes")
+        return [r.integer(c, path, 1, 100_000) for c in v]
+    return [r.integer(v, path, 1, 100_000)] * dim
+
+
+def _point(r: _Reader, t, key, dim, default):
+    path = ("mesh", key)
+    if key not in t:
+        return [default] * dim
+    v = t[key]
+    if not isinstance(v, list) or len(v) != dim:
+        r.fail(path, f"needs a list of {dim} numbers, got {_type_word(v)}"
+               + (f" of length {len(v)}" if isinstance(v, list) else ""),
+               f"for example {key} = {[default] * dim}")
+    return [r.number(c, path) for c in v]
+
+
+def _conductivity(r: _Reader, v, dim, constants):
+    path = ("material", "conductivity")
+    if isinstance(v, list):
+        if len(v) != dim or not all(isinstance(row, list) and len(row) == dim for row in v):
+            r.fail(path, f"as a tensor it needs {dim} rows of {dim} numbers",
+                   "write a number, a formula in double quotes, or for example "
+                   + ("[[1, 0], [0, 2]]" if dim == 2 else "[[1, 0, 0], [0, 1, 0], [0, 0, 2]]"))
+        k = np.array([[r.number(c, path) for c in row] for row in v])
+        if not np.allclose(k, k.T, rtol=1e-12, atol=0.0):
+            r.fail(path, "the tensor is not symmetric", "make entry (i, j) equal entry (j, i)")
+        if np.linalg.eigvalsh(k).min() <= 0:
+            r.fail(path, "the tensor is not positive definite (an eigenvalue is <= 0)",
+                   "a conductivity must conduct in every direction")
+        return k
+    expr = r.formula(v, path, dim, constants)
+    if expr.is_constant and expr.value <= 0:
+        r.fail(path, f"must be positive, got {expr.value}")
+    return expr
+
+
+def _boundary_entries(r: _Reader, entries, mesh, dim, constants):
+    if isinstance(entries, dict):
+        r.fail(("boundary",), "must be a list of [[boundary]] entries (double brackets), "
+               "not a single [boundary] table", "write [[boundary]] above each condition")
+    if not isinstance(entries, list):
+        r.fail(("boundary",), f"must be a list of [[boundary]] entries, got {_type_word(entries)}")
+    out = []
+    seen = {}
+    tags = sorted(mesh.facet_tags)
+    for i, e in enumerate(entries):
+        path = ("boundary", i)
+        r.table(e, path, SECTIONS["boundary"])
+        for k in ("tag", "kind"):
+            if k not in e:
+                r.fail(path, f"has no {k!r}",
+                       "each [[boundary]] entry needs tag = \"...\" and kind = \"fixed\", "
+                       "\"flux\" or \"convection\"")
+        tag = e["tag"]
+        if isinstance(tag, int) and not isinstance(tag, bool):
+            tag = str(tag)  # Gmsh physical ids without a name
+        tag = r.string(tag, path + ("tag",))
+        if tag not in mesh.facet_tags:
+            near = difflib.get_close_matches(tag, tags, n=1)
+            hint = f"did you mean {near[0]!r}? " if near else ""
+            r.fail(path + ("tag",), f"the mesh has no facet tag {tag!r}",
+                   f"{hint}its tags are: {', '.join(repr(t) for t in tags)}")
+        if isinstance(e["kind"], str) and e["kind"].lower() in _TRADE_WORDS:
+            word = _TRADE_WORDS[e["kind"].lower()]
+            r.fail(path + ("kind",), f"{e['kind']!r} is not one of the accepted values",
+                   f"a {e['kind'].capitalize()} condition is written kind = {word!r} here; "
+                   f"write one of: {', '.join(repr(c) for c in BOUNDARY_KINDS)}")
+        kind = r.string(e["kind"], path + ("kind",), tuple(BOUNDARY_KINDS))
+        keys, _ = BOUNDARY_KINDS[kind]
+        for k in SECTIONS["boundary"][2:]:
+            if k in e and k not in keys:
+                r.fail(path + (k,), f"does not apply to kind {kind!r}",
+                       f"kind {kind!r} takes {' and '.join(keys)}")
+        values = {}
+        for k in keys:
+            if k not in e:
+                r.fail(path, f"kind {kind!r} needs {k!r}",
+                       f"add {k} = <number or formula>; kind {kind!r} means "
+                       f"{BOUNDARY_KINDS[kind][1]}")
+            values[k] = r.formula(e[k], path + (k,), dim, constants)
+        if kind == "convection" and values["coefficient"].is_constant \
+                and values["coefficient"].value < 0:
+            r.fail(path + ("coefficient",), f"must not be negative, got "
+                   f"{values['coefficient'].value}", "a heat transfer coefficient is >= 0")
+        if tag in seen:
+            r.fail(path + ("tag",), f"tag {tag!r} already has a condition (boundary entry "
+                   f"{seen[tag] + 1})", "give each tag one condition; split the facets into "
+                   "several tags in the mesher if parts need different ones")
+        seen[tag] = i
+        out.append(BoundaryEntry(index=i + 1, tag=tag, kind=kind, values=values))
+    return out
+
+
+def _solver_section(r: _Reader, t, opts: RunOptions):
+    from galerkit.solvers import available_solvers
+
+    t = r.table(t, ("solver",), SECTIONS["solver"])
+    if "method" in t:
+        opts.method = r.string(t["method"], ("solver", "method"),
+                               ("auto", *available_solvers()))
+    if "rtol" in t:
+        opts.rtol = r.number(t["rtol"], ("solver", "rtol"), positive=True)
+        if opts.rtol >= 1:
+            r.fail(("solver", "rtol"), f"must be below 1, got {opts.rtol}",
+                   "a relative tolerance such as 1e-10")
+    if "maxiter" in t:
+        opts.maxiter = r.integer(t["maxiter"], ("solver", "maxiter"), 1)
+
+
+def _output_section(r: _Reader, t, opts: RunOptions, base: Path):
+    t = r.table(t, ("output",), SECTIONS["output"])
+    if "folder" in t:
+        f = Path(r.string(t["folder"], ("output", "folder")))
+        opts.folder = f if f.is_absolute() else base / f
+    if "name" in t:
+        name = r.string(t["name"], ("output", "name"))
+        if not re.fullmatch(r"[A-Za-z][A-Za-z0-9_\-]*", name):
+            r.fail(("output", "name"), f"{name!r} is not a plain name",
+                   "use letters, digits, _ and -, starting with a letter")
+        opts.name = name
+    for k in ("vtu", "plot", "mesh_overlay"):
+        if k in t:
+            setattr(opts, k, r.boolean(t[k], ("output", k)))
+    for k in ("units", "length_unit"):
+        if k in t:
+            setattr(opts, k, r.string(t[k], ("output", k)))
+
+
+def _exact_section(r: _Reader, t, opts: RunOptions, dim, constants):
+    t = r.table(t, ("exact",), SECTIONS["exact"])
+    if "solution" not in t:
+        r.fail(("exact",), "has no 'solution'", "add solution = \"<formula>\"")
+    opts.exact = r.formula(t["solution"], ("exact", "solution"), dim, constants)
+    if "gradient" in t:
+        g = t["gradient"]
+        if not isinstance(g, list) or len(g) != dim:
+            r.fail(("exact", "gradient"), f"needs a list of {dim} formulas (one per "
+                   f"coordinate), got {_type_word(g)}" + (f" of length {len(g)}"
+                                                         if isinstance(g, list) else ""),
+                   "for example gradient = [\"pi*cos(pi*x)*sin(pi*y)\", "
+                   "\"pi*sin(pi*x)*cos(pi*y)\"]")
+        comps = [r.formula(c, ("exact", "gradient"), dim, constants) for c in g]
+        opts.exact_gradient = _Gradient(comps)
+
+
+class _Gradient:
+    """``x -> (dim, n)`` from one compiled formula per component."""
+
+    def __init__(self, comps):
+        self.comps = comps
+
+    def __call__(self, x):
+        return np.stack([c(x) for c in self.comps])
+
+    def __repr__(self):
+        return f"gradient({', '.join(c.text for c in self.comps)})"

@@ -1,0 +1,282 @@
+"""Specification of the command line (galerkit.bindings.cli).
+
+End-to-end runs of every subcommand in a subprocess on small problems, and
+the exit codes and messages of bad input (in-process through ``main``, which
+is what the console script calls).  Exit codes: 0 success, 1 no convergence
+or a failed check, 2 bad input.  PNG files are recognised by their signature
+(PNG specification, section 5.2); VTU files are read back with meshio.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import meshio
+import numpy as np
+import pytest
+
+from galerkit.bindings.cli import CAUTION, main
+from galerkit.bindings.plots import PNG_SIGNATURE
+
+EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
+SCRIPT = Path(sys.executable).with_name("galerkit")
+
+
+def run(*args, cwd=None):
+    """Run the command line in a subprocess; (exit code, stdout, stderr)."""
+    cmd = [str(SCRIPT)] if SCRIPT.exists() else [sys.executable, "-m", "galerkit.bindings.cli"]
+    p = subprocess.run(cmd + [str(a) for a in args], capture_output=True, text=True, cwd=cwd,
+                       timeout=600)
+    return p.returncode, p.stdout, p.stderr
+
+
+def is_png(path) -> bool:
+    data = Path(path).read_bytes()
+    return len(data) > 1000 and data[:8] == PNG_SIGNATURE
+
+
+SQUARE = """
+title = "manufactured solution on the unit square"
+[mesh]
+generator = "square"
+cells = [8, 8]
+[discretization]
+degree = 2
+[source]
+value = "2*pi^2*sin(pi*x)*sin(pi*y)"
+[[boundary]]
+tag = "boundary"
+kind = "fixed"
+value = 0
+[exact]
+solution = "sin(pi*x)*sin(pi*y)"
+gradient = ["pi*cos(pi*x)*sin(pi*y)", "pi*sin(pi*x)*cos(pi*y)"]
+[output]
+units = "K"
+"""
+
+
+@pytest.fixture()
+def square(tmp_path):
+    path = tmp_path / "square.toml"
+    path.write_text(SQUARE)
+    return path
+
+
+# ----------------------------------------------------------------------------
+# end to end, one subprocess per subcommand
+# ----------------------------------------------------------------------------
+def test_demo_runs_and_writes_a_vtu_and_a_png(tmp_path):
+    code, out, err = run("--json", "demo", "--size", 40, "--output", tmp_path)
+    assert code == 0, err
+    info = json.loads(out)
+    assert info["converged"] and info["caution"] == CAUTION
+    vtu, png = (Path(p) for p in info["outputs"])
+    assert is_png(png)
+    back = meshio.read(vtu)
+    t = back.point_data["temperature"]
+    assert t.min() == pytest.approx(info["temperature_min"]) and t.max() > t.min() > 25.0
+
+
+def test_verify_reports_the_a_priori_orders(tmp_path):
+    # source: orders k+1 in L2 and k in H1 (Brenner & Scott, 2008)
+    png = tmp_path / "v.png"
+    code, out, err = run("verify", "--levels", 3, "--degree", 1, "--output", png, "--json")
+    assert code == 0, err
+    info = json.loads(out)  # strict JSON: the first row's order is null, not NaN
+    assert info["rows"][0]["eoc_l2"] is None
+    assert info["eoc_l2"] == pytest.approx(2.0, abs=0.1) and info["pass_h1"]
+    assert is_png(png)
+
+
+def test_mesh_info_counts_the_tags_of_the_example_mesh():
+    code, out, err = run("mesh-info", EXAMPLES / "pipe-wall.msh", "--json")
+    assert code == 0, err
+    info = json.loads(out)
+    # examples/make_pipe_mesh.py: 64 segments around, 8 layers: 2 * 64 * 8 triangles
+    assert info["cells"] == 1024 and info["tags"] == {"pipe": 64, "air": 64, "boundary": 128}
+
+
+def test_solve_2d_example_writes_vtu_and_png_and_reports_the_error(tmp_path):
+    code, out, err = run("solve", EXAMPLES / "pipe-wall.toml", "--output", tmp_path)
+    assert code == 0, err
+    for word in ("mesh", "unknowns", "solver", "assemble", "peak memory", "error", "L2",
+                 "wrote", CAUTION):
+        assert word in out
+    assert is_png(tmp_path / "pipe-wall.png")
+    back = meshio.read(tmp_path / "pipe-wall.vtu")
+    t = back.point_data["temperature"]
+    assert t.max() == pytest.approx(150.0, abs=1e-9)  # the fixed pipe temperature
+    assert (back.point_data["tag_pipe"] == 1).sum() == 64 * 2  # P2: 64 edges, refined
+
+
+def test_solve_3d_example_json_has_errors_and_skips_the_plot(tmp_path):
+    code, out, err = run("--json", "solve", EXAMPLES / "block-3d.toml", "--output", tmp_path,
+                         "--plot")
+    assert code == 0, err
+    info = json.loads(out)
+    assert info["solver"]["converged"] and info["solver"]["method"] == "cg-amg"
+    assert info["degree"] == 2 and info["dofs"] == 9 ** 3
+    assert 0 < info["errors"]["l2"] < 0.02 and info["errors"]["energy"] > 0
+    assert any("2D solutions only" in n for n in info["notes"])
+    assert [Path(p).name for p in info["outputs"]] == ["block-3d.vtu"]
+    assert set(info["seconds"]) >= {"load", "assemble", "solver_setup", "solve", "write"}
+
+
+def test_solve_vtu_equals_the_solution_and_the_flags_override_the_file(tmp_path, square):
+    code, out, err = run("solve", square, "--degree", 1, "--method", "cg", "--rtol", 1e-12,
+                         "--output", tmp_path / "res", "--plot", "--json")
+    assert code == 0, err
+    info = json.loads(out)
+    assert info["degree"] == 1 and info["solver"]["method"] == "cg"
+    back = meshio.read(tmp_path / "res" / "square.vtu")
+    # P1 on 8 x 8: vertex values within the nodal error of the exact solution
+    x, y = back.points[:, 0], back.points[:, 1]
+    exact = np.sin(np.pi * x) * np.sin(np.pi * y)
+    assert np.abs(back.point_data["u"] - exact).max() == pytest.approx(
+        info["errors"]["max_at_nodes"], rel=1e-9)
+    assert is_png(tmp_path / "res" / "square.png")
+
+
+def test_bench_generated_runs_every_solver_and_draws_the_residuals(tmp_path):
+    from galerkit.solvers import available_solvers
+
+    code, out, err = run("bench", "--generate", "square", "--size", 8, "--output", tmp_path)
+    assert code == 0, err
+    for m in available_solvers():
+        assert f"  {m} " in out
+    assert "tracemalloc" in out and "L2 error" in out
+    assert is_png(tmp_path / "bench-square-residuals.png")
+
+
+def test_bench_problem_file_json_solves_one_system_with_each_method(tmp_path, square):
+    code, out, err = run("--json", "bench", square, "--methods", "direct,cg-jacobi",
+                         "--output", tmp_path)
+    assert code == 0, err
+    info = json.loads(out)
+    rows = {r["method"]: r for r in info["rows"]}
+    assert list(rows) == ["direct", "cg-jacobi"]
+    # same system, both converged: the same discrete solution, so the same error
+    assert rows["direct"]["l2_error"] == pytest.approx(rows["cg-jacobi"]["l2_error"], rel=1e-6)
+    assert rows["direct"]["iterations"] == 1 and rows["cg-jacobi"]["iterations"] > 1
+    assert all(r["final_residual"] <= info["rtol"] for r in rows.values())
+    assert is_png(info["plot"])
+
+
+def test_bench_memory_of_direct_includes_its_factors(tmp_path, square, capsys):
+    # the memory column claims to include SuperLU's factors: at least 12 bytes per
+    # stored factor entry (8 value + 4 index) must show
+    assert main(["--json", "bench", str(square), "--methods", "direct",
+                 "--output", str(tmp_path)]) == 0
+    row = json.loads(capsys.readouterr().out)["rows"][0]
+    assert row["peak_mb"] * 2**20 >= 12 * row["facts"]["factor_nonzeros"]
+
+
+# ----------------------------------------------------------------------------
+# exit codes and messages (in-process)
+# ----------------------------------------------------------------------------
+def fails_with_2(argv, capsys, *needles):
+    code = main([str(a) for a in argv])
+    err = capsys.readouterr().err
+    assert code == 2, err
+    assert err.startswith("galerkit: error: ")
+    for n in needles:
+        assert n in err, err
+    return err
+
+
+def problem_with_mesh(tmp_path, mesh_name):
+    path = tmp_path / "p.toml"
+    path.write_text(f'[mesh]\nfile = "{mesh_name}"\n')
+    return path
+
+
+def test_missing_mesh_file_exits_2(tmp_path, capsys):
+    fails_with_2(["mesh-info", tmp_path / "none.msh"], capsys, "none.msh", "does not exist")
+    fails_with_2(["solve", problem_with_mesh(tmp_path, "none.msh")], capsys, "p.toml', line 2",
+                 "mesh.file", "does not exist")
+
+
+def test_corrupt_mesh_file_exits_2(tmp_path, capsys):
+    (tmp_path / "bad.msh").write_bytes(bytes(range(256)) * 8)
+    fails_with_2(["mesh-info", tmp_path / "bad.msh"], capsys, "bad.msh", "could not be read")
+    fails_with_2(["solve", problem_with_mesh(tmp_path, "bad.msh")], capsys, "could not be read")
+
+
+def test_quad_mesh_exits_2(tmp_path, capsys):
+    pts = np.array([[0, 0, 0], [1, 0, 0], [1, 1, 0], [0, 1, 0.0]])
+    meshio.write(str(tmp_path / "q.vtu"), meshio.Mesh(pts, [("quad", np.array([[0, 1, 2, 3]]))]))
+    fails_with_2(["solve", problem_with_mesh(tmp_path, "q.vtu")], capsys, "quadrilaterals")
+
+
+def test_mixed_dimension_mesh_exits_2(tmp_path, capsys):
+    pts = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1], [3, 3, 3], [4, 3, 3],
+                    [3, 4, 3]], dtype=float)
+    meshio.write(str(tmp_path / "m.vtu"),
+                 meshio.Mesh(pts, [("tetra", np.array([[0, 1, 2, 3]])),
+                                   ("triangle", np.array([[4, 5, 6]]))],
+                             cell_data={"gmsh:physical": [np.array([1]), np.array([2])]}))
+    fails_with_2(["mesh-info", tmp_path / "m.vtu"], capsys, "mixed dimensions")
+
+
+@pytest.mark.parametrize("text,needles", [
+    ("[mesh\ngenerator = 'square'\n", ["line 1", "TOML syntax error"]),
+    ("[mesh]\ngenerator = 'square'\nsize = 3\n", ["mesh.size: unknown key 'size'",
+                                                 "valid keys here"]),
+    ("[mesh]\ngenerator = 'square'\n[source]\nvalue = '1 +* x'\n", ["source.value", "^"]),
+    ("[mesh]\ngenerator = 'square'\n[discretization]\ndegree = 1.5\n",
+     ["discretization.degree: must be an integer"]),
+    ("[mesh]\ngenerator = 'square'\n[[boundary]]\ntag = 'inlet'\nkind = 'fixed'\nvalue = 1\n",
+     ["boundary[1].tag: the mesh has no facet tag 'inlet'", "its tags are"]),
+    ("[mesh]\ngenerator = 'square'\n[source]\nvalue = \"__import__('os')\"\n",
+     ["source.value", "^"]),
+])
+def test_bad_problem_files_exit_2_naming_the_problem(tmp_path, capsys, text, needles):
+    path = tmp_path / "bad.toml"
+    path.write_text(text)
+    fails_with_2(["solve", path], capsys, "bad.toml", *needles)
+    fails_with_2(["bench", path, "--methods", "cg"], capsys, "bad.toml", *needles)
+
+
+def test_bad_options_exit_2(tmp_path, capsys, square):
+    fails_with_2(["solve", square, "--method", "nosuch", "--output", tmp_path], capsys,
+                 "unknown solver method 'nosuch'")
+    fails_with_2(["solve", square, "--rtol", "2"], capsys, "--rtol must be")
+    fails_with_2(["bench", square, "--methods", "direct,lu"], capsys, "'lu' is not a registered")
+    fails_with_2(["bench"], capsys, "give a problem file or --generate")
+    fails_with_2(["solve", tmp_path / "none.toml"], capsys, "none.toml' does not exist")
+
+
+def test_argparse_mistakes_exit_2(capsys):
+    with pytest.raises(SystemExit) as info:
+        main(["solve"])
+    assert info.value.code == 2
+
+
+def test_no_convergence_exits_1_and_writes_no_files(tmp_path, capsys, square):
+    code = main(["solve", str(square), "--method", "cg", "--maxiter", "2",
+                 "--output", str(tmp_path / "out")])
+    out = capsys.readouterr().out
+    assert code == 1
+    assert "NOT CONVERGED" in out and "no files written" in out
+    assert not (tmp_path / "out" / "square.vtu").exists()
+
+
+def test_bench_exits_1_when_a_method_does_not_converge(tmp_path, capsys, square):
+    code = main(["--json", "bench", str(square), "--methods", "cg,direct", "--maxiter", "3",
+                 "--output", str(tmp_path)])
+    info = json.loads(capsys.readouterr().out)
+    assert code == 1 and not info["all_converged"]
+    assert [r["converged"] for r in info["rows"]] == [False, True]
+
+
+def test_flags_after_the_subcommand_and_quiet_output(tmp_path, capsys, square):
+    assert main(["solve", str(square), "--output", str(tmp_path), "--quiet"]) == 0
+    cap = capsys.readouterr()
+    assert "L2" in cap.out and CAUTION not in cap.out and "galerkit solve" not in cap.out
+    assert cap.err == ""  # no progress bars
+    assert main(["solve", str(square), "--output", str(tmp_path), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["caution"] == CAUTION
