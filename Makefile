@@ -4,7 +4,7 @@ VENV   := .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: venv demo test bench clean
+.PHONY: venv demo test bench clean clean-cache
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -24,5 +24,10 @@ bench: $(STAMP)
 	$(PY) benchmarks/compare.py
 	$(PY) benchmarks/compare_poisson.py
 
-clean:
+clean: clean-cache
 	rm -rf $(VENV) build *.egg-info
+
+# numba caches compiled kernels beside the sources; a kernel that calls a
+# function from another file is not recompiled when only that file changes.
+clean-cache:
+	find kernel bindings -name '*.nbi' -o -name '*.nbc' | xargs rm -f

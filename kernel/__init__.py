@@ -1,5 +1,12 @@
 """galerkit: Lagrange finite elements on triangles and tetrahedra."""
 
+import numba as _nb
+
+# Start numba's thread pool before any cached kernel is loaded: a cached serial
+# function that calls a parallel one can otherwise fail to resolve the
+# scheduler symbols when it is the first compiled code to run.
+_nb.get_num_threads()
+
 from .errors import *  # noqa: F401,F403
 from .mesh import Mesh, MeshQuality, remove_unreferenced_vertices
 from .generators import structured_triangles, structured_tetrahedra, l_shaped_triangles
