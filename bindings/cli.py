@@ -5,7 +5,7 @@ Subcommands
 ``demo``       a built-in scenario (cooling plate); writes VTU and PNG
 ``verify``     a manufactured-solution convergence study; writes a PNG
 ``mesh-info``  counts, tags and quality of a mesh file
-``solve``      solve a problem file (TOML, see ``docs/problem-file.md``)
+``solve``      solve a problem file (TOML, see the README section "Problem files")
 ``bench``      every registered solver on one assembled system
 
 ``--quiet`` (no progress bars, no headings, no caution: the result lines only)
@@ -699,7 +699,7 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("solve", parents=[common],
                        help="solve a problem file (TOML); writes VTU and, with --plot, PNG",
                        description="Solve the problem of a TOML problem file (see "
-                       "docs/problem-file.md). Flags override the file.")
+                       "README, Problem files). Flags override the file.")
     s.add_argument("problem", help="the problem file (.toml)")
     s.add_argument("--degree", type=int, choices=[1, 2, 3, 4], help="element degree")
     s.add_argument("--method", help="solver name, or auto")

@@ -6,7 +6,7 @@ facet tag, the solver, the outputs and, optionally, an exact solution to
 measure the error against.  Coefficients are short formulas of the
 coordinates ``x``, ``y``, ``z`` read by
 :func:`galerkit.bindings.expressions.compile_expression` (never run as Python).
-The schema is documented in ``docs/problem-file.md``; in short::
+The schema is documented in the README section "Problem files"; in short::
 
     title = "..."                      # optional
     [constants]   name = number, ...   # usable in every formula
@@ -246,7 +246,7 @@ def load_problem(path) -> ProblemSpec:
     Parameters
     ----------
     path : str or path-like
-        A TOML file in the schema of this module (``docs/problem-file.md``).
+        A TOML file in the schema of this module (the README section "Problem files").
 
     Returns
     -------

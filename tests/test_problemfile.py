@@ -383,15 +383,16 @@ def test_pipe_wall_example_agrees_with_the_closed_form_to_half_a_percent():
 
 def test_example_files_name_the_schema_document():
     for f in EXAMPLES.glob("*.toml"):
-        assert re.search(r"docs/problem-file\.md", f.read_text()), f
+        assert re.search(r"README\.md, \"Problem files\"", f.read_text()), f
 
 
 def test_the_documented_example_is_a_valid_problem_file():
     from galerkit.bindings.problemfile import tomllib
 
-    doc = (EXAMPLES.parent / "docs" / "problem-file.md").read_text()
-    block = re.search(r"```toml\n(.*?)```", doc, re.S).group(1)
-    spec = parse_problem(tomllib.loads(block), source="docs/problem-file.md", base=EXAMPLES,
+    doc = (EXAMPLES.parent / "README.md").read_text()
+    section = doc[doc.index("## Problem files"):]
+    block = re.search(r"```toml\n(.*?)```", section, re.S).group(1)
+    spec = parse_problem(tomllib.loads(block), source="README.md", base=EXAMPLES,
                          text=block)
     assert [e.kind for e in spec.boundary] == ["fixed", "convection"]
     assert spec.options.exact_gradient is not None
