@@ -39,12 +39,12 @@ import scipy.sparse as sp
 from .coefficients import scalar_values, tensor_values
 from .dofs import Discretization
 from .elements import REFERENCE_FACETS, lagrange_element
-from .errors import InputError
+from .errors import InputError, ResourceError
 from .geometry import invert, jacobian, physical_points
 from .quadrature import simplex_quadrature
 from .topology import incidence, index_dtype
 
-__all__ = ["Assembler"]
+__all__ = ["Assembler", "estimate_memory"]
 
 
 # ----------------------------------------------------------------------------
@@ -455,6 +455,53 @@ def _boundary_vector(points, vcells, dofs, fcells, flocal, facet_local, ref_meas
 
 
 # ----------------------------------------------------------------------------
+# memory estimate of the symbolic phase
+# ----------------------------------------------------------------------------
+def estimate_memory(disc: Discretization) -> dict:
+    """Upper estimate of the bytes an :class:`Assembler` and one matrix need.
+
+    Computed before anything is allocated, from counts only: the number of
+    stored entries is bounded by ``min(n_cells * k**2, n_dofs**2)`` (every
+    cell adds at most ``k**2`` entries, ``k`` local dofs); the position-map
+    entry size follows from the largest number of cells at one dof.
+
+    Returns
+    -------
+    dict
+        ``nnz_bound`` and the bytes of ``incidence`` (temporary dof -> cells
+        lists), ``pattern`` (indptr + indices), ``cell_order``,
+        ``position_map``, ``matrix`` (one float64 data array) and ``total``.
+    """
+    dofs = disc.cell_dofs
+    m, k = dofs.shape
+    n = disc.n_dofs
+    nnz = min(m * k * k, n * n)
+    isz = np.dtype(index_dtype(max(nnz, n))).itemsize
+    valence = int(np.bincount(np.asarray(dofs).ravel(), minlength=n).max()) if m else 0
+    longest = min(n, valence * k)
+    psz = 1 if longest <= 256 else (2 if longest <= 65536 else 4)
+    est = {
+        "nnz_bound": int(nnz),
+        "incidence": 8 * (n + 1) + m * k * np.dtype(index_dtype(m)).itemsize + 8 * n,
+        "pattern": isz * (n + 1 + nnz),
+        "cell_order": m * dofs.dtype.itemsize,
+        "position_map": m * k * k * psz,
+        "matrix": 8 * nnz,
+    }
+    est["total"] = int(sum(v for key, v in est.items() if key != "nnz_bound"))
+    return est
+
+
+def _check_quadrature_degree(value, where):
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
+        raise InputError(
+            f"{where}: quadrature_degree must be a non-negative integer (or None for the "
+            f"default), got {value!r}"
+        )
+    return int(value)
+
+
+# ----------------------------------------------------------------------------
 # the Assembler
 # ----------------------------------------------------------------------------
 class Assembler:
@@ -476,6 +523,17 @@ class Assembler:
     indptr, indices : ndarray (int32 where nnz < 2**31)
         The shared, read-only CSR pattern of every matrix returned.
     nnz : int
+
+    Raises
+    ------
+    InputError
+        ``disc`` is not a Discretization, or a bad ``quadrature_degree``.
+    ResourceError
+        The estimate of :func:`estimate_memory` (pattern, position map and
+        one matrix) exceeds the memory available -- ``MemAvailable`` of
+        ``/proc/meminfo``, or the environment variable
+        ``GALERKIT_MEMORY_LIMIT_BYTES`` when set -- checked before the
+        pattern is built.
 
     Examples
     --------
@@ -504,10 +562,30 @@ class Assembler:
                 f"Assembler: quadrature_degree must be a non-negative integer, got {quadrature_degree!r}"
             )
         self.quadrature_degree = int(quadrature_degree)
+        self._check_memory()
         self._build_pattern()
         self._chunks = {}
 
     # -- symbolic phase --------------------------------------------------------
+    def _check_memory(self):
+        from .solvers import memory_limit
+
+        limit, source = memory_limit()
+        if limit is None:
+            return
+        est = estimate_memory(self.disc)
+        if est["total"] > limit:
+            disc = self.disc
+            raise ResourceError(
+                f"Assembler: P{disc.degree} on {self.mesh.n_cells} cells ({disc.n_dofs} dofs) "
+                f"needs an estimated {est['total'] / 2**20:.1f} MiB ({est['total']} bytes) for "
+                f"the sparsity pattern, position map and one matrix (at most "
+                f"{est['nnz_bound']} stored entries), above the limit of "
+                f"{limit / 2**20:.1f} MiB ({int(limit)} bytes, {source}); use a coarser mesh or "
+                "a lower degree, free memory, or raise GALERKIT_MEMORY_LIMIT_BYTES if the "
+                "machine has more"
+            )
+
     def _build_pattern(self):
         disc = self.disc
         dofs = disc.cell_dofs
@@ -579,8 +657,13 @@ class Assembler:
                     "(was it modified, e.g. by eliminate_zeros, or built by another Assembler?)"
                 )
             if out.data.dtype != np.float64 or not out.data.flags.c_contiguous \
-                    or not out.data.flags.writeable:
-                raise InputError("out=: the matrix data must be writeable contiguous float64")
+                    or not out.data.flags.writeable or out.data.shape != (self.nnz,):
+                what = ("read-only" if not out.data.flags.writeable else
+                        "not contiguous" if not out.data.flags.c_contiguous else "")
+                raise InputError(
+                    f"out=: the matrix data must be a writeable contiguous float64 array of "
+                    f"shape ({self.nnz},), got {out.data.dtype} of shape {out.data.shape}"
+                    + (f" ({what})" if what else ""))
             data = out.data
             if zero:
                 data[:] = 0.0
@@ -607,7 +690,7 @@ class Assembler:
         return out
 
     def _rule(self, degree):
-        return simplex_quadrature(self.mesh.dim, max(int(degree), 0))
+        return simplex_quadrature(self.mesh.dim, _check_quadrature_degree(degree, "Assembler"))
 
     def _cell_coefficient(self, value, name, positive, degree):
         """(values, rule) for a scalar coefficient: rule None when constant."""
@@ -678,7 +761,8 @@ class Assembler:
             kappa = np.ones((1, 1))
             rule = None
         else:
-            deg = self.quadrature_degree if quadrature_degree is None else quadrature_degree
+            deg = self.quadrature_degree if quadrature_degree is None else \
+                _check_quadrature_degree(quadrature_degree, "stiffness")
             kappa, rule = self._cell_coefficient(conductivity, "conductivity", True, deg)
             tensor = np.zeros((0, d, d))
         data, out = self._new_matrix(out)
@@ -717,7 +801,8 @@ class Assembler:
         """
         disc, mesh = self.disc, self.mesh
         k = disc.degree
-        deg = self.quadrature_degree if quadrature_degree is None else quadrature_degree
+        deg = self.quadrature_degree if quadrature_degree is None else \
+            _check_quadrature_degree(quadrature_degree, "mass")
         coef, rule = self._cell_coefficient(coefficient, "mass coefficient", False, deg)
         if rule is None:
             R = self._mass_tables(self._rule(2 * k))
@@ -751,8 +836,17 @@ class Assembler:
         b = self._new_vector(out)
         rows, cells = self._chunk_plan()
         el = disc.element
-        arr = None if callable(source) else np.asarray(source)
+        arr = None
+        if not callable(source):
+            try:
+                arr = np.asarray(source)
+            except Exception:  # ragged lists and the like
+                arr = np.empty((0, 0), dtype=object)
         if arr is not None and arr.ndim == 1 and arr.shape == (disc.n_dofs,):
+            if arr.dtype.kind not in "iuf":
+                raise InputError(
+                    f"source: dof vector of dtype {arr.dtype}; it must hold real numbers "
+                    "(float64)")
             f = np.ascontiguousarray(arr, dtype=np.float64)
             bad = ~np.isfinite(f)
             if bad.any():
@@ -772,7 +866,8 @@ class Assembler:
                 f"({disc.n_dofs},), a number or a callable (for piecewise-constant sources "
                 "use a callable of x)"
             )
-        deg = self.quadrature_degree if quadrature_degree is None else quadrature_degree
+        deg = self.quadrature_degree if quadrature_degree is None else \
+            _check_quadrature_degree(quadrature_degree, "load")
         coef, rule = self._cell_coefficient(source, "source", False, deg)
         if rule is None:
             rule = self._rule(k)
@@ -785,13 +880,13 @@ class Assembler:
         return b
 
     # -- facet terms ----------------------------------------------------------------
-    def _facet_setup(self, tag, value, name, degree):
+    def _facet_setup(self, tag, value, name, degree, nonnegative=False):
         mesh, disc = self.mesh, self.disc
         d = mesh.dim
         ids = mesh.tagged_facets(tag)
         fcells = np.ascontiguousarray(mesh.boundary_facet_cells[ids])
         flocal = np.ascontiguousarray(mesh.boundary_facet_local[ids])
-        frule = simplex_quadrature(d - 1, max(int(degree), 0))
+        frule = simplex_quadrature(d - 1, _check_quadrature_degree(degree, f"{name} on {tag!r}"))
         facet_local = np.array(REFERENCE_FACETS[d], dtype=np.int64)
         # reference cell coordinates of the facet points, for each local facet
         verts = np.vstack([np.zeros(d), np.eye(d)])
@@ -811,13 +906,15 @@ class Assembler:
             return np.ascontiguousarray(X.reshape(-1, d).T)
 
         coef = scalar_values(value, len(ids), f"{name} on {tag!r}", points=pts,
-                             point_shape=(len(ids), frule.n_points), unit="facet")
+                             point_shape=(len(ids), frule.n_points), unit="facet",
+                             nonnegative=nonnegative)
         if coef.shape[1] == 1 and frule.n_points > 1:
             coef = np.ascontiguousarray(np.repeat(coef, frule.n_points, axis=1))
         V = np.array([disc.element.tabulate(Xf[f]) for f in range(d + 1)])  # (d+1, nq, k)
         return fcells, flocal, facet_local, ref_measure, frule, V, coef
 
-    def boundary_mass(self, tag, coefficient=1.0, *, out=None, quadrature_degree=None):
+    def boundary_mass(self, tag, coefficient=1.0, *, out=None, quadrature_degree=None,
+                      nonnegative=False):
         """Facet mass matrix ``integral over tag of (alpha u v)`` (Robin term).
 
         Parameters
@@ -826,6 +923,9 @@ class Assembler:
             Facet tag of the mesh.
         coefficient : float, ndarray (n_tagged_facets,) or callable
         out : csr_array, optional
+        nonnegative : bool
+            Refuse negative coefficient values (a Robin heat transfer
+            coefficient), naming the first offending facet.
 
         Returns
         -------
@@ -835,7 +935,7 @@ class Assembler:
         deg = (2 * k + 1 if callable(coefficient) else 2 * k) if quadrature_degree is None \
             else quadrature_degree
         fcells, flocal, facet_local, refm, frule, V, coef = self._facet_setup(
-            tag, coefficient, "boundary coefficient", deg)
+            tag, coefficient, "boundary coefficient", deg, nonnegative=nonnegative)
         R = np.einsum("q,fqa,fqb->fqab", frule.weights, V, V)
         R = np.ascontiguousarray(0.5 * (R + R.transpose(0, 1, 3, 2)))  # exactly symmetric
         data, out = self._new_matrix(out, zero=True)

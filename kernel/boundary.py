@@ -17,6 +17,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .errors import InputError
+from .solvers import _check_csr_structure
 
 __all__ = ["DirichletElimination", "dirichlet_values"]
 
@@ -93,15 +94,32 @@ class DirichletElimination:
     """
 
     def __init__(self, A, dofs):
+        if not sp.issparse(A) or A.ndim != 2 or A.shape[0] != A.shape[1]:
+            raise InputError(
+                "DirichletElimination: A must be a square SciPy sparse matrix, got "
+                f"{type(A).__name__} of shape {getattr(A, 'shape', None)}")
+        _check_csr_structure(A, "DirichletElimination")
         A = sp.csr_array(A)
         n = A.shape[0]
         # Fix: remember the dofs in the order given, so that values given in
         # that order (the documented "any order") land on the right dofs; the
         # sorted unique order was silently assumed before.
-        given = np.asarray(dofs, dtype=np.int64).ravel()
+        try:
+            given = np.asarray(dofs)
+        except Exception:  # ragged lists and the like
+            given = np.empty(0, dtype=object)
+        if given.size and given.dtype.kind not in "iu":
+            raise InputError(
+                f"DirichletElimination: dofs must be integers (dof indices), got dtype "
+                f"{given.dtype}; a fractional index would be truncated to a wrong dof")
+        given = given.astype(np.int64).ravel()
         dofs = np.unique(given)
         if dofs.size and (dofs[0] < 0 or dofs[-1] >= n):
-            raise InputError(f"Dirichlet dofs must lie in 0..{n - 1}, got {dofs[[0, -1]].tolist()}")
+            bad = int(dofs[0] if dofs[0] < 0 else dofs[-1])
+            raise InputError(
+                f"DirichletElimination: Dirichlet dof {bad} is outside 0..{n - 1} (the rows of "
+                f"A); Dirichlet dofs must lie in 0..{n - 1}, got the range "
+                f"{dofs[[0, -1]].tolist()}")
         self.n = n
         self.dofs = dofs
         self._given = given
@@ -130,6 +148,18 @@ class DirichletElimination:
                 (A.indptr is self._indptr or np.array_equal(A.indptr, self._indptr))
                 and (A.indices is self._indices or np.array_equal(A.indices, self._indices))):
             raise InputError("DirichletElimination: the matrix is not on the pattern it was built for")
+        # the kernels read A.data at every stored position
+        if A.data.ndim != 1 or A.data.shape[0] < int(self._indptr[-1]) \
+                or A.data.dtype.kind not in "iuf":
+            raise InputError(
+                f"DirichletElimination: the matrix data must be real with "
+                f"{int(self._indptr[-1])} entries, got {A.data.dtype} of shape {A.data.shape}")
+        if not np.isfinite(A.data).all():
+            k = int(np.flatnonzero(~np.isfinite(A.data))[0])
+            row = int(np.searchsorted(self._indptr, k, side="right") - 1)
+            raise InputError(
+                f"DirichletElimination: the matrix has a non-finite entry "
+                f"{float(A.data[k])!r} in row {row}; check the coefficients that produced it")
 
     def _full_values(self, values):
         """Dirichlet values as a full vector (zero on free dofs).
@@ -138,7 +168,20 @@ class DirichletElimination:
         given, or one per sorted unique Dirichlet dof (``self.dofs``).
         """
         g_full = np.zeros(self.n)
-        v = np.asarray(values, dtype=np.float64)
+        try:
+            v = np.asarray(values)
+        except Exception:
+            v = np.empty(0, dtype=object)
+        if v.dtype.kind not in "iufb":
+            raise InputError(
+                f"DirichletElimination: Dirichlet values must be real numbers, got dtype {v.dtype}")
+        v = v.astype(np.float64)
+        bad = ~np.isfinite(v)
+        if bad.any():
+            i = int(np.flatnonzero(bad.ravel())[0])
+            raise InputError(
+                f"DirichletElimination: non-finite Dirichlet value {float(v.ravel()[i])!r} "
+                f"(value {i}); check the boundary data")
         if v.ndim == 0 or v.shape == (self._given.size,):
             g_full[self._given] = v
         elif v.shape == (self.dofs.size,):
@@ -175,6 +218,12 @@ class DirichletElimination:
         """``b_f - A_fd g`` for Dirichlet values ``g`` (one per Dirichlet dof)."""
         self._check(A)
         g_full = self._full_values(values)
+        try:
+            b = np.asarray(b)
+        except Exception:  # ragged lists and the like
+            b = np.empty(0, dtype=object)
+        if b.dtype.kind not in "iuf":
+            raise InputError(f"DirichletElimination: rhs must be real numbers, got dtype {b.dtype}")
         b = np.ascontiguousarray(b, dtype=np.float64)
         if b.shape != (self.n,):  # Fix: the kernel read past the end of a short b
             raise InputError(f"DirichletElimination: rhs must have shape ({self.n},), got {b.shape}")
@@ -189,7 +238,12 @@ class DirichletElimination:
     def expand(self, u_free, values):
         """The full vector from the free part and the Dirichlet values."""
         u = self._full_values(values)  # values in the order the dofs were given
-        u[self.free] = u_free
+        uf = np.asarray(u_free)
+        if uf.shape != (self.n_free,) or uf.dtype.kind not in "iuf":
+            raise InputError(
+                f"DirichletElimination.expand: u_free must be a real array of shape "
+                f"({self.n_free},), got {uf.dtype} of shape {uf.shape}")
+        u[self.free] = uf
         return u
 
 
@@ -201,7 +255,15 @@ def dirichlet_values(disc, value, dofs, name="dirichlet"):
         x = np.ascontiguousarray(disc.dof_points[dofs].T)
         v = evaluate_callable(value, x, name)
     else:
-        arr = np.asarray(value, dtype=np.float64)
+        try:
+            arr = np.asarray(value)
+        except Exception:
+            arr = np.empty(0, dtype=object)
+        if arr.dtype.kind not in "iufb":
+            raise InputError(
+                f"{name}: expected a number, a callable or a dof array of shape "
+                f"({disc.n_dofs},), got {type(value).__name__} (dtype {arr.dtype})")
+        arr = arr.astype(np.float64)
         if arr.ndim == 0:
             v = np.full(dofs.size, float(arr))
         elif arr.shape == (disc.n_dofs,):

@@ -48,7 +48,7 @@ def evaluate_callable(func, x, name):
                 f"{type(exc).__name__}: {exc}. It must take x of shape (dim, n) and "
                 "return shape (n,)"
             ) from exc
-        v = np.asarray(v, dtype=np.float64)
+        v = _real_array(v, f"{name}: the callable returned")
         if v.ndim == 0:
             v = np.full(hi - lo, float(v))
         if v.shape != (hi - lo,):
@@ -60,11 +60,28 @@ def evaluate_callable(func, x, name):
     return out
 
 
-def _first_bad(values, bad, where_shape, name, what, points=None, unit="cell"):
+def _real_array(v, what):
+    """``v`` as a float64 array; complex, text and other non-numbers refused."""
+    try:
+        a = np.asarray(v)
+    except Exception as exc:  # ragged lists and the like
+        raise InputError(f"{what} something that is not an array of numbers ({exc})") from None
+    if a.dtype.kind == "c":
+        raise InputError(f"{what} complex values (dtype {a.dtype}); galerkit needs real numbers")
+    if a.dtype.kind not in "biuf":
+        try:
+            a = a.astype(np.float64)
+        except (TypeError, ValueError):
+            raise InputError(
+                f"{what} values of dtype {a.dtype} that are not real numbers") from None
+    return a.astype(np.float64, copy=False)
+
+
+def _first_bad(values, bad, where_shape, name, what, points=None, unit="cell", offset=0):
     flat = np.flatnonzero(bad.ravel())
     i = int(flat[0])
-    c = i // where_shape[1] if values.ndim == 2 else i
-    msg = (f"{name}: {what} value {values.ravel()[i]!r} in {unit} {c} "
+    c = offset + (i // where_shape[1] if values.ndim == 2 else i)
+    msg = (f"{name}: {what} value {float(values.ravel()[i])!r} in {unit} {c} "
            f"({flat.size} such values)")
     if points is not None:
         msg += f" at x = {points[:, i].tolist()}"
@@ -72,7 +89,7 @@ def _first_bad(values, bad, where_shape, name, what, points=None, unit="cell"):
 
 
 def scalar_values(value, n_items, name, *, positive=False, points=None,
-                  point_shape=None, unit="cell"):
+                  point_shape=None, unit="cell", nonnegative=False, first_item=0):
     """Normalise a scalar coefficient.
 
     Parameters
@@ -84,6 +101,10 @@ def scalar_values(value, n_items, name, *, positive=False, points=None,
         For messages ("conductivity", "source", ...).
     positive : bool
         Require every value > 0 (conductivities).
+    nonnegative : bool
+        Require every value >= 0 (Robin heat transfer coefficients).
+    first_item : int
+        Number of the first item, for messages (blocks of cells).
     points : callable or None
         ``points()`` returns the physical quadrature points (dim, n_items*nq);
         only called for callables.
@@ -97,11 +118,14 @@ def scalar_values(value, n_items, name, *, positive=False, points=None,
     if callable(value):
         x = points()
         v = evaluate_callable(value, x, name).reshape(point_shape)
-        _validate(v, name, positive, x, unit)
+        _validate(v, name, positive, x, unit, nonnegative, first_item)
         return np.ascontiguousarray(v)
     if isinstance(value, (bool, np.bool_)):
         raise InputError(f"{name}: expected a number, an array or a callable, got a bool")
-    arr = np.asarray(value)
+    try:
+        arr = np.asarray(value)
+    except Exception:  # ragged lists and the like
+        arr = np.empty(0, dtype=object)
     if arr.dtype == object or not (np.issubdtype(arr.dtype, np.number)):
         raise InputError(
             f"{name}: expected a number, an array of shape ({n_items},) or a callable, "
@@ -119,18 +143,22 @@ def scalar_values(value, n_items, name, *, positive=False, points=None,
             f"{name}: array of shape {arr.shape} given; expected a scalar or one value "
             f"per {unit}, shape ({n_items},)"
         )
-    _validate(v, name, positive, None, unit)
+    _validate(v, name, positive, None, unit, nonnegative, first_item)
     return np.ascontiguousarray(v)
 
 
-def _validate(v, name, positive, points, unit):
+def _validate(v, name, positive, points, unit, nonnegative=False, offset=0):
     bad = ~np.isfinite(v)
     if bad.any():
-        _first_bad(v, bad, v.shape, name, "non-finite", points, unit)
+        _first_bad(v, bad, v.shape, name, "non-finite", points, unit, offset)
     if positive:
         bad = v <= 0
         if bad.any():
-            _first_bad(v, bad, v.shape, name, "non-positive", points, unit)
+            _first_bad(v, bad, v.shape, name, "non-positive", points, unit, offset)
+    if nonnegative:
+        bad = v < 0
+        if bad.any():
+            _first_bad(v, bad, v.shape, name, "negative", points, unit, offset)
 
 
 def tensor_values(value, n_cells, dim, name):
@@ -138,9 +166,17 @@ def tensor_values(value, n_cells, dim, name):
 
     Returns ``None`` when ``value`` is not tensor-shaped (a scalar form).
     """
-    if callable(value) or np.ndim(value) < 2:
+    if callable(value):
         return None
-    arr = np.asarray(value, dtype=np.float64)
+    try:
+        nd = np.ndim(value)
+    except Exception:  # ragged nested lists
+        raise InputError(f"{name}: cannot be read as an array of numbers (ragged nesting?); "
+                         f"give a number, one value per cell, a callable, or a ({dim}, {dim}) "
+                         "tensor") from None
+    if nd < 2:
+        return None
+    arr = _real_array(value, f"{name}: the tensor holds")
     if arr.shape == (dim, dim):
         arr = arr.reshape(1, dim, dim)
     elif arr.shape != (n_cells, dim, dim):

@@ -22,7 +22,8 @@ import itertools
 
 import numpy as np
 
-from .elements import interior_tuples, lagrange_element
+from .coefficients import _real_array
+from .elements import SUPPORTED_DEGREES, interior_tuples, lagrange_element
 from .errors import InputError
 from .mesh import Mesh
 from .topology import enumerate_entities, index_dtype
@@ -66,9 +67,14 @@ class Discretization:
     def __init__(self, mesh: Mesh, degree: int = 1):
         if not isinstance(mesh, Mesh):
             raise InputError(f"Discretization: mesh must be a galerkit Mesh, got {type(mesh).__name__}")
+        if isinstance(degree, bool) or not isinstance(degree, (int, np.integer)) \
+                or degree not in SUPPORTED_DEGREES:
+            raise InputError(
+                f"Discretization: degree {degree!r} is not supported; choose one of "
+                f"{SUPPORTED_DEGREES}")
         self.mesh = mesh
-        self.element = lagrange_element(mesh.dim, degree)
-        self.degree = degree
+        self.element = lagrange_element(mesh.dim, int(degree))
+        self.degree = int(degree)
         if degree == 1:
             self.n_dofs = mesh.n_vertices
             self.cell_dofs = mesh.cells
@@ -186,7 +192,12 @@ class Discretization:
         elif isinstance(tag, str):
             ids = mesh.tagged_facets(tag)
         else:
-            tags = list(tag)
+            try:
+                tags = list(tag)
+            except TypeError:
+                raise InputError(
+                    f"boundary_dofs: tag must be a tag name, a list of names or None, got "
+                    f"{type(tag).__name__}") from None
             if not tags:
                 raise InputError("boundary_dofs: empty list of tags; pass None for the whole boundary")
             ids = np.unique(np.concatenate([mesh.tagged_facets(t) for t in tags]))
@@ -227,7 +238,17 @@ class Discretization:
         if not callable(func):
             raise InputError(f"interpolate: expected a callable or a number, got {type(func).__name__}")
         x = np.ascontiguousarray(self.dof_points.T)
-        v = np.asarray(func(x), dtype=np.float64)
+        try:
+            v = func(x)
+        except InputError:
+            raise
+        except Exception as exc:
+            raise InputError(
+                f"interpolate: the function failed on points of shape {x.shape}: "
+                f"{type(exc).__name__}: {exc}. It must take x of shape (dim, n) and return "
+                "shape (n,)"
+            ) from exc
+        v = _real_array(v, "interpolate: the function returned")
         if v.shape != (self.n_dofs,):
             v = np.broadcast_to(v, (self.n_dofs,)) if v.ndim == 0 else v
         if v.shape != (self.n_dofs,):

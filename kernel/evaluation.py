@@ -15,6 +15,33 @@ from .errors import InputError
 __all__ = ["locate_points", "evaluate", "cell_gradients"]
 
 
+def _real(a, name):
+    try:
+        arr = np.asarray(a)
+    except Exception:  # ragged lists and the like
+        arr = np.empty(0, dtype=object)
+    if arr.dtype.kind not in "iuf":
+        raise InputError(f"{name}: expected an array of real numbers, got dtype {arr.dtype}")
+    return arr.astype(np.float64, copy=False)
+
+
+def _dof_vector(disc, u, where):
+    """``u`` checked against ``disc``: real, finite, shape (n_dofs,)."""
+    from .dofs import Discretization
+
+    if not isinstance(disc, Discretization):
+        raise InputError(f"{where}: expected a Discretization, got {type(disc).__name__}")
+    arr = _real(u, f"{where}: u")
+    if arr.shape != (disc.n_dofs,):
+        raise InputError(f"{where}: u must be a dof vector of shape ({disc.n_dofs},), "
+                         f"got {arr.shape}")
+    bad = ~np.isfinite(arr)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise InputError(f"{where}: u has a non-finite value {arr[i]} at dof {i}")
+    return arr
+
+
 def _barycentric(mesh, cells, x):
     """Barycentric coordinates of points x (n, d) in cells (n,)."""
     v = mesh.points[mesh.cells[cells]]  # (n, d+1, d)
@@ -29,15 +56,25 @@ def locate_points(mesh, x, *, tol=1e-10, candidates=16):
     Parameters
     ----------
     x : ndarray, shape (dim, n)
+        Real, finite coordinates.
 
     Returns
     -------
     cells : ndarray (n,) int64
     xi : ndarray (n, dim), reference coordinates in that cell
     """
-    x = np.asarray(x, dtype=np.float64)
+    from .mesh import Mesh
+
+    if not isinstance(mesh, Mesh):
+        raise InputError(f"locate_points: mesh must be a galerkit Mesh, got {type(mesh).__name__}")
+    x = _real(x, "points")
     if x.ndim != 2 or x.shape[0] != mesh.dim:
         raise InputError(f"points must have shape ({mesh.dim}, n), got {x.shape}")
+    bad = ~np.isfinite(x).all(axis=0)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise InputError(f"points: point {i} has a non-finite coordinate {x[:, i].tolist()} "
+                         f"({int(bad.sum())} such points)")
     pts = np.ascontiguousarray(x.T)
     tree = getattr(mesh, "_centroid_tree", None)
     if tree is None:
@@ -80,6 +117,7 @@ def evaluate(disc, u, x, *, outside="error"):
     """
     if outside not in ("error", "nan"):  # Fix: a misspelt option silently meant "nan"
         raise InputError(f"evaluate: outside must be 'error' or 'nan', got {outside!r}")
+    u = _dof_vector(disc, u, "evaluate")
     cells, xi = locate_points(disc.mesh, x)
     bad = cells < 0
     if bad.any() and outside == "error":
@@ -91,18 +129,19 @@ def evaluate(disc, u, x, *, outside="error"):
     ok = ~bad
     if ok.any():
         V = disc.element.tabulate(xi[ok])
-        out[ok] = np.einsum("pa,pa->p", V, np.asarray(u)[disc.cell_dofs[cells[ok]]])
+        out[ok] = np.einsum("pa,pa->p", V, u[disc.cell_dofs[cells[ok]]])
     return out
 
 
 def cell_gradients(disc, u):
     """Gradient of ``u`` at every cell centroid, shape (n_cells, dim)."""
+    u = _dof_vector(disc, u, "cell_gradients")
     mesh = disc.mesh
     d = mesh.dim
     centroid = np.full((1, d), 1.0 / (d + 1))
     G = disc.element.tabulate_gradients(centroid)[0]  # (k, d)
     v = mesh.points[mesh.cells]
     J = np.transpose(v[:, 1:] - v[:, :1], (0, 2, 1))  # (m, d, d)
-    gref = np.einsum("ka,mk->ma", G, np.asarray(u)[disc.cell_dofs])  # (m, d)
+    gref = np.einsum("ka,mk->ma", G, u[disc.cell_dofs])  # (m, d)
     # physical gradient = J^-T gref
     return np.linalg.solve(np.transpose(J, (0, 2, 1)), gref[..., None])[..., 0]

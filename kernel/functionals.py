@@ -16,7 +16,7 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
-from .coefficients import evaluate_callable, scalar_values, tensor_values
+from .coefficients import _real_array, _validate, evaluate_callable, scalar_values, tensor_values
 from .dofs import Discretization
 from .errors import InputError
 from .geometry import invert, jacobian, physical_points
@@ -104,9 +104,14 @@ def _cell_integrals(points, cells, dofs, first, u, V, dV, w, ex, exg, kappa, ten
 def _check_u(disc, u, name="u"):
     if not isinstance(disc, Discretization):
         raise InputError(f"expected a Discretization, got {type(disc).__name__}")
-    arr = np.asarray(u)
+    try:
+        arr = np.asarray(u)
+    except Exception:  # ragged lists and the like
+        arr = np.empty(0, dtype=object)
     if arr.shape != (disc.n_dofs,):
         raise InputError(f"{name}: expected a dof vector of shape ({disc.n_dofs},), got {arr.shape}")
+    if arr.dtype.kind not in "iuf":
+        raise InputError(f"{name}: expected real numbers (float64), got dtype {arr.dtype}")
     arr = np.ascontiguousarray(arr, dtype=np.float64)
     bad = ~np.isfinite(arr)
     if bad.any():
@@ -120,6 +125,11 @@ def _integrate(disc, u, mode, exact=None, exact_gradient=None, conductivity=1.0,
     u = _check_u(disc, u)
     mesh = disc.mesh
     d, m = mesh.dim, mesh.n_cells
+    if quadrature_degree is not None and (
+            isinstance(quadrature_degree, bool)
+            or not isinstance(quadrature_degree, (int, np.integer)) or quadrature_degree < 0):
+        raise InputError(f"quadrature_degree must be a non-negative integer or None, got "
+                         f"{quadrature_degree!r}")
     deg = 2 * disc.degree + 2 if quadrature_degree is None else int(quadrature_degree)
     rule = simplex_quadrature(d, deg)
     nq = rule.n_points
@@ -132,6 +142,12 @@ def _integrate(disc, u, mode, exact=None, exact_gradient=None, conductivity=1.0,
         kappa_val = conductivity if need_kappa else 1.0
     else:
         kappa_val = 1.0
+    if not callable(kappa_val) and np.ndim(kappa_val) and np.shape(kappa_val) != (m,):
+        # Fix: a per-cell array was sliced block by block, so a too long array
+        # passed silently and gave a wrong number
+        raise InputError(
+            f"conductivity: array of shape {np.shape(kappa_val)} given; expected a number, "
+            f"one value per cell ({m},), a callable or a ({d}, {d}) / ({m}, {d}, {d}) tensor")
     source_dofs = None
     if mode == _FUNCTIONAL and np.ndim(source):
         source_dofs = _check_u(disc, source, "source (a dof vector)")
@@ -152,10 +168,14 @@ def _integrate(disc, u, mode, exact=None, exact_gradient=None, conductivity=1.0,
         exg = np.zeros((d, 1))
         if mode == _L2 and exact is not None:
             ex = evaluate_callable(exact, pts(), "exact").reshape(nb_, nq)
+            # Fix: a NaN of the exact solution gave a NaN error, not a message
+            _validate(ex, "exact", False, pts(), "cell", offset=first)
         if mode in (_H1, _ENERGY) and exact_gradient is not None:
             xx = pts()
             try:
-                g = np.asarray(exact_gradient(xx), dtype=np.float64)
+                g = _real_array(exact_gradient(xx), "exact_gradient returned")
+            except InputError:
+                raise
             except Exception as exc:
                 raise InputError(f"exact_gradient failed on points of shape {xx.shape}: {exc}") from exc
             if g.shape != (d, xx.shape[1]):
@@ -168,15 +188,18 @@ def _integrate(disc, u, mode, exact=None, exact_gradient=None, conductivity=1.0,
             exg = np.zeros((d, nb_ * nq))
         if mode == _L2 and exact is None:
             ex = np.zeros((nb_, nq))
+        # Fix: cells are named by their mesh number (block offset added)
         kappa = scalar_values(kappa_val, nb_, "conductivity", positive=True, points=pts,
-                              point_shape=(nb_, nq)) if not np.ndim(kappa_val) else \
-            scalar_values(np.asarray(kappa_val)[first:last], nb_, "conductivity", positive=True)
+                              point_shape=(nb_, nq), first_item=first) if not np.ndim(kappa_val) \
+            else scalar_values(np.asarray(kappa_val)[first:last], nb_, "conductivity",
+                               positive=True, first_item=first)
         src = np.zeros((1, 1))
         if mode == _FUNCTIONAL:
             if np.ndim(source):  # a dof vector: its interpolant at the quadrature points
                 src = np.ascontiguousarray(source_dofs[disc.cell_dofs[first:last]] @ V.T)
             else:
-                src = scalar_values(source, nb_, "source", points=pts, point_shape=(nb_, nq))
+                src = scalar_values(source, nb_, "source", points=pts, point_shape=(nb_, nq),
+                                    first_item=first)
         # cells are indexed from `first`; coefficient arrays are block-local
         out = np.empty(nb_)
         _cell_integrals(mesh.points, mesh.cells, disc.cell_dofs, first, u, V, dV, rule.weights,

@@ -107,6 +107,92 @@ def _check_cells(cells, n_vertices):
     return first, code, count
 
 
+def _permutation_sign(p):
+    """+1 for an even permutation of 0..k-1 (a tuple), -1 for an odd one."""
+    inv = sum(1 for i in range(len(p)) for j in range(i + 1, len(p)) if p[i] > p[j])
+    return -1 if inv % 2 else 1
+
+
+def _check_folds(cells, local, ent, cell_ent, mult):
+    """Refuse a mesh that folds over itself: two cells on the same side of their facet.
+
+    Every cell is positively oriented (re-oriented before this runs), so the side
+    of a cell's opposite vertex, seen from its facet with the vertices in sorted
+    order, is the sign of the permutation from (facet in local order, opposite
+    vertex) to the cell order times the parity of sorting the facet's global
+    vertex ids: no arithmetic on coordinates.  The two cells of an interior
+    facet lie on opposite sides (sides sum to 0) unless the mesh is tangled.
+    """
+    m, k = cells.shape
+    positive = np.empty((m, local.shape[0]), dtype=bool)
+    for f in range(local.shape[0]):
+        lf = [int(v) for v in local[f]]
+        opposite = [v for v in range(k) if v not in lf][0]
+        odd = _permutation_sign(lf + [opposite]) < 0
+        for i in range(len(lf)):
+            for j in range(i + 1, len(lf)):
+                odd = odd ^ (cells[:, lf[i]] > cells[:, lf[j]])
+        positive[:, f] = ~odd
+    n_ent = ent.shape[0]
+    total = (2 * np.bincount(cell_ent[positive], minlength=n_ent)
+             - np.bincount(cell_ent.ravel(), minlength=n_ent))
+    folded = (mult == 2) & (total != 0)
+    if folded.any():
+        _refuse_duplicates(cells)
+        e = int(np.flatnonzero(folded)[0])
+        pair = np.flatnonzero((cell_ent == e).any(axis=1))
+        raise MeshError(
+            f"mesh: cells {int(pair[0])} and {int(pair[1])} lie on the same side of their "
+            f"shared facet with vertices {ent[e].tolist()} ({int(folded.sum())} such facets): "
+            "the mesh folds over itself (an inverted cell overlaps its neighbour, which "
+            "re-orienting cannot repair); move the vertices so that cells do not overlap"
+        )
+
+
+def _refuse_duplicates(cells):
+    """Raise for two cells with one vertex set (named), if there are any.
+
+    Called where duplicates are the likely cause: a duplicate pair shares every
+    facet, so each of its facets is shared by three or more cells (non-manifold)
+    or by just the pair, which then lies on one side of it (a fold).
+    """
+    dup = _duplicate_cells(cells)
+    if dup is not None:
+        (i, j), count = dup
+        raise MeshError(
+            f"mesh: cells {i} and {j} have the same vertices {sorted(cells[i].tolist())} "
+            f"(cells repeating an earlier one: {count}); a duplicate cell counts its "
+            "volume twice. Remove the repeated cells")
+
+
+def _duplicate_cells(cells):
+    """``((i, j), count)``: the first cell ``j`` whose vertex set repeats an
+    earlier cell ``i``, and how many cells repeat an earlier one; ``None`` when
+    every cell is distinct."""
+    s = np.sort(cells, axis=1).astype(np.uint64)
+    # one 64-bit key per vertex set (wrapping arithmetic): equal sets give equal
+    # keys; the few cells sharing a key are then compared row by row
+    key = np.zeros(s.shape[0], dtype=np.uint64)
+    for j in range(s.shape[1]):
+        key = key * np.uint64(0x9E3779B97F4A7C15) + s[:, j]
+    order = np.argsort(key, kind="stable")
+    ks = key[order]
+    eq = ks[1:] == ks[:-1]
+    if not eq.any():
+        return None
+    shared = np.zeros(ks.shape[0], dtype=bool)
+    shared[1:] |= eq
+    shared[:-1] |= eq
+    idx = np.sort(order[shared])
+    _, first, inverse = np.unique(s[idx], axis=0, return_index=True, return_inverse=True)
+    inverse = inverse.ravel()
+    later = np.flatnonzero(np.arange(idx.size) != first[inverse])
+    if later.size == 0:
+        return None
+    t = int(later[0])
+    return (int(idx[first[inverse[t]]]), int(idx[t])), int(later.size)
+
+
 @dataclass(frozen=True)
 class MeshQuality:
     """Summary of cell sizes and shapes (see :meth:`Mesh.quality`).
@@ -168,7 +254,14 @@ def _as_cells(cells, n_vertices, dim):
         )
     c = np.ascontiguousarray(c)
     if c.dtype.kind == "u" and c.dtype.itemsize >= 8:
-        c = c.astype(np.int64)  # values beyond int64 are caught below
+        big = (c > np.iinfo(np.int64).max).any(axis=1)
+        if big.any():
+            i = int(np.flatnonzero(big)[0])
+            raise MeshError(
+                f"mesh cells: cell {i} has vertex indices {c[i].tolist()} outside "
+                f"0..{n_vertices - 1} ({int(big.sum())} such cells)"
+            )
+        c = c.astype(np.int64)
     c64 = c if c.dtype.itemsize <= 8 else c.astype(np.int64)
     first, code, count = _check_cells(c64, n_vertices)
     if first >= 0:
@@ -188,14 +281,20 @@ def _as_cells(cells, n_vertices, dim):
 def remove_unreferenced_vertices(points, cells):
     """Drop vertices that no cell uses.
 
+    ``points`` and ``cells`` are validated as in :class:`Mesh` (shapes,
+    dtypes, finite coordinates, indices in range), so a bad index raises
+    :class:`~galerkit.errors.MeshError` rather than picking a wrong vertex.
+
     Returns
     -------
     points : ndarray, shape (n_used, d)
     cells : ndarray, shape (m, d + 1), renumbered
     old_to_new : ndarray, shape (n,), int64, -1 for dropped vertices
     """
-    points = np.asarray(points)
-    cells = np.asarray(cells)
+    # validate first: a cell index out of range would be an IndexError (or,
+    # with a negative index, a silently wrong vertex) below
+    points = _as_points(points)
+    cells = _as_cells(cells, points.shape[0], points.shape[1])
     used = np.zeros(points.shape[0], dtype=bool)
     used[cells.ravel()] = True
     old_to_new = np.full(points.shape[0], -1, dtype=np.int64)
@@ -220,10 +319,14 @@ class Mesh:
     ------
     MeshError
         Wrong shape or dtype, an index out of range, a non-finite coordinate,
-        a cell repeating a vertex, a degenerate cell (|volume| below
-        ``DEGENERACY_TOLERANCE * longest_edge**d``), a vertex no cell uses,
-        or a facet shared by more than two cells.  The message names the
-        first offending vertex or cell.
+        a cell repeating a vertex, two cells with the same vertex set (both
+        named), a degenerate cell (|volume| below
+        ``DEGENERACY_TOLERANCE * longest_edge**d``), a vertex no cell uses
+        (remove them with :func:`remove_unreferenced_vertices`), a facet
+        shared by more than two cells, two cells on the same side of their
+        shared facet (a folded mesh: an inverted cell overlapping its
+        neighbour), or ``facet_tags`` that is not a dict of valid ids.  The
+        message names the first offending vertex or cell.
 
     Examples
     --------
@@ -238,6 +341,10 @@ class Mesh:
         p = _as_points(points)
         n, d = p.shape
         c = _as_cells(cells, n, d)
+        if facet_tags is not None and not hasattr(facet_tags, "items"):
+            raise MeshError(
+                f"mesh facet_tags must be a dict of name -> boundary facet ids, got "
+                f"{type(facet_tags).__name__}")
         used = np.bincount(c.ravel(), minlength=n)
         if (used == 0).any():
             i = int(np.flatnonzero(used == 0)[0])
@@ -305,14 +412,16 @@ class Mesh:
     @cached_property
     def _facet_topology(self):
         local = np.array(REFERENCE_FACETS[self.dim], dtype=np.int64)
-        ent, _, mult, first = enumerate_entities(self.cells, local, self.n_vertices,
-                                                 with_cell_entities=False)
+        ent, cell_ent, mult, first = enumerate_entities(self.cells, local, self.n_vertices)
         if (mult > 2).any():
+            _refuse_duplicates(self.cells)
             i = int(np.flatnonzero(mult > 2)[0])
             raise MeshError(
                 f"mesh: facet with vertices {ent[i].tolist()} is shared by {int(mult[i])} "
                 "cells (non-manifold); each facet may belong to one or two cells"
             )
+        _check_folds(self.cells, local, ent, cell_ent, mult)
+        del cell_ent
         bnd = np.flatnonzero(mult == 1)
         facets = np.ascontiguousarray(ent[bnd])
         nf = local.shape[0]
@@ -349,14 +458,31 @@ class Mesh:
 
     # -- tags -------------------------------------------------------------------
     def set_facet_tag(self, name: str, facet_ids) -> np.ndarray:
-        """Tag boundary facets by id (indices into ``boundary_facets``)."""
+        """Tag boundary facets by id (indices into ``boundary_facets``).
+
+        Raises
+        ------
+        MeshError
+            A name that is not a non-empty string, ids that are not a 1D integer
+            array, an id outside ``0 .. len(boundary_facets) - 1``, or no ids at
+            all (an empty tag is refused: a condition on it would do nothing).
+        """
         if not isinstance(name, str) or not name:
             raise MeshError(f"facet tag names must be non-empty strings, got {name!r}")
-        ids = np.asarray(facet_ids)
+        try:
+            ids = np.asarray(facet_ids)
+        except Exception as exc:  # ragged lists and the like
+            raise MeshError(f"facet tag {name!r}: ids cannot be read as an array ({exc})") from None
         if ids.ndim != 1 or not (np.issubdtype(ids.dtype, np.integer) or ids.size == 0):
             raise MeshError(f"facet tag {name!r}: ids must be a 1D integer array")
         k = self.boundary_facets.shape[0]
-        if ids.size and (ids.min() < 0 or ids.max() >= k):
+        if ids.size == 0:
+            raise MeshError(
+                f"facet tag {name!r}: no facet ids given; a tag must name at least one "
+                "boundary facet (a condition on an empty tag would silently do nothing). "
+                "Check the selection, or leave the tag out"
+            )
+        if ids.min() < 0 or ids.max() >= k:
             bad = int(ids[(ids < 0) | (ids >= k)][0])
             raise MeshError(
                 f"facet tag {name!r}: facet id {bad} is outside 0..{k - 1} "
@@ -396,7 +522,13 @@ class Mesh:
         4
         """
         x = self.facet_midpoints()
-        mask = np.asarray(predicate(x))
+        try:
+            mask = np.asarray(predicate(x))
+        except Exception as exc:
+            raise MeshError(
+                f"tag_boundary({name!r}): the predicate failed on the facet midpoints of "
+                f"shape {x.shape}: {type(exc).__name__}: {exc}"
+            ) from exc
         if mask.shape != (x.shape[1],) or mask.dtype != bool:
             raise MeshError(
                 f"tag_boundary({name!r}): the predicate must return a boolean array of "
@@ -411,11 +543,65 @@ class Mesh:
 
     def tagged_facets(self, tag: str) -> np.ndarray:
         """Facet ids of ``tag``; a clear error naming the known tags if missing."""
-        if tag not in self.facet_tags:
+        if not isinstance(tag, str) or tag not in self.facet_tags:
             raise MeshError(
                 f"mesh has no facet tag {tag!r}; known tags: {sorted(self.facet_tags)}"
             )
         return self.facet_tags[tag]
+
+    # -- connectivity ----------------------------------------------------------
+    def connected_components(self):
+        """Connected components of the mesh.
+
+        Two cells are connected when they share a vertex (continuous Lagrange
+        elements couple them through that vertex's dof).  The components are
+        found by ``scipy.sparse.csgraph.connected_components`` on this cell
+        adjacency, stored as a graph on the vertices (each cell joins its
+        vertices).
+
+        Returns
+        -------
+        count : int
+            Number of components (1 for a connected mesh).
+        labels : ndarray, shape (n_cells,), int64, read-only
+            Component of each cell, numbered ``0 .. count - 1`` in the order of
+            the first cell of each component.
+
+        Examples
+        --------
+        >>> m = Mesh([[0, 0], [1, 0], [0, 1], [5, 0], [6, 0], [5, 1]],
+        ...          [[0, 1, 2], [3, 4, 5]])
+        >>> count, labels = m.connected_components()
+        >>> count, labels.tolist()
+        (2, [0, 1])
+        """
+        return self._components
+
+    @cached_property
+    def _components(self):
+        import scipy.sparse as sp
+        from scipy.sparse.csgraph import connected_components
+
+        # the cells' adjacency through shared vertices, as a graph on the
+        # vertices: each cell joins its first vertex to its others (rows grouped
+        # by first vertex: CSR without a COO conversion)
+        n = self.n_vertices
+        first_vertex = self.cells[:, 0]
+        order = np.argsort(first_vertex, kind="stable")
+        k = self.cells.shape[1] - 1
+        indptr = np.zeros(n + 1, dtype=np.int64)
+        np.cumsum(np.bincount(first_vertex, minlength=n) * k, out=indptr[1:])
+        cols = np.ascontiguousarray(self.cells[order, 1:]).ravel()
+        graph = sp.csr_array((np.ones(cols.size, dtype=np.int8), cols, indptr), shape=(n, n))
+        _, vertex_label = connected_components(graph, directed=False)
+        labels = vertex_label[first_vertex]
+        # number the components by their first cell
+        _, first, inverse = np.unique(labels, return_index=True, return_inverse=True)
+        rank = np.empty(first.size, dtype=np.int64)
+        rank[np.argsort(first, kind="stable")] = np.arange(first.size)
+        labels = rank[inverse.ravel()]
+        labels.flags.writeable = False
+        return int(first.size), labels
 
     # -- quality ---------------------------------------------------------------
     def cell_quality(self) -> np.ndarray:

@@ -11,19 +11,21 @@ Solves ``-div(kappa grad u) = f`` in the domain with, per facet tag,
   transfer coefficient alpha and ambient temperature u_ext.
 
 Untagged boundary is insulated (zero Neumann).  Where Dirichlet tags share
-dofs, the tag given later wins.  Without Dirichlet and Robin terms the
-problem is pure Neumann: the data must be compatible (``integral f +
-integral q = 0`` in each connected component), and the free constant is fixed
-by a zero mean in each component.
+dofs, the tag given later wins.  A connected component of the mesh without
+Dirichlet dofs and without Robin facets of alpha > 0 is pure Neumann: its
+data must be compatible (``integral f + integral q = 0`` over that
+component), and its free constant is fixed by a zero mean over it.  Robin
+coefficients must be finite and >= 0.
 """
 
 from __future__ import annotations
 
+import math
+import numbers
 import time
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.sparse.csgraph import connected_components
 
 from .assembly import Assembler
 from .boundary import DirichletElimination, dirichlet_values
@@ -101,19 +103,30 @@ class PoissonProblem:
         self.mesh = mesh
         self.conductivity = conductivity
         self.source = source
+        for kind, table in (("dirichlet", dirichlet), ("neumann", neumann), ("robin", robin)):
+            if table is not None and not hasattr(table, "items"):
+                raise ProblemError(
+                    f"PoissonProblem: {kind} must be a dict of facet tag -> value, got "
+                    f"{type(table).__name__}")
         self.dirichlet = dict(dirichlet or {})
         self.neumann = dict(neumann or {})
         self.robin = dict(robin or {})
         for kind, table in (("dirichlet", self.dirichlet), ("neumann", self.neumann),
                             ("robin", self.robin)):
             for tag in table:
-                if tag not in mesh.facet_tags:
+                if not isinstance(tag, str) or tag not in mesh.facet_tags:
                     raise ProblemError(
                         f"{kind} condition on tag {tag!r}, but the mesh has no such facet tag; "
                         f"known tags: {sorted(mesh.facet_tags)}")
         for tag, value in self.robin.items():
             if not (isinstance(value, (tuple, list)) and len(value) == 2):
                 raise ProblemError(f"robin[{tag!r}] must be a pair (alpha, u_ext), got {value!r}")
+            alpha = value[0]
+            if isinstance(alpha, numbers.Real) and not isinstance(alpha, bool) and not (
+                    math.isfinite(alpha) and alpha >= 0):
+                raise ProblemError(
+                    f"robin[{tag!r}]: the heat transfer coefficient alpha = {alpha!r} must be "
+                    "finite and >= 0 (a negative alpha makes the problem unstable)")
 
     def discretize(self, degree=1):
         return Discretization(self.mesh, degree)
@@ -140,8 +153,26 @@ class PoissonProblem:
         Raises
         ------
         ProblemError
-            Incompatible pure-Neumann data.
+            Incompatible data in a part of the mesh without Dirichlet or Robin
+            terms (pure Neumann: integral of source + boundary flux != 0 in a
+            connected component), a negative or non-finite Robin coefficient,
+            an assembler of another mesh.
+
+        Notes
+        -----
+        Each connected component of the mesh (:meth:`Mesh.connected_components`)
+        that has no Dirichlet dof and no Robin facet with alpha > 0 is a
+        pure-Neumann component: its data must balance, and its free constant is
+        fixed by a zero mean over that component.
         """
+        if assembler is not None and not isinstance(assembler, Assembler):
+            raise InputError(
+                f"PoissonProblem.solve: assembler must be an Assembler, got "
+                f"{type(assembler).__name__}")
+        if assembler is not None and assembler.mesh is not self.mesh:
+            raise ProblemError(
+                "PoissonProblem.solve: the assembler was built for another mesh; build it "
+                "from a Discretization of this problem's mesh")
         sec = {}
         t0 = time.perf_counter()
         if assembler is None:
@@ -157,8 +188,17 @@ class PoissonProblem:
         b = asm.load(self.source)
         for tag, flux in self.neumann.items():
             b += asm.boundary_load(tag, flux)
+        robin_diagonal = np.zeros(disc.n_dofs)
         for tag, (alpha, uext) in self.robin.items():
-            A.data += asm.boundary_mass(tag, alpha).data
+            try:
+                Bm = asm.boundary_mass(tag, alpha, nonnegative=True)
+            except ProblemError:
+                raise
+            except InputError as exc:
+                raise ProblemError(f"robin[{tag!r}] heat transfer coefficient alpha: {exc}; "
+                                   "alpha must be finite and >= 0") from None
+            A.data += Bm.data
+            robin_diagonal += Bm.diagonal()
             if callable(alpha) or callable(uext):
                 prod = _product(alpha, uext)
             else:
@@ -169,10 +209,25 @@ class PoissonProblem:
         t0 = time.perf_counter()
         notes = []
         fixed_dofs, fixed_vals = self._dirichlet(disc)
-        pure_neumann = fixed_dofs.size == 0 and not self.robin
+        # components without Dirichlet dofs or Robin terms are pure Neumann
+        n_comp, cell_label = self.mesh.connected_components()
+        dof_label = np.empty(disc.n_dofs, dtype=np.int64)
+        dof_label[disc.cell_dofs] = cell_label[:, None]
+        anchored = np.zeros(n_comp, dtype=bool)
+        anchored[dof_label[fixed_dofs]] = True
+        anchored[dof_label[robin_diagonal > 0]] = True
+        floating = np.flatnonzero(~anchored)
+        pure_neumann = floating.size > 0
         if pure_neumann:
-            fixed_dofs, fixed_vals, comps = self._neumann_constraint(asm, A, b)
-            notes.append(f"pure Neumann problem: {comps[0]} component(s), each fixed by zero mean")
+            pins, comps = self._neumann_constraint(asm, b, dof_label, floating)
+            fixed_dofs = np.concatenate([fixed_dofs, pins])
+            fixed_vals = np.concatenate([fixed_vals, np.zeros(pins.size)])
+            if floating.size == n_comp:
+                notes.append(f"pure Neumann problem: {n_comp} component(s), each fixed by "
+                             "zero mean")
+            else:
+                notes.append(f"{floating.size} of {n_comp} mesh components have no Dirichlet "
+                             "or Robin condition (pure Neumann there): each fixed by zero mean")
         elim = DirichletElimination(A, fixed_dofs)
         Af, bf = elim.reduce(A, b, fixed_vals)
         sec["constrain"] = time.perf_counter() - t0
@@ -199,7 +254,7 @@ class PoissonProblem:
         dofs = np.flatnonzero(mask)
         return dofs, value_of[dofs]
 
-    def _neumann_constraint(self, asm, A, b):
+    def _neumann_constraint(self, asm, b, dof_label, floating):
         # Fix: the assembled load integrates callable data by quadrature, so
         # sum(b) differs from integral f + integral q by the quadrature error even
         # for exactly compatible data (f = 2 pi^2 cos(pi x) cos(pi y) on an 8x8
@@ -209,12 +264,18 @@ class PoissonProblem:
         # round-off) is incompatible.  Accepted data are then balanced exactly
         # (the imbalance removed as a constant source) so that the pinned
         # system solves every equation.
-        n_comp, label = connected_components(A, directed=False)
+        # One constraint per floating component of the mesh
+        # (Mesh.connected_components), none for the anchored ones.
+        n_comp = int(dof_label.max()) + 1 if dof_label.size else 0
         b_acc = self._accurate_load(asm)
-        w = asm.load(1.0) if n_comp else None  # integral of each basis function
-        pins = np.empty(n_comp, dtype=np.int64)
-        for k in range(n_comp):
-            members = np.flatnonzero(label == k)
+        w = asm.load(1.0)  # integral of each basis function
+        by_label = np.argsort(dof_label, kind="stable")
+        bounds = np.searchsorted(dof_label[by_label], np.arange(n_comp + 1))
+        pins = np.empty(floating.size, dtype=np.int64)
+        members_of = []
+        for i, k in enumerate(floating):
+            members = by_label[bounds[k]:bounds[k + 1]]  # ascending dofs (stable sort)
+            members_of.append(members)
             total = float(b[members].sum())  # = integral f + integral q (partition of unity)
             f_int = total if b_acc is None else float(b_acc[members].sum())
             quad_err = abs(total - f_int)
@@ -222,13 +283,14 @@ class PoissonProblem:
             if abs(f_int) > 1e-8 * scale + quad_err:
                 raise ProblemError(
                     "pure Neumann problem with incompatible data"
-                    + (f" in component {k}" if n_comp > 1 else "")
+                    + (f" in mesh component {int(k)} (of {n_comp}; it has no Dirichlet or "
+                       "Robin condition)" if n_comp > 1 else "")
                     + f": integral of source + boundary flux = {f_int:.6e} (relative "
                     f"{abs(f_int) / scale:.2e}); it must vanish. Add a Dirichlet or Robin "
                     "condition, or balance the source and the fluxes")
             b[members] -= total * w[members] / float(w[members].sum())
-            pins[k] = members[0]
-        return pins, np.zeros(n_comp), (n_comp, label)
+            pins[i] = members[0]
+        return pins, members_of
 
     def _accurate_load(self, asm):
         """Load of the data with 4 more quadrature degrees; None when all data are
@@ -244,10 +306,8 @@ class PoissonProblem:
 
     @staticmethod
     def _zero_mean(asm, u, comps):
-        n_comp, label = comps
         w = asm.load(1.0)  # integral of each basis function
-        for k in range(n_comp):
-            sel = label == k
+        for sel in comps:
             u[sel] -= float(w[sel] @ u[sel]) / float(w[sel].sum())
         return u
 

@@ -66,9 +66,11 @@ similarly up to a constant)::
     bytes      ~ 16 * nnz(L + U)        (8 value + 4 index + working space)
 
 and raises :class:`~galerkit.errors.ResourceError` when that exceeds the limit:
-the option ``memory_limit_bytes`` when given, else the memory currently
+the option ``memory_limit_bytes`` when given, else the environment variable
+``GALERKIT_MEMORY_LIMIT_BYTES`` when set, else the memory currently
 available (``MemAvailable`` of ``/proc/meminfo``, else the physical memory
-from ``os.sysconf``; no check when neither can be read).  For 2D matrices the
+from ``os.sysconf``; no check when neither can be read); see
+:func:`memory_limit`, which the assembler's estimate uses too.  For 2D matrices the
 model overestimates (2D fill grows like ``n log n``), so a large 2D system may
 be refused although it would fit; pass a larger ``memory_limit_bytes`` to try.
 """
@@ -100,6 +102,8 @@ __all__ = [
     "solve",
     "choose_method",
     "AUTO_DIRECT_LIMITS",
+    "MEMORY_LIMIT_VARIABLE",
+    "memory_limit",
 ]
 
 #: ``"auto"`` picks ``"direct"`` when ``n <= AUTO_DIRECT_LIMITS[dim] / degree``.
@@ -408,6 +412,7 @@ def _validate_matrix(A: Any, where: str) -> sp.sparray | sp.spmatrix:
             f"{where}: A has dtype {A.dtype}; the solvers need real entries "
             "(float64); complex and non-numeric matrices are not supported"
         )
+    _check_csr_structure(A, where)
     A = A.tocsr()
     if A.dtype != np.float64:
         A = A.astype(np.float64)
@@ -418,10 +423,57 @@ def _validate_matrix(A: Any, where: str) -> sp.sparray | sp.spmatrix:
         col = int(A.indices[k])
         raise InputError(
             f"{where}: A has {bad.size} non-finite entries, the first at "
-            f"(row {row}, column {col}) = {A.data[k]!r}; check the coefficients "
+            f"(row {row}, column {col}) = {float(A.data[k])!r}; check the coefficients "
             "and the assembly that produced A"
         )
     return A
+
+
+def _check_csr_structure(A: Any, where: str) -> None:
+    """Refuse a CSR/CSC/COO matrix whose arrays are inconsistent.
+
+    SciPy checks the structure when a matrix is built, not when its arrays are
+    replaced or edited later; compiled code (SciPy's conversions and products,
+    SuperLU, our kernels) then reads out of bounds.  Checks: lengths; for
+    CSR/CSC ``indptr`` from 0, non-decreasing and ending inside ``indices``;
+    every index inside the shape.  Other formats are converted by SciPy as is.
+    """
+    fmt = getattr(A, "format", "")
+    problem = ""
+    if fmt in ("csr", "csc"):
+        n_major, n_minor = A.shape if fmt == "csr" else A.shape[::-1]
+        major = "row" if fmt == "csr" else "column"
+        indptr, indices, data = A.indptr, A.indices, A.data
+        if indptr.ndim != 1 or indptr.shape[0] != n_major + 1 or indptr.dtype.kind not in "iu":
+            problem = (f"indptr has shape {indptr.shape} and dtype {indptr.dtype}, expected "
+                       f"({n_major + 1},) integers")
+        elif indices.ndim != 1 or indices.dtype.kind not in "iu" or data.ndim != 1 \
+                or data.shape[0] != indices.shape[0]:
+            problem = (f"indices (shape {indices.shape}, dtype {indices.dtype}) and data "
+                       f"(shape {data.shape}) must be 1-D of one length, indices integers")
+        elif indptr[0] != 0 or indptr[-1] > indices.shape[0] or (np.diff(indptr) < 0).any():
+            problem = (f"indptr must start at 0, never decrease and end at most at "
+                       f"{indices.shape[0]} (got start {indptr[0]}, end {indptr[-1]})")
+        else:
+            used = indices[: int(indptr[-1])]
+            bad = np.flatnonzero((used < 0) | (used >= n_minor))
+            if bad.size:
+                k = int(bad[0])
+                at = int(np.searchsorted(indptr, k, side="right") - 1)
+                problem = (f"{major} {at} has an index {int(used[k])} outside "
+                           f"0..{n_minor - 1} ({bad.size} such entries)")
+    elif fmt == "coo":
+        coords = getattr(A, "coords", None) or (A.row, A.col)
+        for axis, (idx, size) in enumerate(zip(coords, A.shape)):
+            if idx.shape != A.data.shape or (idx.size and (idx.min() < 0 or idx.max() >= size)):
+                problem = (f"the {('row', 'column')[axis]} indices do not match the data or "
+                           f"leave 0..{size - 1}")
+                break
+    if problem:
+        raise InputError(
+            f"{where}: A is not a consistent {fmt.upper()} matrix: {problem}; were its arrays "
+            "changed after it was built? Rebuild it with scipy.sparse.csr_array(...)"
+        )
 
 
 def _validate_vector(v: Any, n: int, name: str, where: str) -> np.ndarray:
@@ -431,7 +483,10 @@ def _validate_vector(v: Any, n: int, name: str, where: str) -> np.ndarray:
             f"{where}: {name} must be a dense 1-D array of length {n}, got a "
             f"sparse matrix of shape {v.shape}; pass {name}.toarray().ravel()"
         )
-    arr = np.asarray(v)
+    try:
+        arr = np.asarray(v)
+    except Exception:  # ragged lists and the like
+        arr = np.empty(0, dtype=object)
     if arr.dtype.kind not in "iuf":
         raise InputError(
             f"{where}: {name} has dtype {arr.dtype}; it must be a real array of "
@@ -449,7 +504,7 @@ def _validate_vector(v: Any, n: int, name: str, where: str) -> np.ndarray:
         i = int(bad[0])
         raise InputError(
             f"{where}: {name} has {bad.size} non-finite entries, the first at "
-            f"index {i} ({name}[{i}] = {arr[i]!r}); check the load vector and "
+            f"index {i} ({name}[{i}] = {float(arr[i])!r}); check the load vector and "
             "boundary data"
         )
     return arr
@@ -653,9 +708,10 @@ def prepare_solver(
     where = "prepare_solver"
     A = _validate_matrix(A, where)
     n = A.shape[0]
-    name = choose_method(n, dim, degree) if method == "auto" else method
+    auto = isinstance(method, str) and method == "auto"
+    name = choose_method(n, dim, degree) if auto else method
     entry = _lookup(name, where)
-    if method == "auto":
+    if auto:
         where = f"prepare_solver (method 'auto' chose {name!r} for n={n})"
     _check_options(name, entry.factory, options, where)
     t0 = time.perf_counter()
@@ -910,6 +966,43 @@ def _estimate_lu_bytes(n: int, nnz: int) -> float:
     return 16.0 * fill
 
 
+#: Environment variable that, when set, replaces the available memory (bytes) in
+#: every memory guard: the assembler's pattern estimate and the "direct" factors.
+MEMORY_LIMIT_VARIABLE = "GALERKIT_MEMORY_LIMIT_BYTES"
+
+
+def memory_limit() -> tuple[float | None, str]:
+    """The memory limit of the guards, in bytes, and where it comes from.
+
+    Returns
+    -------
+    limit : float or None
+        ``GALERKIT_MEMORY_LIMIT_BYTES`` when set, else the memory available
+        now (``MemAvailable``, else the physical memory); None when neither
+        can be read (then nothing is checked).
+    source : str
+        For messages: the variable and its value, or "available memory".
+
+    Raises
+    ------
+    InputError
+        If the variable is set to something other than a number > 0.
+    """
+    text = os.environ.get(MEMORY_LIMIT_VARIABLE, "").strip()
+    if text:
+        try:
+            value = float(text)
+        except ValueError:
+            value = float("nan")
+        if not (math.isfinite(value) and value > 0):
+            raise InputError(
+                f"environment variable {MEMORY_LIMIT_VARIABLE}={text!r} is not a number of "
+                "bytes > 0; set it to, e.g., 8e9, or unset it to use the available memory"
+            )
+        return value, f"{MEMORY_LIMIT_VARIABLE}={text}"
+    return _available_memory_bytes(), "available memory"
+
+
 def _available_memory_bytes() -> int | None:
     """MemAvailable from /proc/meminfo, else physical memory, else None."""
     try:
@@ -990,9 +1083,11 @@ def _direct(A, *, ordering: str = "MMD_AT_PLUS_A", memory_limit_bytes: float | N
         )
     n, nnz = A.shape[0], A.nnz
     estimate = _estimate_lu_bytes(n, nnz)
-    limit = memory_limit_bytes if memory_limit_bytes is not None else _available_memory_bytes()
+    if memory_limit_bytes is not None:
+        limit, source = memory_limit_bytes, "memory_limit_bytes"
+    else:
+        limit, source = memory_limit()
     if limit is not None and estimate > limit:
-        source = "memory_limit_bytes" if memory_limit_bytes is not None else "available memory"
         raise ResourceError(
             f"{where}: the LU factors of this {n}x{n} matrix with {nnz} stored "
             f"entries are estimated at {estimate / 2**20:.1f} MiB (3D-like fill "
@@ -1052,7 +1147,7 @@ def _cg_jacobi(A):
     if bad.size:
         i = int(bad[0])
         raise InputError(
-            f"solver 'cg-jacobi': diagonal entry of row {i} is {diag[i]!r} "
+            f"solver 'cg-jacobi': diagonal entry of row {i} is {float(diag[i])!r} "
             f"({bad.size} rows have a diagonal <= 0); an SPD matrix has a "
             "positive diagonal: check the assembly and Dirichlet elimination"
         )
@@ -1096,6 +1191,11 @@ DEFAULT_AMG_OPTIONS = {
 }
 
 
+#: Seed of NumPy's global generator while PyAMG builds a hierarchy (it draws
+#: random start vectors), so that "cg-amg" is bitwise reproducible.
+AMG_SEED = 0
+
+
 def _cg_amg(A, *, amg_options: dict | None = None):
     """CG preconditioned by one smoothed-aggregation V-cycle (PyAMG).
 
@@ -1103,7 +1203,10 @@ def _cg_amg(A, *, amg_options: dict | None = None):
     ``pyamg.smoothed_aggregation_solver`` (for example ``max_levels``,
     ``max_coarse``, ``strength``, ``smooth``, ``presmoother``,
     ``postsmoother``, ``coarse_solver``); keep the smoothers symmetric so that
-    the V-cycle stays an SPD preconditioner.  Default maxiter 500.
+    the V-cycle stays an SPD preconditioner.  Default maxiter 500.  The
+    hierarchy is built with NumPy's global generator seeded with ``AMG_SEED``
+    (the caller's generator state is restored), so set-up and solves are
+    bitwise reproducible.
     """
     import pyamg
 
@@ -1129,6 +1232,12 @@ def _cg_amg(A, *, amg_options: dict | None = None):
         pruned = A.copy()
         pruned.eliminate_zeros()
     keywords = {**DEFAULT_AMG_OPTIONS, **amg_options}
+    # Fix: PyAMG estimates spectral radii (prolongation smoothing) from a random
+    # start vector of NumPy's global generator, so two set-ups of one matrix gave
+    # different hierarchies and solutions differing in the last bits.  PyAMG's own
+    # advice for reproducibility is a fixed seed; the caller's state is restored.
+    state = np.random.get_state()
+    np.random.seed(AMG_SEED)
     try:
         hierarchy = pyamg.smoothed_aggregation_solver(pruned, **keywords)
     except (TypeError, ValueError) as exc:
@@ -1136,6 +1245,8 @@ def _cg_amg(A, *, amg_options: dict | None = None):
             f"{where}: pyamg.smoothed_aggregation_solver refused amg_options="
             f"{amg_options!r}: {exc}; see the PyAMG documentation of that function"
         ) from exc
+    finally:
+        np.random.set_state(state)
     cycle = hierarchy.aspreconditioner(cycle="V")
     options = {
         "amg_options": dict(keywords),

@@ -1,0 +1,149 @@
+"""Determinism: the same input gives the same bits, run after run and whatever
+the number of numba threads.
+
+The assembler owns row ranges per thread and sums every entry over its cells
+in one fixed cell order (DEVELOPERS.md), the topology kernels bucket in fixed
+chunks, and the direct solver factorises the same matrix the same way, so
+matrices, load vectors, dof numberings and direct solutions must agree bit
+for bit between 1 and 2 threads and between two runs.  ``"cg-amg"`` is
+checked for two runs with the same thread count.
+
+Every comparison is on raw bytes (``ndarray.tobytes``), never a tolerance.
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+import pytest
+
+import galerkit as gk
+from galerkit.boundary import DirichletElimination
+
+TWO_THREADS = numba.config.NUMBA_NUM_THREADS >= 2
+
+
+@pytest.fixture
+def threads():
+    """Set numba's thread count inside a test; restored afterwards."""
+    saved = numba.get_num_threads()
+    yield numba.set_num_threads
+    numba.set_num_threads(saved)
+
+
+def _mesh(dim):
+    """An irregular mesh: refined, then interior vertices moved (fixed seed)."""
+    base = gk.structured_triangles(5, 4) if dim == 2 else gk.structured_tetrahedra(2, 2, 2)
+    m = gk.refine_uniform(base)
+    rng = np.random.default_rng(7)
+    p = m.points.copy()
+    inner = np.all((p > 1e-9) & (p < 1 - 1e-9), axis=1)
+    h = 0.5 / (4 if dim == 2 else 2)
+    p[inner] += 0.15 * h * rng.uniform(-1, 1, size=(int(inner.sum()), dim))
+    mesh = gk.Mesh(p, m.cells)
+    for name, ids in m.facet_tags.items():
+        mesh.set_facet_tag(name, ids)
+    return mesh
+
+
+def _kappa(x):
+    return 1.0 + x[0] ** 2 + 0.5 * np.sin(3 * x[1])
+
+
+def _everything(dim, k):
+    """Build mesh, dofs and operators from scratch; return their bytes."""
+    mesh = _mesh(dim)
+    disc = gk.Discretization(mesh, k)
+    asm = gk.Assembler(disc)
+    tensor = np.diag(np.arange(1.0, dim + 1)) + 0.1
+    K = asm.stiffness()
+    out = {
+        "boundary facets": mesh.boundary_facets,
+        "cell dofs": disc.cell_dofs,
+        "indptr": asm.indptr,
+        "indices": asm.indices,
+        "position map": asm.posmap,
+        "stiffness": K.data,
+        "stiffness kappa(x)": asm.stiffness(_kappa).data,
+        "stiffness tensor": asm.stiffness(tensor).data,
+        "mass": asm.mass().data,
+        "mass c(x)": asm.mass(_kappa).data,
+        "load f(x)": asm.load(lambda x: np.exp(x[0]) * x[1]),
+        "load dofs": asm.load(disc.interpolate(_kappa)),
+        "boundary mass": asm.boundary_mass("left", _kappa).data,
+        "boundary load": asm.boundary_load("top", _kappa),
+    }
+    elim = DirichletElimination(K, disc.boundary_dofs("boundary"))
+    Af, bf = elim.reduce(K, asm.load(1.0), np.zeros(elim.dofs.size))
+    out["direct solution"] = gk.solve(Af, bf, method="direct").x
+    return {key: np.ascontiguousarray(v).tobytes() for key, v in out.items()}
+
+
+CASES = [(2, 1), (2, 2), (3, 1), (3, 2)]
+
+
+@pytest.mark.parametrize("dim,k", CASES)
+def test_two_runs_give_identical_bits(dim, k):
+    first, second = _everything(dim, k), _everything(dim, k)
+    assert [key for key in first if first[key] != second[key]] == []
+
+
+@pytest.mark.skipif(not TWO_THREADS, reason="numba has a single thread on this machine")
+@pytest.mark.parametrize("dim,k", CASES)
+def test_one_and_two_threads_give_identical_bits(dim, k, threads):
+    threads(1)
+    one = _everything(dim, k)
+    threads(2)
+    two = _everything(dim, k)
+    assert [key for key in one if one[key] != two[key]] == []
+
+
+def _poisson(dim, method):
+    mesh = _mesh(dim)
+    problem = gk.PoissonProblem(mesh, conductivity=_kappa, source=lambda x: 1 + x[0],
+                                dirichlet={"left": 0.0}, neumann={"top": 0.5},
+                                robin={"right": (2.0, 1.0)})
+    sol = problem.solve(degree=2, method=method, rtol=1e-10)
+    assert sol.report.converged and sol.report.method == method
+    return sol.u.tobytes(), sol.report.iterations
+
+
+@pytest.mark.skipif(not TWO_THREADS, reason="numba has a single thread on this machine")
+@pytest.mark.parametrize("dim", [2, 3])
+def test_poisson_direct_solution_is_identical_for_1_and_2_threads_and_two_runs(dim, threads):
+    threads(1)
+    one = _poisson(dim, "direct")
+    threads(2)
+    two = _poisson(dim, "direct")
+    again = _poisson(dim, "direct")
+    assert one == two == again
+
+
+@pytest.mark.parametrize("dim", [2, 3])
+def test_poisson_cg_amg_solution_is_identical_for_two_runs(dim):
+    first = _poisson(dim, "cg-amg")
+    second = _poisson(dim, "cg-amg")
+    assert first == second
+    assert first[1] > 0  # a real iteration, not a trivial zero solve
+
+
+def test_pure_neumann_zero_mean_solution_is_identical_for_two_runs():
+    mesh = gk.structured_triangles(8, 8)
+
+    def source(x):
+        return 2 * np.pi**2 * np.cos(np.pi * x[0]) * np.cos(np.pi * x[1])
+
+    a = gk.PoissonProblem(mesh, source=source).solve(degree=2, method="direct").u
+    b = gk.PoissonProblem(mesh, source=source).solve(degree=2, method="direct").u
+    assert a.tobytes() == b.tobytes()
+
+
+def test_cg_amg_set_up_leaves_the_callers_random_state_alone():
+    # the set-up seeds NumPy's global generator for PyAMG and restores it after
+    A = gk.Assembler(gk.Discretization(gk.structured_triangles(6, 6), 1)).stiffness()
+    A = A + 1e-3 * gk.Assembler(gk.Discretization(gk.structured_triangles(6, 6), 1)).mass()
+    np.random.seed(123)
+    expected = np.random.rand(4)
+    np.random.seed(123)
+    gk.prepare_solver(A, "cg-amg")
+    assert np.random.rand(4).tobytes() == expected.tobytes()
