@@ -13,7 +13,8 @@ and ``--json`` (one JSON object on stdout) go before or after the subcommand.
 Progress bars (tqdm, on stderr) appear on a terminal, and only for steps that
 take more than a second.  Exit codes: 0 success, 1 a solver did not converge or a check
 failed, 2 bad input (a bad file, bad TOML, a bad formula, an unknown key or
-option; the message on stderr names the problem).
+option, or a problem too large for the memory available; the message on stderr
+names the problem, and with ``--json`` stdout carries it as one JSON object).
 """
 
 from __future__ import annotations
@@ -742,11 +743,21 @@ def main(argv=None) -> int:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
     except InputError as exc:
-        print(f"galerkit: error: {exc}", file=sys.stderr)
-        return 2
-    except (SolverError, ResourceError) as exc:
-        print(f"galerkit: solver error: {exc}", file=sys.stderr)
-        return 1
+        return _fail(args, "error", exc, 2)
+    except ResourceError as exc:
+        # the problem as given does not fit this machine: the input must change
+        return _fail(args, "not enough memory", exc, 2)
+    except SolverError as exc:
+        return _fail(args, "solver error", exc, 1)
+
+
+def _fail(args, kind, exc, code):
+    """Report an error on stderr, and as one JSON object on stdout with --json."""
+    print(f"galerkit: {kind}: {exc}", file=sys.stderr)
+    if getattr(args, "json", False):
+        print(json.dumps({"error": kind, "message": str(exc), "exception": type(exc).__name__,
+                          "exit_code": code}))
+    return code
 
 
 if __name__ == "__main__":

@@ -86,8 +86,9 @@ import numba as nb
 import numpy as np
 import scipy.sparse as sp
 
-from galerkit.assembly import (_cell_order, _chunk_cells, _generic_matrix, _generic_vector,
-                               _p1_stiffness, _pattern_count, _pattern_fill, _position_map)
+from galerkit.assembly import (_generic_matrix, _generic_vector, _p1_stiffness, chunk_plan,
+                               load_table, mass_reference, mass_table, stiffness_table,
+                               symbolic_phase)
 from galerkit.coefficients import evaluate_callable, tensor_values
 from galerkit.dofs import Discretization
 from galerkit.elements import lagrange_element
@@ -96,7 +97,7 @@ from galerkit.functionals import _H1, _L2, BLOCK_CELLS, _cell_integrals
 from galerkit.geometry import physical_points
 from galerkit.mesh import DEGENERACY_TOLERANCE, Mesh, _check_cells, _geometry
 from galerkit.quadrature import simplex_quadrature
-from galerkit.topology import _incidence_kernel, index_dtype
+from galerkit.topology import index_dtype
 
 # A cached serial njit function that calls a parallel one (``_first_degenerate``
 # -> ``_geometry`` below) links against the threading layer when it is loaded
@@ -437,34 +438,10 @@ def check_plan(plan, where="check_plan"):
 # symbolic phase
 # ----------------------------------------------------------------------------
 def _symbolic(dofs, n):
-    """The Assembler's symbolic phase (galerkit.assembly.Assembler._build_pattern and
-    _chunk_plan) on a bare cell -> dof table; same kernels, same result."""
-    m, k = dofs.shape
-    offsets = np.zeros(n + 1, dtype=np.int64)
-    items = np.empty(m * k, dtype=index_dtype(m))
-    _incidence_kernel(dofs, n, offsets, items)
-    n_blocks = max(1, min(n, 4 * nb.get_num_threads()))
-    row_nnz = np.empty(n, dtype=np.int64)
-    _pattern_count(dofs, offsets, items, n_blocks, row_nnz)
-    nnz = int(row_nnz.sum())
-    idt = index_dtype(max(nnz, n))
-    indptr = np.zeros(n + 1, dtype=idt)
-    np.cumsum(row_nnz, out=indptr[1:])
-    indices = np.empty(nnz, dtype=idt)
-    _pattern_fill(dofs, offsets, items, n_blocks, indptr, indices)
-    del offsets, items
-    order = _cell_order(dofs, n)
-    longest = int(row_nnz.max())
-    pdt = np.uint8 if longest <= 256 else (np.uint16 if longest <= 65536 else np.uint32)
-    posmap = np.empty((m, k, k), dtype=pdt)
-    _position_map(dofs, order, indptr, indices, posmap)
-    nch = nb.get_num_threads()
-    targets = np.linspace(0, nnz, nch + 1)
-    rows = np.searchsorted(indptr, targets).astype(np.int64)
-    rows[0], rows[-1] = 0, n
-    rows = np.maximum.accumulate(rows)
-    windows = _chunk_cells(dofs, order, rows)
-    return indptr, indices, order, posmap, rows, windows, nnz
+    """The Assembler's symbolic phase on a bare cell -> dof table (same functions)."""
+    indptr, indices, order, posmap = symbolic_phase(dofs, n)
+    rows, windows = chunk_plan(dofs, order, indptr, nb.get_num_threads())
+    return indptr, indices, order, posmap, rows, windows, int(indices.shape[0])
 
 
 def pattern(cells, degree=1, *, points=None, n_vertices=None):
@@ -622,24 +599,11 @@ def reference_tables(dim, degree):
     >>> t["mass"].shape, round(float(t["mass"].sum()), 15)
     ((1, 1, 3, 3), 0.5)
     """
-    el = lagrange_element(dim, degree)
     k = degree
-    rule = simplex_quadrature(dim, max(2 * k - 2, 0))
-    G = el.tabulate_gradients(rule.points)
-    pairs = [(r, s) for r in range(dim) for s in range(r, dim)]
-    R = np.empty((rule.n_points, len(pairs), el.n_local, el.n_local))
-    for t, (r, s) in enumerate(pairs):
-        S = np.einsum("q,qa,qb->qab", rule.weights, G[:, :, r], G[:, :, s])
-        R[:, t] = S if r == s else S + S.transpose(0, 2, 1)
-    stiff = R.sum(axis=0, keepdims=True)
-    rule = simplex_quadrature(dim, 2 * k)
-    V = el.tabulate(rule.points)
-    mass = np.ascontiguousarray(np.einsum("q,qa,qb->qab", rule.weights, V, V)[:, None])
-    mass = np.ascontiguousarray(mass.sum(axis=0, keepdims=True))
-    load_dof = np.ascontiguousarray(np.einsum("q,qa,qb->ab", rule.weights, V, V))
-    rule = simplex_quadrature(dim, k)
-    load = np.ascontiguousarray((rule.weights[:, None] * el.tabulate(rule.points)).sum(
-        axis=0, keepdims=True))
+    stiff = stiffness_table(dim, k, max(2 * k - 2, 0)).sum(axis=0, keepdims=True)
+    mass = np.ascontiguousarray(mass_table(dim, k, 2 * k).sum(axis=0, keepdims=True))
+    load_dof = np.array(mass_reference(dim, k))
+    load = np.ascontiguousarray(load_table(dim, k, k).sum(axis=0, keepdims=True))
     out = {"stiffness": stiff, "mass": mass, "load": load, "load_dof": load_dof}
     for a in out.values():
         a.flags.writeable = False
