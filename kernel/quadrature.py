@@ -69,30 +69,27 @@ class QuadratureRule:
         return self.weights.shape[0]
 
 
-def _sym_tri(weight_orbits):
-    """Expand barycentric orbits of a triangle rule.
+def _symmetric_rule(weight_orbits, volume):
+    """Expand barycentric orbits of a symmetric rule on the simplex.
 
-    ``weight_orbits`` is a list of ``(w, (a, b, c))``: every distinct
-    permutation of the barycentric point gets the weight ``w`` (weights here
-    are relative to area 1 and are scaled to the reference area 1/2).
+    ``weight_orbits`` is a list of ``(w, barycentric point)``: every distinct
+    permutation of the point gets the weight ``w`` (weights are relative to
+    volume 1 and are scaled to the reference volume ``volume``).
     """
     pts, wts = [], []
     for w, bary in weight_orbits:
-        perms = sorted({p for p in _permutations(bary)})
-        for p in perms:
+        for p in sorted(set(_permutations(bary))):
             pts.append(p[1:])
-            wts.append(w / 2.0)
+            wts.append(w * volume)
     return np.array(pts, dtype=np.float64), np.array(wts, dtype=np.float64)
+
+
+def _sym_tri(weight_orbits):
+    return _symmetric_rule(weight_orbits, 0.5)
 
 
 def _sym_tet(weight_orbits):
-    pts, wts = [], []
-    for w, bary in weight_orbits:
-        perms = sorted({p for p in _permutations(bary)})
-        for p in perms:
-            pts.append(p[1:])
-            wts.append(w / 6.0)
-    return np.array(pts, dtype=np.float64), np.array(wts, dtype=np.float64)
+    return _symmetric_rule(weight_orbits, 1.0 / 6.0)
 
 
 def _permutations(t):
