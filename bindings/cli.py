@@ -355,6 +355,13 @@ def _errors(sol, opts):
 
 
 def _solve(args) -> int:
+    if args.engine == "petsc":
+        return _solve_distributed(args)
+    if args.petsc_options is not None:
+        from galerkit.errors import InputError
+
+        raise InputError("--petsc-options applies to --engine petsc only; add --engine petsc "
+                         "(under mpiexec) or remove it")
     from galerkit.errors import InputError
     from .files import write_solution
     from .plots import plot_field
@@ -459,6 +466,112 @@ def _solve(args) -> int:
         say.result("  error       " + ", ".join(parts) + " (against [exact])")
     for p in outputs:
         say.result(f"  wrote       {p}")
+    for n in notes:
+        say.result(f"  note        {n}")
+    say.caution()
+    return code
+
+
+def _solve_distributed(args) -> int:
+    """``solve --engine petsc``: every rank runs this; rank 0 alone prints."""
+    import os
+
+    from galerkit.errors import InputError
+    from .petsc_engine import _modules, _on_root, solve_distributed, write_pieces
+    from .problemfile import load_problem
+
+    MPI, _ = _modules()
+    comm = MPI.COMM_WORLD
+    if comm.rank != 0:  # the same errors are raised on every rank; rank 0 reports them
+        sys.stdout = open(os.devnull, "w")
+        sys.stderr = sys.stdout
+    t0 = time.perf_counter()
+    held = {}
+
+    def load():
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            spec = load_problem(args.problem)
+        problem, opts = spec.build()
+        opts = _apply_overrides(args, opts)
+        held["problem"] = problem
+        return opts, spec.mesh_description, [str(w.message) for w in caught]
+
+    opts, description, notes = _on_root(comm, load)
+    load_seconds = time.perf_counter() - t0
+    if opts.method != "auto":
+        notes.append(f"method {opts.method!r} names a serial solver and is not used by the "
+                     "petsc engine; choose PETSc's with --petsc-options \"-ksp_type ... "
+                     "-pc_type ...\"")
+    try:
+        sol = solve_distributed(held.get("problem"), degree=opts.degree, rtol=opts.rtol,
+                                maxiter=opts.maxiter, petsc_options=args.petsc_options,
+                                exact=opts.exact, exact_gradient=opts.exact_gradient)
+    except InputError as exc:
+        raise InputError(f"problem file {str(args.problem)!r}: {exc}") from None
+    held.clear()
+    rep = sol.report
+    outputs = []
+    t1 = time.perf_counter()
+    if not rep["converged"]:
+        notes.append("no files written: the solver did not converge")
+    elif opts.vtu:
+        folder = _folder(opts.folder)
+        comm.barrier()
+        outputs.append(write_pieces(folder, opts.stem, sol, name=opts.name))
+    if opts.plot:
+        notes.append("plot skipped with the petsc engine: open the .pvtu file in a viewer "
+                     "such as ParaView")
+    write_seconds = comm.allreduce(time.perf_counter() - t1, op=MPI.MAX)
+    lo, hi = sol.field_range()
+    seconds = {"load": load_seconds, **sol.seconds, "write": write_seconds}
+    seconds["total"] = time.perf_counter() - t0
+    errors = sol.errors
+    info = {
+        "problem": str(args.problem), "title": opts.title, "engine": "petsc",
+        "ranks": sol.size,
+        "mesh": {"source": description, "cells": sol.n_cells, "vertices": sol.n_vertices},
+        "degree": opts.degree, "dofs": sol.n_dofs, "rows": sol.n_global,
+        "partition": sol.partition,
+        "solver": {**rep},
+        "seconds": seconds, "peak_rss_mb_per_rank": sol.peak_rss_mb,
+        "field": {"name": opts.name, "min": lo, "max": hi, "units": opts.units},
+        "errors": errors, "outputs": [str(p) for p in outputs], "notes": notes,
+    }
+    code = 0 if rep["converged"] else 1
+    if args.json:
+        _print_json({**info, "caution": CAUTION})
+        return code
+    say = _Report(args)
+    say.head(f"galerkit solve (petsc engine, {sol.size} rank{'s' if sol.size > 1 else ''}): "
+             f"{opts.title or args.problem}")
+    say.result(f"  mesh        {description}: {sol.n_cells} cells, {sol.n_vertices} vertices")
+    say.result(f"  unknowns    {sol.n_dofs} (P{opts.degree}), {sol.n_global} distributed rows "
+               "after Dirichlet elimination")
+    if sol.partition:
+        q = sol.partition
+        say.result(f"  partition   coordinate bisection: cell balance {q['cell_balance']:.3f}, "
+                   f"dof balance {q['dof_balance']:.3f}, {q['cut_facets']} cut facets, "
+                   f"at most {q['ghosts_max']} ghost dofs per rank")
+    status = "converged" if rep["converged"] else "NOT CONVERGED"
+    say.result(f"  solver      PETSc {rep['ksp']} + {rep['pc']}: "
+               f"{_iterations(rep['iterations'])}, relative residual {rep['residual']:.2e} "
+               f"(true {rep['true_residual']:.2e}, rtol {opts.rtol:g}), {status} "
+               f"({rep['reason']})")
+    for k, v in seconds.items():
+        say.result(f"  {k:<13s}{v:8.3f} s (slowest rank)")
+    say.result("  peak memory " + ", ".join(f"{m:.0f}" for m in sol.peak_rss_mb)
+               + " MB per rank (peak resident set size)")
+    unit = f" {opts.units}" if opts.units else ""
+    say.result(f"  {opts.name:<12s}{lo:.6g} .. {hi:.6g}{unit}")
+    if errors is not None:
+        parts = [f"L2 {errors['l2']:.3e}"]
+        if "h1_seminorm" in errors:
+            parts += [f"H1 seminorm {errors['h1_seminorm']:.3e}",
+                      f"energy {errors['energy']:.3e}"]
+        say.result("  error       " + ", ".join(parts) + " (against [exact])")
+    for p in outputs:
+        say.result(f"  wrote       {p} (+ {sol.size} piece{'s' if sol.size > 1 else ''})")
     for n in notes:
         say.result(f"  note        {n}")
     say.caution()
@@ -710,6 +823,13 @@ def build_parser() -> argparse.ArgumentParser:
                    "galerkit-out)")
     s.add_argument("--plot", action="store_true", help="also write a PNG (2D only)")
     s.add_argument("--mesh-overlay", action="store_true", help="draw the mesh on the PNG")
+    s.add_argument("--engine", choices=["serial", "petsc"], default="serial",
+                   help="serial (default), or petsc: the distributed engine, run under "
+                   "`mpiexec -n N` (needs `make mpi`); writes one VTU piece per rank and a "
+                   ".pvtu index")
+    s.add_argument("--petsc-options", metavar="OPTIONS",
+                   help="PETSc options for --engine petsc, e.g. \"-ksp_type gmres -pc_type "
+                   "jacobi\" (default: CG with PETSc's algebraic multigrid GAMG)")
     s.set_defaults(run=_solve)
     b = sub.add_parser("bench", parents=[common],
                        help="run every registered solver on one assembled system",

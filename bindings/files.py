@@ -465,7 +465,8 @@ def _reference_coordinates(mesh, cells, x):
     return np.clip(xi, 0.0, 1.0), J
 
 
-def write_solution(path, solution, *, name="u", conductivity=None, refinements=None):
+def write_solution(path, solution, *, name="u", conductivity=None, refinements=None,
+                   extra_cell_data=None, tags=None):
     """Write a solution as one VTU file (atomically).
 
     Parameters
@@ -480,6 +481,14 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
     refinements : int, optional
         Output-mesh refinements; default as :func:`sample_solution` (P1: the
         computational mesh itself; P2: refined once; P3, P4: twice).
+    extra_cell_data : dict, optional
+        ``name -> f(parent_cells)``: more cell arrays, computed from the
+        computational cell of each output cell (``f`` returns shape
+        ``(n_output_cells,)``).
+    tags : list of str, optional
+        Facet tags to write as ``tag_<tag>`` arrays (default: the mesh's);
+        a name the mesh lacks gets an array of zeros (so that the pieces of
+        a distributed solution hold the same arrays).
 
     Returns
     -------
@@ -547,10 +556,13 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
         cell_data["conductivity_tensor"] = [t9.reshape(-1, 9)]
     else:
         cell_data["conductivity"] = [scalar]
+    for key, f in (extra_cell_data or {}).items():
+        cell_data[key] = [np.asarray(f(np.asarray(s.parent_cells)))]
     point_data = {name: np.asarray(s.values, dtype=np.float64)}
-    for tag, ids in mesh.facet_tags.items():
+    for tag in (mesh.facet_tags if tags is None else tags):
         member = np.zeros(mesh.n_vertices, dtype=np.uint8)
-        member[mesh.boundary_facets[ids].ravel()] = 1
+        if tag in mesh.facet_tags:
+            member[mesh.boundary_facets[mesh.facet_tags[tag]].ravel()] = 1
         point_data[TAG_ARRAY_PREFIX + tag] = member
     out = meshio.Mesh(pts, [(_CELL_OF_DIM[d], np.asarray(mesh.cells))], point_data=point_data,
                       cell_data=cell_data)
@@ -579,3 +591,69 @@ def _cell_conductivity(kappa, mesh, parent_cells, n_parent):
     raise InputError(f"write_solution: conductivity of shape {a.shape} is not a number, a "
                      f"per-cell array ({n_parent},) or a tensor ({d}, {d}) / ({n_parent}, "
                      f"{d}, {d})")
+
+
+def write_parallel_index(path, pieces):
+    """Write the VTK parallel index (``.pvtu``) of VTU pieces written by ranks.
+
+    The arrays and their types are read from the header of the first piece;
+    every piece must hold the same arrays (true for pieces of one solution).
+    ParaView opens the index as one data set.
+
+    Parameters
+    ----------
+    path : path-like
+        The ``.pvtu`` file; the pieces are named relative to its folder.
+    pieces : list of path-like
+        The ``.vtu`` files, which must exist.
+
+    Returns
+    -------
+    pathlib.Path
+
+    Raises
+    ------
+    InputError
+        A missing piece, or pieces with different arrays.
+    """
+    import xml.etree.ElementTree as ET
+
+    path = Path(path)
+    sections = None
+    for piece in pieces:
+        piece = Path(piece)
+        if not piece.exists():
+            raise InputError(f"write_parallel_index: piece {str(piece)!r} does not exist")
+        found = {"PointData": [], "CellData": [], "Points": []}
+        try:
+            for _, el in ET.iterparse(piece, events=("end",)):
+                if el.tag in found:
+                    found[el.tag] = [(a.get("type"), a.get("Name"),
+                                      a.get("NumberOfComponents", "1"))
+                                     for a in el.findall("DataArray")]
+                elif el.tag == "Piece":
+                    break
+        except ET.ParseError as exc:
+            raise InputError(f"write_parallel_index: piece {str(piece)!r} is not VTU XML "
+                             f"({exc})") from None
+        if sections is None:
+            sections = found
+        elif found != sections:
+            raise InputError(f"write_parallel_index: piece {str(piece)!r} holds other arrays "
+                             f"than {str(pieces[0])!r}; pieces of one data set must match")
+
+    def arrays(kind):
+        return "".join(
+            f'      <PDataArray type="{t}"' + (f' Name="{n}"' if n else "")
+            + f' NumberOfComponents="{c}"/>\n' for t, n, c in sections[kind])
+
+    rel = [os.path.relpath(Path(p), path.parent) for p in pieces]
+    text = ('<?xml version="1.0"?>\n'
+            '<VTKFile type="PUnstructuredGrid" version="0.1" byte_order="LittleEndian">\n'
+            '  <PUnstructuredGrid GhostLevel="0">\n'
+            '    <PPointData>\n' + arrays("PointData") + '    </PPointData>\n'
+            '    <PCellData>\n' + arrays("CellData") + '    </PCellData>\n'
+            '    <PPoints>\n' + arrays("Points") + '    </PPoints>\n'
+            + "".join(f'    <Piece Source="{r}"/>\n' for r in rel)
+            + '  </PUnstructuredGrid>\n</VTKFile>\n')
+    return write_atomically(path, lambda tmp: Path(tmp).write_text(text))

@@ -184,27 +184,7 @@ class PoissonProblem:
             asm = assembler
             disc = asm.disc
             sec["discretize"] = 0.0
-        A = asm.stiffness(self.conductivity)
-        b = asm.load(self.source)
-        for tag, flux in self.neumann.items():
-            b += asm.boundary_load(tag, flux)
-        robin_diagonal = np.zeros(disc.n_dofs)
-        for tag, (alpha, uext) in self.robin.items():
-            try:
-                Bm = asm.boundary_mass(tag, alpha, nonnegative=True)
-            except ProblemError:
-                raise
-            except InputError as exc:
-                raise ProblemError(f"robin[{tag!r}] heat transfer coefficient alpha: {exc}; "
-                                   "alpha must be finite and >= 0") from None
-            A.data += Bm.data
-            robin_diagonal += Bm.diagonal()
-            if callable(alpha) or callable(uext):
-                prod = _product(alpha, uext)
-            else:
-                prod = float(alpha) * float(uext) if np.ndim(alpha) == 0 and np.ndim(uext) == 0 \
-                    else np.asarray(alpha) * np.asarray(uext)
-            b += asm.boundary_load(tag, prod)
+        A, b, robin_diagonal = self.assemble(asm)
         sec["assemble"] = time.perf_counter() - t0
         t0 = time.perf_counter()
         notes = []
@@ -242,6 +222,50 @@ class PoissonProblem:
             u = self._zero_mean(asm, u, comps)
         return Solution(u=u, disc=disc, report=rep, seconds=sec, assembler=asm, problem=self,
                         notes=notes)
+
+    def assemble(self, asm):
+        """Stiffness (with the Robin terms) and load (with the Neumann and Robin terms).
+
+        Parameters
+        ----------
+        asm : Assembler
+            Of a discretization of this problem's mesh.
+
+        Returns
+        -------
+        A : csr_array (n_dofs, n_dofs)
+        b : ndarray (n_dofs,)
+        robin_diagonal : ndarray (n_dofs,)
+            Diagonal of the Robin boundary mass (positive on the dofs that a
+            Robin term with alpha > 0 anchors).
+
+        Raises
+        ------
+        ProblemError
+            A Robin coefficient that is negative or not finite.
+        """
+        A = asm.stiffness(self.conductivity)
+        b = asm.load(self.source)
+        for tag, flux in self.neumann.items():
+            b += asm.boundary_load(tag, flux)
+        robin_diagonal = np.zeros(asm.n_dofs)
+        for tag, (alpha, uext) in self.robin.items():
+            try:
+                Bm = asm.boundary_mass(tag, alpha, nonnegative=True)
+            except ProblemError:
+                raise
+            except InputError as exc:
+                raise ProblemError(f"robin[{tag!r}] heat transfer coefficient alpha: {exc}; "
+                                   "alpha must be finite and >= 0") from None
+            A.data += Bm.data
+            robin_diagonal += Bm.diagonal()
+            if callable(alpha) or callable(uext):
+                prod = _product(alpha, uext)
+            else:
+                prod = float(alpha) * float(uext) if np.ndim(alpha) == 0 and np.ndim(uext) == 0 \
+                    else np.asarray(alpha) * np.asarray(uext)
+            b += asm.boundary_load(tag, prod)
+        return A, b, robin_diagonal
 
     # -- helpers -------------------------------------------------------------
     def _dirichlet(self, disc):
