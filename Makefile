@@ -43,9 +43,10 @@ $(MPI_STAMP): $(STAMP)
 
 mpi: $(MPI_STAMP)
 
-# The distributed tests (tests/mpi/) run under mpiexec with 1, 2 and 3 ranks.
+# Only the distributed engine's tests (mpiexec with 1, 2 and 3 ranks);
+# `make test` runs them too once `make mpi` has installed the engine.
 test-mpi: $(MPI_STAMP)
-	$(PY) -m pytest -q tests/test_distributed.py
+	GALERKIT_REQUIRE_MPI=1 $(PY) -m pytest -q tests/test_partition.py tests/test_distributed.py
 
 bench: $(STAMP)
 	$(PY) benchmarks/compare.py

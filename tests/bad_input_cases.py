@@ -906,6 +906,65 @@ def _():
     embed.stiffness(np.ascontiguousarray(mesh2().points), plan, np.empty(plan["nnz"]))
 
 
+
+# ----------------------------------------------------------------------------
+# the distributed engine's set-up (no MPI needed)
+# ----------------------------------------------------------------------------
+X = "distributed set-up (bindings.partition, petsc_engine)"
+
+
+@case("partition_cells: more parts than cells", X, "InputError")
+def _():
+    from galerkit.bindings.partition import partition_cells
+
+    partition_cells(mesh2(), mesh2().n_cells + 1)
+
+
+@case("dof_layout: parts of the wrong length", X, "InputError")
+def _():
+    from galerkit.bindings.partition import dof_layout
+
+    dof_layout(disc(), np.zeros(3, dtype=np.int32), 2)
+
+
+@case("dof_layout: part number out of range", X, "InputError")
+def _():
+    from galerkit.bindings.partition import dof_layout
+
+    parts = np.zeros(mesh2().n_cells, dtype=np.int32)
+    parts[4] = 7
+    dof_layout(disc(), parts, 2)
+
+
+@case("dof_layout: a part without cells", X, "InputError")
+def _():
+    from galerkit.bindings.partition import dof_layout
+
+    dof_layout(disc(), np.zeros(mesh2().n_cells, dtype=np.int32), 2)
+
+
+@case("petsc engine: pure Neumann problem", X, "ProblemError")
+def _():
+    from galerkit.bindings.petsc_engine import prepare_parts
+
+    prepare_parts(gk.PoissonProblem(mesh2(), neumann={"left": 1.0, "right": -1.0}), 1, 2)
+
+
+@case("petsc engine: a lambda as coefficient (cannot be sent to ranks)", X, "InputError")
+def _():
+    from galerkit.bindings.petsc_engine import prepare_parts
+
+    prepare_parts(gk.PoissonProblem(mesh2(), source=lambda x: x[0],
+                                    dirichlet={"boundary": 0.0}), 1, 2)
+
+
+@case("petsc engine: PETSc options without a leading dash", X, "InputError")
+def _():
+    from galerkit.bindings.petsc_engine import parse_petsc_options
+
+    parse_petsc_options("ksp_type cg")
+
+
 # ----------------------------------------------------------------------------
 # running
 # ----------------------------------------------------------------------------

@@ -280,3 +280,23 @@ def test_flags_after_the_subcommand_and_quiet_output(tmp_path, capsys, square):
     assert cap.err == ""  # no progress bars
     assert main(["solve", str(square), "--output", str(tmp_path), "--json"]) == 0
     assert json.loads(capsys.readouterr().out)["caution"] == CAUTION
+
+
+# -- the petsc engine's flags, without MPI ----------------------------------------
+def test_petsc_engine_without_petsc4py_says_how_to_install_it(tmp_path):
+    code = ("import sys; sys.modules['petsc4py'] = None; sys.modules['mpi4py'] = None; "
+            "from galerkit.bindings.cli import main; "
+            f"sys.exit(main(['solve', {str(EXAMPLES / 'block-3d.toml')!r}, '--engine', "
+            f"'petsc', '--output', {str(tmp_path)!r}]))")
+    p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                       timeout=600)
+    assert p.returncode == 2
+    assert "needs mpi4py and petsc4py" in p.stderr and "make mpi" in p.stderr
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_petsc_options_without_the_petsc_engine_are_refused(tmp_path):
+    code, out, err = run("solve", EXAMPLES / "block-3d.toml", "--petsc-options",
+                         "-ksp_type cg", "--output", tmp_path)
+    assert code == 2
+    assert "--petsc-options applies to --engine petsc only" in err
