@@ -550,16 +550,21 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
     t0 = time.perf_counter()
     with _together(comm, "solver set-up"):
         opts = PETSc.Options()
-        for key, value in parse_petsc_options(petsc_options or ""):
+        given = parse_petsc_options(petsc_options or "")
+        for key, value in given:
             opts.setValue(key, "" if value is None else value)
         ksp = PETSc.KSP().create(comm=comm)
         ksp.setOperators(M)
         ksp.setType(DEFAULT_KSP)
         ksp.getPC().setType(DEFAULT_PC)
-        ksp.setNormType(PETSc.KSP.NormType.UNPRECONDITIONED)
         ksp.setTolerances(rtol=rtol, atol=0.0,
                           max_it=int(maxiter) if maxiter is not None else 10_000)
         ksp.setFromOptions()
+        if ksp.getType() == "cg" and not opts.hasName("ksp_norm_type"):
+            # the serial engine's measure: ||b - A x|| / ||b||
+            ksp.setNormType(PETSc.KSP.NormType.UNPRECONDITIONED)
+        for key, _ in given:  # options of this solve only
+            opts.delValue(key)
         ksp.setUp()
     sec["solver_setup"] = time.perf_counter() - t0
     t0 = time.perf_counter()
