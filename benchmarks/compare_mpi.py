@@ -113,7 +113,7 @@ def main(argv=None):
         if r.get("partition"):
             q = r["partition"]
             print(f"\n{r['ranks']} ranks: cell balance {q['cell_balance']:.3f}, dof balance "
-                  f"{q['dof_balance']:.3f}, {q['cut_facets']} cut facets, ghost dofs "
+                  f"{q['dof_balance']:.3f}, ghost dofs "
                   f"{q['ghosts_total']} ({100 * q['ghost_fraction']:.2f}% of dofs)")
     return 0
 

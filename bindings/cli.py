@@ -551,8 +551,8 @@ def _solve_distributed(args) -> int:
     if sol.partition:
         q = sol.partition
         say.result(f"  partition   coordinate bisection: cell balance {q['cell_balance']:.3f}, "
-                   f"dof balance {q['dof_balance']:.3f}, {q['cut_facets']} cut facets, "
-                   f"at most {q['ghosts_max']} ghost dofs per rank")
+                   f"dof balance {q['dof_balance']:.3f}, at most {q['ghosts_max']} ghost "
+                   "dofs per rank")
     status = "converged" if rep["converged"] else "NOT CONVERGED"
     say.result(f"  solver      PETSc {rep['ksp']} + {rep['pc']}: "
                f"{_iterations(rep['iterations'])}, relative residual {rep['residual']:.2e} "

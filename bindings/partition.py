@@ -96,13 +96,23 @@ def coordinate_bisection(points, n_parts: int) -> np.ndarray:
     return parts
 
 
+@nb.njit(cache=True, parallel=True)
+def _centroids(points, cells, out):
+    m, k = cells.shape
+    d = points.shape[1]
+    for c in nb.prange(m):
+        for t in range(d):
+            s = 0.0
+            for a in range(k):
+                s += points[cells[c, a], t]
+            out[c, t] = s / k
+
+
 def cell_centroids(mesh) -> np.ndarray:
     """Centroids of the cells, shape (n_cells, dim)."""
-    c = np.zeros((mesh.n_cells, mesh.dim))
-    for j in range(mesh.dim + 1):
-        c += mesh.points[mesh.cells[:, j]]
-    c /= mesh.dim + 1
-    return c
+    out = np.empty((mesh.n_cells, mesh.dim))
+    _centroids(mesh.points, mesh.cells, out)
+    return out
 
 
 def partition_cells(mesh, n_parts: int) -> np.ndarray:
@@ -222,6 +232,32 @@ def dof_layout(disc, parts, n_parts: int, fixed_dofs=None) -> DofLayout:
                      global_index=global_index, offsets=offsets)
 
 
+@nb.njit(cache=True)
+def _compact(table, rows, n):
+    """Ascending distinct entries of ``table[rows]`` and the rows renumbered into them."""
+    local = np.full(n, -1, dtype=np.int64)
+    k = table.shape[1]
+    for r in rows:
+        for a in range(k):
+            local[table[r, a]] = 0
+    count = 0
+    for i in range(n):
+        if local[i] == 0:
+            count += 1
+    ids = np.empty(count, dtype=np.int64)
+    j = 0
+    for i in range(n):
+        if local[i] == 0:
+            ids[j] = i
+            local[i] = j
+            j += 1
+    out = np.empty((rows.size, k), dtype=table.dtype)
+    for t in range(rows.size):
+        for a in range(k):
+            out[t, a] = local[table[rows[t], a]]
+    return ids, out
+
+
 @dataclass
 class LocalPart:
     """What one rank needs of the global discretization: its cells and dofs.
@@ -292,12 +328,11 @@ def local_part(disc, layout: DofLayout, rank: int, fixed_values=None) -> LocalPa
     """
     mesh = disc.mesh
     cells = np.flatnonzero(layout.parts == rank)
-    gcells = mesh.cells[cells]
-    vertices = np.unique(gcells)
-    local_cells = np.searchsorted(vertices, gcells).astype(mesh.cells.dtype)
-    gdofs = disc.cell_dofs[cells]
-    dofs = np.unique(gdofs)
-    local_cell_dofs = np.searchsorted(dofs, gdofs).astype(disc.cell_dofs.dtype)
+    vertices, local_cells = _compact(mesh.cells, cells, mesh.n_vertices)
+    if disc.degree == 1:  # the dofs are the vertices
+        dofs, local_cell_dofs = vertices, local_cells
+    else:
+        dofs, local_cell_dofs = _compact(disc.cell_dofs, cells, disc.n_dofs)
     values = np.zeros(dofs.size)
     if fixed_values is not None:
         values[layout.fixed[dofs]] = np.asarray(fixed_values)[dofs[layout.fixed[dofs]]]
@@ -415,8 +450,11 @@ class PartitionReport:
                 "neighbours_max": int(self.neighbours.max())}
 
 
-def partition_report(disc, parts, n_parts: int) -> PartitionReport:
+def partition_report(disc, parts, n_parts: int, *, cut_facets=True) -> PartitionReport:
     """Balance, edge cut and halo sizes of a cell partition of ``disc``.
+
+    ``cut_facets=False`` skips the edge cut (it enumerates every facet, the
+    costly part) and reports ``-1`` for it.
 
     Examples
     --------
@@ -434,10 +472,14 @@ def partition_report(disc, parts, n_parts: int) -> PartitionReport:
     _, by_owner = _halo_counts(np.ascontiguousarray(disc.cell_dofs), order, starts,
                                      layout.owner, n_parts, disc.n_dofs)
     owned = np.bincount(layout.owner, minlength=n_parts)
-    local = np.array(REFERENCE_FACETS[mesh.dim], dtype=np.int64)
-    ent, cell_ent, mult, _ = enumerate_entities(mesh.cells, local, mesh.n_vertices)
-    cut = _cut_facets(cell_ent, layout.parts, ent.shape[0])
+    cut, n_interior = -1, -1
+    if cut_facets:
+        local = np.array(REFERENCE_FACETS[mesh.dim], dtype=np.int64)
+        ent, cell_ent, mult, _ = enumerate_entities(mesh.cells, local, mesh.n_vertices)
+        cut = _cut_facets(cell_ent, layout.parts, ent.shape[0])
+        n_interior = int((mult == 2).sum())
+        del ent, cell_ent, mult
     nbr = ((by_owner > 0) | (by_owner.T > 0)).sum(axis=1)
     return PartitionReport(n_parts=int(n_parts), cells=starts[1:] - starts[:-1], owned=owned,
                            ghosts=by_owner.sum(axis=1), neighbours=nbr,
-                           cut_facets=int(cut), n_interior_facets=int((mult == 2).sum()))
+                           cut_facets=int(cut), n_interior_facets=n_interior)

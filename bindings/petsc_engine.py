@@ -383,7 +383,8 @@ def prepare_parts(problem, degree, n_parts, *, exact=None, exact_gradient=None):
     for r in range(n_parts):
         part = local_part(disc, layout, r, values)
         payloads.append((part, _problem_data(problem, disc.n_dofs, part)))
-    quality = partition_report(disc, parts, n_parts).as_dict() if n_parts > 1 else {}
+    quality = (partition_report(disc, parts, n_parts, cut_facets=False).as_dict()
+               if n_parts > 1 else {})
     header = {"dim": problem.mesh.dim, "n_dofs": disc.n_dofs,
               "n_cells": problem.mesh.n_cells, "n_vertices": problem.mesh.n_vertices,
               "tags": list(problem.mesh.facet_tags),
