@@ -504,12 +504,12 @@ def _solve_distributed(args) -> int:
                      "petsc engine; choose PETSc's with --petsc-options \"-ksp_type ... "
                      "-pc_type ...\"")
     try:
-        sol = solve_distributed(held.get("problem"), degree=opts.degree, rtol=opts.rtol,
+        sol = solve_distributed(None, load=lambda: held.pop("problem"), degree=opts.degree,
+                                rtol=opts.rtol,
                                 maxiter=opts.maxiter, petsc_options=args.petsc_options,
                                 exact=opts.exact, exact_gradient=opts.exact_gradient)
     except InputError as exc:
         raise InputError(f"problem file {str(args.problem)!r}: {exc}") from None
-    held.clear()
     rep = sol.report
     outputs = []
     t1 = time.perf_counter()

@@ -130,23 +130,23 @@ def _together(comm, what):
         yield
     except Exception as exc:  # noqa: BLE001 - re-raised below, on every rank
         err = exc
-    errors = comm.allgather(None if err is None else _portable(err, comm.rank))
+    errors = comm.allgather(None if err is None else _portable(err, comm.rank, what))
     first = next((e for e in errors if e is not None), None)
     if first is not None:
-        if err is not None and first is errors[comm.rank]:
-            raise err
+        if err is not None and first is errors[comm.rank] and isinstance(err, GalerkitError):
+            raise err  # this rank's own error, with its traceback
         raise first
 
 
-def _portable(exc, rank):
-    """The exception itself when it pickles (galerkit errors do), else a SolverError."""
-    try:
-        pickle.dumps(exc)
-        if not isinstance(exc, GalerkitError):
-            raise TypeError
-        return exc
-    except Exception:  # noqa: BLE001
-        return SolverError(f"rank {rank}: {type(exc).__name__}: {exc}")
+def _portable(exc, rank, what):
+    """The exception itself when it is a galerkit error that pickles, else a SolverError."""
+    if isinstance(exc, GalerkitError):
+        try:
+            pickle.dumps(exc)
+            return exc
+        except Exception:  # noqa: BLE001
+            pass
+    return SolverError(f"rank {rank}, {what}: {type(exc).__name__}: {exc}")
 
 
 def _on_root(comm, fn):
@@ -470,7 +470,8 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
     comm : mpi4py communicator, default ``MPI.COMM_WORLD``
     load : callable, optional
         Called on rank 0 instead of giving ``problem``: returns the problem
-        (errors in it are raised on every rank).
+        (errors in it are raised on every rank).  The global mesh is then
+        freed once the parts are cut, before the assembly.
 
     Returns
     -------
@@ -503,6 +504,8 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
                 parse_petsc_options(petsc_options)
             header, payloads = prepare_parts(problem, degree, size, exact=exact,
                                              exact_gradient=exact_gradient)
+    # with ``load``, this is the last reference to the global mesh: freed here
+    problem = load = None
     sec["partition"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     header = comm.bcast(header, root=0)
