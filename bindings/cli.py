@@ -545,7 +545,9 @@ def _solve_distributed(args) -> int:
     say = _Report(args)
     say.head(f"galerkit solve (petsc engine, {sol.size} rank{'s' if sol.size > 1 else ''}): "
              f"{opts.title or args.problem}")
-    say.result(f"  mesh        {description}: {sol.n_cells} cells, {sol.n_vertices} vertices")
+    say.result(f"  mesh        {description}: {sol.n_cells} "
+               f"{_plural('triangle' if sol.disc.mesh.dim == 2 else 'tetrahedron')}, "
+               f"{sol.n_vertices} vertices")
     say.result(f"  unknowns    {sol.n_dofs} (P{opts.degree}), {sol.n_global} distributed rows "
                "after Dirichlet elimination")
     if sol.partition:
@@ -558,8 +560,9 @@ def _solve_distributed(args) -> int:
                f"{_iterations(rep['iterations'])}, relative residual {rep['residual']:.2e} "
                f"(true {rep['true_residual']:.2e}, rtol {opts.rtol:g}), {status} "
                f"({rep['reason']})")
+    say.result("  seconds     per phase, on the slowest rank:")
     for k, v in seconds.items():
-        say.result(f"  {k:<13s}{v:8.3f} s (slowest rank)")
+        say.result(f"    {k:<14s}{v:8.3f} s")
     say.result("  peak memory " + ", ".join(f"{m:.0f}" for m in sol.peak_rss_mb)
                + " MB per rank (peak resident set size)")
     unit = f" {opts.units}" if opts.units else ""
