@@ -151,3 +151,26 @@ class LoadVector:
 
     def time_dof_vector(self, case):
         self.asm.load(self.u, out=self.b)
+
+
+class PartitionSetUp:
+    """Rank 0's set-up of the petsc engine, without MPI: parts cut for 2 and 8 ranks."""
+
+    params = (["tet-P1", "tet-P2"], [2, 8])
+    param_names = ["case", "parts"]
+    timeout = 600
+
+    def setup(self, case, parts):
+        mesh = build_mesh(case)
+        self.problem = gk.PoissonProblem(mesh, source=1.0, dirichlet={"boundary": 0.0})
+        self.degree = CASES[case][1]
+
+    def time_prepare_parts(self, case, parts):
+        from galerkit.bindings.petsc_engine import prepare_parts
+
+        prepare_parts(self.problem, self.degree, parts)
+
+    def peakmem_prepare_parts(self, case, parts):
+        from galerkit.bindings.petsc_engine import prepare_parts
+
+        prepare_parts(self.problem, self.degree, parts)
