@@ -210,3 +210,15 @@ def test_command_line_bad_problem_is_reported_once_and_exits_2(tmp_path):
     assert code == 2
     assert err.count("no Dirichlet or Robin condition") == 1, err
     assert "serial engine" in err
+
+
+def test_an_error_on_one_rank_only_stops_every_rank(tmp_path):
+    # sqrt(x - 0.5) is not finite on the cells with x < 0.5 only: the rank
+    # holding them fails in its assembly, the other would not; both must stop
+    f = tmp_path / "half.toml"
+    f.write_text('[mesh]\ngenerator = "square"\ncells = 8\n[source]\nvalue = "sqrt(x - 0.5)"\n'
+                 '[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n')
+    code, out, err = _cli(2, "solve", f, "--engine", "petsc", "--output", tmp_path / "out")
+    assert code == 2
+    assert err.count("the value is not finite") == 1, err
+    assert not (tmp_path / "out").exists() or list((tmp_path / "out").iterdir()) == []
