@@ -511,6 +511,7 @@ def _solve_distributed(args) -> int:
     except InputError as exc:
         raise InputError(f"problem file {str(args.problem)!r}: {exc}") from None
     rep = sol.report
+    notes += sol.notes
     outputs = []
     t1 = time.perf_counter()
     if not rep["converged"]:

@@ -210,6 +210,7 @@ class DistributedSolution:
     n_cells: int = 0
     n_vertices: int = 0
     tags: list = field(default_factory=list)
+    notes: list = field(default_factory=list)
     _comm: object = None
 
     def field_range(self):
@@ -283,22 +284,23 @@ def _problem_data(problem, n_dofs, part):
     return data
 
 
-def _anchored_check(problem, disc, fixed_dofs):
-    """Refuse pure-Neumann components (the serial engine handles them)."""
+def _floating_components(problem, disc, fixed_dofs):
+    """Mesh components without Dirichlet dofs or Robin facets, and the component of each dof.
+
+    The same rule as the serial engine: such a component is pure Neumann;
+    its data must balance and its free constant is fixed by a zero mean.
+    """
     mesh = problem.mesh
     n_comp, label = mesh.connected_components()
     anchored = np.zeros(n_comp, dtype=bool)
-    dof_label = np.empty(disc.n_dofs, dtype=np.int64)
+    dof_label = np.empty(disc.n_dofs, dtype=np.int32)
     dof_label[disc.cell_dofs] = label[:, None]
     anchored[dof_label[fixed_dofs]] = True
-    for tag in problem.robin:
+    for tag, (alpha, _) in problem.robin.items():
+        if np.ndim(alpha) == 0 and not callable(alpha) and float(alpha) == 0.0:
+            continue  # a zero coefficient anchors nothing
         anchored[label[mesh.boundary_facet_cells[mesh.tagged_facets(tag)]]] = True
-    if not anchored.all():
-        k = int(np.flatnonzero(~anchored)[0])
-        raise ProblemError(
-            f"the petsc engine: mesh component {k} (of {n_comp}) has no Dirichlet or Robin "
-            "condition (a pure Neumann problem there); add one, or solve it with the serial "
-            "engine, which fixes the free constant by a zero mean")
+    return np.flatnonzero(~anchored), dof_label
 
 
 # ----------------------------------------------------------------------------
@@ -374,7 +376,13 @@ def prepare_parts(problem, degree, n_parts, *, exact=None, exact_gradient=None):
                          f"{type(problem).__name__}")
     disc = Discretization(problem.mesh, degree)
     fixed_dofs, fixed_vals = problem._dirichlet(disc)
-    _anchored_check(problem, disc, fixed_dofs)
+    floating, dof_label = _floating_components(problem, disc, fixed_dofs)
+    if floating.size:
+        # pure Neumann components: pin the smallest dof of each to 0, as in serial
+        _, first = np.unique(dof_label, return_index=True)
+        pins = first[floating]
+        fixed_dofs = np.concatenate([fixed_dofs, pins])
+        fixed_vals = np.concatenate([fixed_vals, np.zeros(pins.size)])
     values = np.zeros(disc.n_dofs)
     values[fixed_dofs] = fixed_vals
     parts = partition_cells(problem.mesh, n_parts)
@@ -382,13 +390,18 @@ def prepare_parts(problem, degree, n_parts, *, exact=None, exact_gradient=None):
     payloads = []
     for r in range(n_parts):
         part = local_part(disc, layout, r, values)
-        payloads.append((part, _problem_data(problem, disc.n_dofs, part)))
+        data = _problem_data(problem, disc.n_dofs, part)
+        data["floating"] = floating
+        data["components"] = int(dof_label.max()) + 1
+        data["dof_component"] = dof_label[part.dofs] if floating.size else None
+        payloads.append((part, data))
     quality = (partition_report(disc, parts, n_parts, cut_facets=False).as_dict()
                if n_parts > 1 else {})
     header = {"dim": problem.mesh.dim, "n_dofs": disc.n_dofs,
               "n_cells": problem.mesh.n_cells, "n_vertices": problem.mesh.n_vertices,
               "tags": list(problem.mesh.facet_tags),
               "n_global": layout.n_global, "partition": quality,
+              "floating": int(floating.size), "components": int(dof_label.max()) + 1,
               "exact": (exact, exact_gradient)}
     try:
         pickle.dumps(header["exact"])
@@ -400,28 +413,37 @@ def prepare_parts(problem, degree, n_parts, *, exact=None, exact_gradient=None):
 
 @dataclass
 class LocalSystem:
-    """One rank's assembled and reduced share of the system.
+    """One rank's share of the system.
 
-    ``A`` (CSR) and ``b`` are over the rank's free dofs in the order
-    ``elim.free``; ``rows`` are their distributed rows.  The distributed
-    system is the sum over the ranks of ``A`` and ``b`` at those rows.
+    After :func:`assemble_part`: ``A_full`` and ``b_full`` over the rank's
+    dofs (its cells' contributions only).  After :func:`constrain_part`:
+    ``A`` (CSR) and ``b`` over the rank's free dofs in the order
+    ``elim.free``, ``rows`` their distributed rows.  The distributed system
+    is the sum over the ranks of ``A`` and ``b`` at those rows.
     """
 
+    part: object
+    data: dict
     mesh: object
     disc: object
     l2p: np.ndarray
     problem: object
-    elim: object
-    fixed_values: np.ndarray
-    rows: np.ndarray
-    A: object
-    b: np.ndarray
+    A_full: object = None
+    b_full: np.ndarray = None
+    weights: np.ndarray = None
+    accurate: np.ndarray = None
+    component: np.ndarray = None
+    elim: object = None
+    fixed_values: np.ndarray = None
+    rows: np.ndarray = None
+    A: object = None
+    b: np.ndarray = None
+    notes: list = field(default_factory=list)
 
 
 def assemble_part(part, data, dim, degree, *, seconds=None) -> LocalSystem:
-    """One rank's mesh, discretization, assembly and Dirichlet lifting (no MPI)."""
+    """One rank's mesh, discretization and assembly of its cells (no MPI)."""
     from galerkit import Assembler, Discretization, PoissonProblem
-    from galerkit.boundary import DirichletElimination
 
     sec = {} if seconds is None else seconds
     t0 = time.perf_counter()
@@ -432,19 +454,87 @@ def assemble_part(part, data, dim, degree, *, seconds=None) -> LocalSystem:
                              neumann=data["neumann"], robin=data["robin"])
     sec["local_mesh"] = time.perf_counter() - t0
     t0 = time.perf_counter()
-    A, b, _ = problem.assemble(Assembler(disc))
+    asm = Assembler(disc)
+    A, b, _ = problem.assemble(asm)
+    s = LocalSystem(part=part, data=data, mesh=mesh, disc=disc, l2p=l2p, problem=problem,
+                    A_full=A, b_full=b)
+    if len(data["floating"]):
+        s.weights = asm.load(1.0)  # integral of each basis function (this rank's cells)
+        s.accurate = problem._accurate_load(asm)
+        s.component = data["dof_component"][l2p]
     sec["assemble"] = time.perf_counter() - t0
+    return s
+
+
+def neumann_sums(system: LocalSystem) -> np.ndarray:
+    """Per pure-Neumann component: this rank's sums of load, accurate load, |load|, weights.
+
+    Summed over the ranks they are the serial engine's integrals of source
+    plus boundary flux (``|load|`` summed per rank bounds the serial scale
+    from above).  Shape (n_floating, 4).
+    """
+    floating = system.data["floating"]
+    out = np.zeros((len(floating), 4))
+    for j, k in enumerate(floating):
+        sel = system.component == k
+        b = system.b_full[sel]
+        out[j] = (b.sum(), (system.accurate[sel].sum() if system.accurate is not None
+                            else b.sum()), np.abs(b).sum(), system.weights[sel].sum())
+    return out
+
+
+def constrain_part(system: LocalSystem, totals=None, *, seconds=None) -> LocalSystem:
+    """Balance pure-Neumann data (with the ranks' ``totals`` of :func:`neumann_sums`)
+    and remove the Dirichlet dofs by lifting (no MPI)."""
+    from galerkit.boundary import DirichletElimination
+
+    sec = {} if seconds is None else seconds
     t0 = time.perf_counter()
-    fixed_local = np.flatnonzero(part.fixed[l2p])
-    fixed_vals = part.fixed_values[l2p][fixed_local]
-    elim = DirichletElimination(A, fixed_local)
-    Af, bf = elim.reduce(A, b, fixed_vals)
-    rows = part.global_index[l2p][elim.free]
-    if (rows < 0).any():
+    part, b = system.part, system.b_full
+    floating = system.data["floating"]
+    n_comp = system.data["components"]
+    for j, k in enumerate(floating):
+        total, f_int, scale, weight = totals[j]
+        quad_err = abs(total - f_int)
+        scale = scale or 1.0
+        if abs(f_int) > 1e-8 * scale + quad_err:
+            raise ProblemError(
+                "pure Neumann problem with incompatible data"
+                + (f" in mesh component {int(k)} (of {n_comp}; it has no Dirichlet or Robin "
+                   "condition)" if n_comp > 1 else "")
+                + f": integral of source + boundary flux = {f_int:.6e} (relative "
+                f"{abs(f_int) / scale:.2e}); it must vanish. Add a Dirichlet or Robin "
+                "condition, or balance the source and the fluxes")
+        sel = system.component == k
+        b[sel] -= total * system.weights[sel] / weight
+    fixed_local = np.flatnonzero(part.fixed[system.l2p])
+    fixed_vals = part.fixed_values[system.l2p][fixed_local]
+    elim = DirichletElimination(system.A_full, fixed_local)
+    system.A, system.b = elim.reduce(system.A_full, b, fixed_vals)
+    system.rows = part.global_index[system.l2p][elim.free]
+    if (system.rows < 0).any():
         raise SolverError(f"rank {part.rank}: a free dof has no distributed row")
+    system.elim, system.fixed_values = elim, fixed_vals
+    system.A_full = system.b_full = None
     sec["constrain"] = time.perf_counter() - t0
-    return LocalSystem(mesh=mesh, disc=disc, l2p=l2p, problem=problem, elim=elim,
-                       fixed_values=fixed_vals, rows=rows, A=Af, b=bf)
+    return system
+
+
+def mean_sums(system: LocalSystem, u) -> np.ndarray:
+    """Per pure-Neumann component: this rank's sums of weight * u and weight, (n, 2)."""
+    floating = system.data["floating"]
+    out = np.zeros((len(floating), 2))
+    for j, k in enumerate(floating):
+        sel = system.component == k
+        out[j] = (float(system.weights[sel] @ u[sel]), float(system.weights[sel].sum()))
+    return out
+
+
+def shift_to_zero_mean(system: LocalSystem, u, totals):
+    """Subtract each pure-Neumann component's mean (``totals`` of :func:`mean_sums`)."""
+    for j, k in enumerate(system.data["floating"]):
+        u[system.component == k] -= totals[j, 0] / totals[j, 1]
+    return u
 
 
 def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc_options=None,
@@ -480,8 +570,8 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
     Raises
     ------
     InputError, ProblemError
-        Bad problem data (on every rank), an unpicklable coefficient, a pure
-        Neumann component, missing petsc4py.
+        Bad problem data (on every rank), an unpicklable coefficient,
+        incompatible pure-Neumann data, missing petsc4py.
     SolverError
         PETSc failed (the reason is in the message).
     """
@@ -517,6 +607,13 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
     # -- 2. each rank: its mesh, discretization, cells assembled, Dirichlet lifted -
     with _together(comm, "local assembly"):
         system = assemble_part(part, data, header["dim"], degree, seconds=sec)
+    totals = None
+    if header["floating"]:
+        with _together(comm, "pure Neumann sums"):
+            mine = neumann_sums(system)
+        totals = comm.allreduce(mine, op=MPI.SUM)
+    with _together(comm, "constrain"):
+        constrain_part(system, totals, seconds=sec)
     disc, l2p, elim = system.disc, system.l2p, system.elim
     Af, bf, rows_of_free, fixed_vals = system.A, system.b, system.rows, system.fixed_values
 
@@ -599,6 +696,13 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
         u = elim.expand(local.getArray().copy(), fixed_vals)
         for obj in (scatter, iset, local, r):
             obj.destroy()
+    notes = []
+    if header["floating"]:
+        u = shift_to_zero_mean(system, u, comm.allreduce(mean_sums(system, u), op=MPI.SUM))
+        n, m = header["floating"], header["components"]
+        notes.append(f"pure Neumann problem: {m} component(s), each fixed by zero mean"
+                     if n == m else f"{n} of {m} mesh components have no Dirichlet or Robin "
+                     "condition (pure Neumann there): each fixed by zero mean")
     sec["ghost_update"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     errors = None
@@ -625,7 +729,7 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
         global_dofs=part.dofs[l2p], report=report, seconds=seconds, peak_rss_mb=rss,
         errors=errors, n_dofs=header["n_dofs"], n_global=N, problem=system.problem,
         partition=header["partition"], n_cells=header["n_cells"],
-        n_vertices=header["n_vertices"], tags=header["tags"], _comm=comm)
+        n_vertices=header["n_vertices"], tags=header["tags"], notes=notes, _comm=comm)
 
 
 def _reason_name(PETSc, reason: int) -> str:

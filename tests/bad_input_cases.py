@@ -943,11 +943,14 @@ def _():
     dof_layout(disc(), np.zeros(mesh2().n_cells, dtype=np.int32), 2)
 
 
-@case("petsc engine: pure Neumann problem", X, "ProblemError")
+@case("petsc engine: incompatible pure Neumann data", X, "ProblemError")
 def _():
-    from galerkit.bindings.petsc_engine import prepare_parts
+    from galerkit.bindings.petsc_engine import assemble_part, constrain_part, neumann_sums, \
+        prepare_parts
 
-    prepare_parts(gk.PoissonProblem(mesh2(), neumann={"left": 1.0, "right": -1.0}), 1, 2)
+    header, payloads = prepare_parts(gk.PoissonProblem(mesh2(), source=1.0), 1, 1)
+    system = assemble_part(*payloads[0], header["dim"], 1)
+    constrain_part(system, neumann_sums(system))
 
 
 @case("petsc engine: a lambda as coefficient (cannot be sent to ranks)", X, "InputError")

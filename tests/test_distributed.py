@@ -202,14 +202,31 @@ def test_command_line_text_report_and_petsc_options(tmp_path):
 
 
 def test_command_line_bad_problem_is_reported_once_and_exits_2(tmp_path):
+    # pure Neumann with a source and no flux: the data do not balance
     f = tmp_path / "floating.toml"
-    f.write_text('[mesh]\ngenerator = "square"\ncells = 4\n[[boundary]]\ntag = "left"\n'
-                 'kind = "flux"\nflux = 1\n[[boundary]]\ntag = "right"\nkind = "flux"\n'
-                 'flux = -1\n')
+    f.write_text('[mesh]\ngenerator = "square"\ncells = 4\n[source]\nvalue = 1\n')
     code, out, err = _cli(2, "solve", f, "--engine", "petsc")
     assert code == 2
-    assert err.count("no Dirichlet or Robin condition") == 1, err
-    assert "serial engine" in err
+    assert err.count("pure Neumann problem with incompatible data") == 1, err
+
+
+def test_command_line_pure_neumann_file_matches_the_serial_engine(tmp_path):
+    f = tmp_path / "balanced.toml"
+    f.write_text('[mesh]\ngenerator = "square"\ncells = 6\n[[boundary]]\ntag = "left"\n'
+                 'kind = "flux"\nflux = 1\n[[boundary]]\ntag = "right"\nkind = "flux"\n'
+                 'flux = -1\n')
+    serial = subprocess.run([sys.executable, "-m", "galerkit.bindings.cli", "solve", f,
+                             "--json", "--output", tmp_path / "s"], capture_output=True,
+                            text=True, cwd=ROOT)
+    assert serial.returncode == 0, serial.stderr
+    s = json.loads(serial.stdout)
+    code, out, err = _cli(3, "solve", f, "--engine", "petsc", "--json", "--output",
+                          tmp_path / "p")
+    assert code == 0, err
+    d = json.loads(out)
+    for key in ("min", "max"):
+        assert d["field"][key] == pytest.approx(s["field"][key], rel=1e-8)
+    assert any("fixed by zero mean" in n for n in d["notes"])
 
 
 def test_an_error_on_one_rank_only_stops_every_rank(tmp_path):

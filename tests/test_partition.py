@@ -19,7 +19,9 @@ from galerkit.boundary import DirichletElimination
 from galerkit.bindings.partition import (coordinate_bisection, dof_layout, local_part,
                                          partition_cells, partition_report)
 from galerkit.bindings.petsc_engine import (_local_mesh, _local_to_part, assemble_part,
-                                            parse_petsc_options, prepare_parts)
+                                            constrain_part, mean_sums, neumann_sums,
+                                            parse_petsc_options, prepare_parts,
+                                            shift_to_zero_mean)
 from galerkit.errors import InputError, ProblemError
 
 import mpi_cases
@@ -101,25 +103,44 @@ def test_rank_meshes_number_their_dofs_like_the_global_numbering(dim, degree):
 
 
 def _serial_reduced(problem, degree):
+    """The serial engine's reduced system (PoissonProblem.solve's steps, without solving)."""
     disc = gk.Discretization(problem.mesh, degree)
-    A, b, _ = problem.assemble(gk.Assembler(disc))
+    asm = gk.Assembler(disc)
+    A, b, robin_diagonal = problem.assemble(asm)
     fixed, vals = problem._dirichlet(disc)
+    n_comp, cell_label = problem.mesh.connected_components()
+    dof_label = np.empty(disc.n_dofs, dtype=np.int64)
+    dof_label[disc.cell_dofs] = cell_label[:, None]
+    anchored = np.zeros(n_comp, dtype=bool)
+    anchored[dof_label[fixed]] = True
+    anchored[dof_label[robin_diagonal > 0]] = True
+    floating = np.flatnonzero(~anchored)
+    if floating.size:
+        pins, _ = problem._neumann_constraint(asm, b, dof_label, floating)
+        fixed = np.concatenate([fixed, pins])
+        vals = np.concatenate([vals, np.zeros(pins.size)])
     elim = DirichletElimination(A, fixed)
     Af, bf = elim.reduce(A, b, vals)
     return disc, elim, Af, bf
+
+
+def _parts_systems(problem, degree, n_parts):
+    """Every part's reduced system, the ranks' sums done by hand."""
+    header, payloads = prepare_parts(problem, degree, n_parts)
+    systems = [assemble_part(part, data, header["dim"], degree) for part, data in payloads]
+    totals = sum(neumann_sums(s) for s in systems) if header["floating"] else None
+    return header, payloads, [constrain_part(s, totals) for s in systems]
 
 
 @pytest.mark.parametrize("name", mpi_cases.CASES)
 @pytest.mark.parametrize("n_parts", [1, 2, 3, 7])
 def test_sum_of_the_parts_systems_is_the_serial_system(name, n_parts):
     problem, degree, exact, grad = mpi_cases.case(name)
-    header, payloads = prepare_parts(problem, degree, n_parts, exact=exact,
-                                     exact_gradient=grad)
+    header, payloads, systems = _parts_systems(problem, degree, n_parts)
     N = header["n_global"]
     rows, cols, vals = [], [], []
     b = np.zeros(N)
-    for part, data in payloads:
-        s = assemble_part(part, data, header["dim"], degree)
+    for s in systems:
         counts = np.diff(s.A.indptr)
         rows.append(np.repeat(s.rows, counts))
         cols.append(s.rows[s.A.indices])
@@ -142,6 +163,28 @@ def test_sum_of_the_parts_systems_is_the_serial_system(name, n_parts):
     serial_b = np.empty(N)
     serial_b[p] = bf
     np.testing.assert_allclose(b, serial_b, rtol=0, atol=1e-13 * np.abs(bf).max())
+
+
+def test_parts_shift_a_pure_neumann_solution_to_the_serial_zero_mean():
+    problem, degree, _, _ = mpi_cases.case("pure-neumann")
+    serial = problem.solve(degree=degree, method="direct")
+    _, _, systems = _parts_systems(problem, degree, 3)
+    # give every part the serial solution plus a constant: the shift removes it
+    us = []
+    for s in systems:
+        glob = s.part.dofs[s.l2p]
+        us.append(serial.u[glob] + 0.75)
+    totals = sum(mean_sums(s, u) for s, u in zip(systems, us))
+    for s, u in zip(systems, us):
+        shift_to_zero_mean(s, u, totals)
+        np.testing.assert_allclose(u, serial.u[s.part.dofs[s.l2p]], rtol=0, atol=1e-13)
+
+
+def test_incompatible_pure_neumann_data_are_refused_by_the_parts():
+    mesh = gk.structured_triangles(6, 6)
+    problem = gk.PoissonProblem(mesh, source=1.0, neumann={"left": 0.25})
+    with pytest.raises(ProblemError, match="incompatible data.*must vanish"):
+        _parts_systems(problem, 1, 2)
 
 
 def test_partition_report_of_a_box_counts_the_interface():
@@ -177,13 +220,6 @@ def test_partition_report_for_many_parts_without_running_them(n_parts):
 
 
 # -- inputs -----------------------------------------------------------------------
-def test_prepare_refuses_a_pure_neumann_problem_with_what_to_do():
-    mesh = gk.structured_triangles(4, 4)
-    problem = gk.PoissonProblem(mesh, source=0.0, neumann={"left": 1.0, "right": -1.0})
-    with pytest.raises(ProblemError, match="no Dirichlet or Robin condition.*serial engine"):
-        prepare_parts(problem, 1, 2)
-
-
 def test_prepare_refuses_coefficients_that_cannot_be_sent():
     mesh = gk.structured_triangles(4, 4)
     problem = gk.PoissonProblem(mesh, source=lambda x: x[0], dirichlet={"boundary": 0.0})
