@@ -354,6 +354,15 @@ def _errors(sol, opts):
     return out
 
 
+def _error_line(errors) -> str:
+    parts = [f"L2 {errors['l2']:.3e}"]
+    if "h1_seminorm" in errors:
+        parts += [f"H1 seminorm {errors['h1_seminorm']:.3e}", f"energy {errors['energy']:.3e}"]
+    if "max_at_nodes" in errors:
+        parts.append(f"max at nodes {errors['max_at_nodes']:.3e}")
+    return "  error       " + ", ".join(parts) + " (against [exact])"
+
+
 def _solve(args) -> int:
     if args.engine == "petsc":
         return _solve_distributed(args)
@@ -458,12 +467,7 @@ def _solve(args) -> int:
     unit = f" {opts.units}" if opts.units else ""
     say.result(f"  {opts.name:<12s}{info['field']['min']:.6g} .. {info['field']['max']:.6g}{unit}")
     if errors is not None:
-        parts = [f"L2 {errors['l2']:.3e}"]
-        if "h1_seminorm" in errors:
-            parts += [f"H1 seminorm {errors['h1_seminorm']:.3e}",
-                      f"energy {errors['energy']:.3e}"]
-        parts.append(f"max at nodes {errors['max_at_nodes']:.3e}")
-        say.result("  error       " + ", ".join(parts) + " (against [exact])")
+        say.result(_error_line(errors))
     for p in outputs:
         say.result(f"  wrote       {p}")
     for n in notes:
@@ -569,11 +573,7 @@ def _solve_distributed(args) -> int:
     unit = f" {opts.units}" if opts.units else ""
     say.result(f"  {opts.name:<12s}{lo:.6g} .. {hi:.6g}{unit}")
     if errors is not None:
-        parts = [f"L2 {errors['l2']:.3e}"]
-        if "h1_seminorm" in errors:
-            parts += [f"H1 seminorm {errors['h1_seminorm']:.3e}",
-                      f"energy {errors['energy']:.3e}"]
-        say.result("  error       " + ", ".join(parts) + " (against [exact])")
+        say.result(_error_line(errors))
     for p in outputs:
         say.result(f"  wrote       {p} (+ {sol.size} piece{'s' if sol.size > 1 else ''})")
     for n in notes:

@@ -127,26 +127,33 @@ def partition_cells(mesh, n_parts: int) -> np.ndarray:
 # dofs
 # ----------------------------------------------------------------------------
 @nb.njit(cache=True)
-def _owners(cell_dofs, parts, n_dofs, n_parts):
-    lo = np.full(n_dofs, n_parts, dtype=np.int32)
-    hi = np.full(n_dofs, -1, dtype=np.int32)
-    m, k = cell_dofs.shape
+def _part_range(table, parts, n, n_parts):
+    """Lowest and highest part among the cells whose ``table`` row holds each of 0..n-1."""
+    lo = np.full(n, n_parts, dtype=np.int32)
+    hi = np.full(n, -1, dtype=np.int32)
+    m, k = table.shape
     for c in range(m):
         p = parts[c]
         for a in range(k):
-            i = cell_dofs[c, a]
+            i = table[c, a]
             if p < lo[i]:
                 lo[i] = p
             if p > hi[i]:
                 hi[i] = p
-    for i in range(n_dofs):
+    return lo, hi
+
+
+@nb.njit(cache=True)
+def _pick_owners(lo, hi):
+    owner = lo.copy()
+    for i in range(lo.size):
         # a bit of a multiplicative hash of the dof number (Knuth's constant)
         # picks the highest part for about half the dofs; plain parity can
         # put every interface dof of a structured mesh on one side
         h = (np.uint64(i) * np.uint64(2654435761)) & np.uint64(0xFFFFFFFF)
         if h >> np.uint64(31):  # the top bit of the 32-bit product
-            lo[i] = hi[i]
-    return lo
+            owner[i] = hi[i]
+    return owner
 
 
 @dataclass
@@ -218,7 +225,8 @@ def dof_layout(disc, parts, n_parts: int, fixed_dofs=None) -> DofLayout:
     if (present == 0).any():
         raise InputError(f"dof_layout: part {int(np.flatnonzero(present == 0)[0])} has no "
                          "cells; every rank needs at least one cell")
-    owner = _owners(np.ascontiguousarray(disc.cell_dofs), parts, disc.n_dofs, n_parts)
+    owner = _pick_owners(*_part_range(np.ascontiguousarray(disc.cell_dofs), parts,
+                                      disc.n_dofs, n_parts))
     fixed = np.zeros(disc.n_dofs, dtype=bool)
     if fixed_dofs is not None and len(fixed_dofs):
         fixed[np.asarray(fixed_dofs)] = True
@@ -377,26 +385,6 @@ def _halo_counts(cell_dofs, order, starts, owner, n_parts, n_dofs):
     return touched, ghosts_by_owner
 
 
-@nb.njit(cache=True)
-def _cut_facets(cell_facets, parts, n_facets):
-    lo = np.full(n_facets, 2**30, dtype=np.int32)
-    hi = np.full(n_facets, -1, dtype=np.int32)
-    m, nf = cell_facets.shape
-    for c in range(m):
-        p = parts[c]
-        for j in range(nf):
-            f = cell_facets[c, j]
-            if p < lo[f]:
-                lo[f] = p
-            if p > hi[f]:
-                hi[f] = p
-    cut = 0
-    for f in range(n_facets):
-        if lo[f] != hi[f]:
-            cut += 1
-    return cut
-
-
 @dataclass
 class PartitionReport:
     """Balance and halo of a partition.
@@ -476,7 +464,9 @@ def partition_report(disc, parts, n_parts: int, *, cut_facets=True) -> Partition
     if cut_facets:
         local = np.array(REFERENCE_FACETS[mesh.dim], dtype=np.int64)
         ent, cell_ent, mult, _ = enumerate_entities(mesh.cells, local, mesh.n_vertices)
-        cut = _cut_facets(cell_ent, layout.parts, ent.shape[0])
+        lo, hi = _part_range(cell_ent, layout.parts, ent.shape[0], n_parts)
+        cut = int((lo != hi).sum())
+        del lo, hi
         n_interior = int((mult == 2).sum())
         del ent, cell_ent, mult
     nbr = ((by_owner > 0) | (by_owner.T > 0)).sum(axis=1)

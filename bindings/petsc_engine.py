@@ -487,6 +487,7 @@ def constrain_part(system: LocalSystem, totals=None, *, seconds=None) -> LocalSy
     """Balance pure-Neumann data (with the ranks' ``totals`` of :func:`neumann_sums`)
     and remove the Dirichlet dofs by lifting (no MPI)."""
     from galerkit.boundary import DirichletElimination
+    from galerkit.problem import check_compatibility
 
     sec = {} if seconds is None else seconds
     t0 = time.perf_counter()
@@ -495,16 +496,7 @@ def constrain_part(system: LocalSystem, totals=None, *, seconds=None) -> LocalSy
     n_comp = system.data["components"]
     for j, k in enumerate(floating):
         total, f_int, scale, weight = totals[j]
-        quad_err = abs(total - f_int)
-        scale = scale or 1.0
-        if abs(f_int) > 1e-8 * scale + quad_err:
-            raise ProblemError(
-                "pure Neumann problem with incompatible data"
-                + (f" in mesh component {int(k)} (of {n_comp}; it has no Dirichlet or Robin "
-                   "condition)" if n_comp > 1 else "")
-                + f": integral of source + boundary flux = {f_int:.6e} (relative "
-                f"{abs(f_int) / scale:.2e}); it must vanish. Add a Dirichlet or Robin "
-                "condition, or balance the source and the fluxes")
+        check_compatibility(total, f_int, scale, int(k), n_comp)
         sel = system.component == k
         b[sel] -= total * system.weights[sel] / weight
     fixed_local = np.flatnonzero(part.fixed[system.l2p])

@@ -187,12 +187,47 @@ class PoissonProblem:
         A, b, robin_diagonal = self.assemble(asm)
         sec["assemble"] = time.perf_counter() - t0
         t0 = time.perf_counter()
+        elim, Af, bf, fixed_vals, comps, notes = self.constrain(asm, A, b, robin_diagonal)
+        sec["constrain"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        solver = prepare_solver(Af, method, dim=self.mesh.dim, degree=disc.degree, **solver_options)
+        sec["solver_setup"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        rep = solver.solve(bf, rtol=rtol, maxiter=maxiter)
+        sec["solve"] = time.perf_counter() - t0
+        u = elim.expand(rep.x, fixed_vals)
+        if comps:
+            u = self._zero_mean(asm, u, comps)
+        return Solution(u=u, disc=disc, report=rep, seconds=sec, assembler=asm, problem=self,
+                        notes=notes)
+
+    def constrain(self, asm, A, b, robin_diagonal):
+        """Remove the Dirichlet dofs and fix pure-Neumann components: the reduced system.
+
+        Parameters
+        ----------
+        asm : Assembler
+        A, b, robin_diagonal
+            As returned by :meth:`assemble`; ``b`` is balanced in place on
+            pure-Neumann components.
+
+        Returns
+        -------
+        elim : DirichletElimination
+        Af, bf : the reduced matrix and right-hand side
+        fixed_values : ndarray
+            Values of the eliminated dofs (for ``elim.expand``).
+        components : list of ndarray
+            Dofs of each pure-Neumann component (shift them to zero mean
+            after the solve); empty when there are none.
+        notes : list of str
+        """
         notes = []
-        fixed_dofs, fixed_vals = self._dirichlet(disc)
+        fixed_dofs, fixed_vals = self._dirichlet(asm.disc)
         # components without Dirichlet dofs or Robin terms are pure Neumann
         n_comp, cell_label = self.mesh.connected_components()
-        dof_label = np.empty(disc.n_dofs, dtype=np.int64)
-        dof_label[disc.cell_dofs] = cell_label[:, None]
+        dof_label = np.empty(asm.n_dofs, dtype=np.int64)
+        dof_label[asm.disc.cell_dofs] = cell_label[:, None]
         anchored = np.zeros(n_comp, dtype=bool)
         anchored[dof_label[fixed_dofs]] = True
         anchored[dof_label[robin_diagonal > 0]] = True
@@ -210,18 +245,7 @@ class PoissonProblem:
                              "or Robin condition (pure Neumann there): each fixed by zero mean")
         elim = DirichletElimination(A, fixed_dofs)
         Af, bf = elim.reduce(A, b, fixed_vals)
-        sec["constrain"] = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        solver = prepare_solver(Af, method, dim=self.mesh.dim, degree=disc.degree, **solver_options)
-        sec["solver_setup"] = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        rep = solver.solve(bf, rtol=rtol, maxiter=maxiter)
-        sec["solve"] = time.perf_counter() - t0
-        u = elim.expand(rep.x, fixed_vals)
-        if pure_neumann:
-            u = self._zero_mean(asm, u, comps)
-        return Solution(u=u, disc=disc, report=rep, seconds=sec, assembler=asm, problem=self,
-                        notes=notes)
+        return elim, Af, bf, fixed_vals, (comps if pure_neumann else []), notes
 
     def assemble(self, asm):
         """Stiffness (with the Robin terms) and load (with the Neumann and Robin terms).
@@ -302,16 +326,7 @@ class PoissonProblem:
             members_of.append(members)
             total = float(b[members].sum())  # = integral f + integral q (partition of unity)
             f_int = total if b_acc is None else float(b_acc[members].sum())
-            quad_err = abs(total - f_int)
-            scale = float(np.abs(b[members]).sum()) or 1.0
-            if abs(f_int) > 1e-8 * scale + quad_err:
-                raise ProblemError(
-                    "pure Neumann problem with incompatible data"
-                    + (f" in mesh component {int(k)} (of {n_comp}; it has no Dirichlet or "
-                       "Robin condition)" if n_comp > 1 else "")
-                    + f": integral of source + boundary flux = {f_int:.6e} (relative "
-                    f"{abs(f_int) / scale:.2e}); it must vanish. Add a Dirichlet or Robin "
-                    "condition, or balance the source and the fluxes")
+            check_compatibility(total, f_int, float(np.abs(b[members]).sum()), int(k), n_comp)
             b[members] -= total * w[members] / float(w[members].sum())
             pins[i] = members[0]
         return pins, members_of
@@ -334,6 +349,38 @@ class PoissonProblem:
         for sel in comps:
             u[sel] -= float(w[sel] @ u[sel]) / float(w[sel].sum())
         return u
+
+
+def check_compatibility(total, accurate, scale, component, n_components):
+    """Refuse pure-Neumann data that do not balance.
+
+    Parameters
+    ----------
+    total : float
+        Sum of the assembled load over the component (integral of source
+        plus boundary flux by the assembler's quadrature).
+    accurate : float
+        The same with 4 more quadrature degrees (``total`` for exact data).
+    scale : float
+        Sum of the absolute load entries (or a bound above it).
+    component, n_components : int
+        Named in the message.
+
+    Raises
+    ------
+    ProblemError
+        ``|accurate| > 1e-8 * scale + |total - accurate|``: the integral is
+        non-zero beyond round-off and the quadrature error.
+    """
+    scale = scale or 1.0
+    if abs(accurate) > 1e-8 * scale + abs(total - accurate):
+        raise ProblemError(
+            "pure Neumann problem with incompatible data"
+            + (f" in mesh component {component} (of {n_components}; it has no Dirichlet or "
+               "Robin condition)" if n_components > 1 else "")
+            + f": integral of source + boundary flux = {accurate:.6e} (relative "
+            f"{abs(accurate) / scale:.2e}); it must vanish. Add a Dirichlet or Robin "
+            "condition, or balance the source and the fluxes")
 
 
 def _product(alpha, uext):

@@ -106,21 +106,7 @@ def _serial_reduced(problem, degree):
     """The serial engine's reduced system (PoissonProblem.solve's steps, without solving)."""
     disc = gk.Discretization(problem.mesh, degree)
     asm = gk.Assembler(disc)
-    A, b, robin_diagonal = problem.assemble(asm)
-    fixed, vals = problem._dirichlet(disc)
-    n_comp, cell_label = problem.mesh.connected_components()
-    dof_label = np.empty(disc.n_dofs, dtype=np.int64)
-    dof_label[disc.cell_dofs] = cell_label[:, None]
-    anchored = np.zeros(n_comp, dtype=bool)
-    anchored[dof_label[fixed]] = True
-    anchored[dof_label[robin_diagonal > 0]] = True
-    floating = np.flatnonzero(~anchored)
-    if floating.size:
-        pins, _ = problem._neumann_constraint(asm, b, dof_label, floating)
-        fixed = np.concatenate([fixed, pins])
-        vals = np.concatenate([vals, np.zeros(pins.size)])
-    elim = DirichletElimination(A, fixed)
-    Af, bf = elim.reduce(A, b, vals)
+    elim, Af, bf, _, _, _ = problem.constrain(asm, *problem.assemble(asm))
     return disc, elim, Af, bf
 
 
