@@ -38,7 +38,7 @@ $(MPI_STAMP): $(STAMP)
 	$(PY) -m pip install --no-build-isolation petsc==$(PETSC_VER)
 	PETSC_DIR=$$($(PY) -c "import petsc; print(petsc.get_petsc_dir())") \
 	  $(PY) -m pip install --no-build-isolation petsc4py==$(PETSC_VER)
-	$(PY) -m pip install --quiet --no-build-isolation -e ".[test,bench,mpi]"
+	$(PY) -m pip install --quiet --no-build-isolation -e ".[test,bench,mpi,mpi-test]"
 	touch $(MPI_STAMP)
 
 mpi: $(MPI_STAMP)

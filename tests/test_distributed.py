@@ -239,3 +239,38 @@ def test_an_error_on_one_rank_only_stops_every_rank(tmp_path):
     assert code == 2
     assert err.count("the value is not finite") == 1, err
     assert not (tmp_path / "out").exists() or list((tmp_path / "out").iterdir()) == []
+
+
+@pytest.mark.parametrize("name", ["square-p2", "cube-p1"])
+def test_vtk_reads_the_parallel_index_as_one_data_set(runs, name):
+    # VTK's own reader of the parallel format (vtkXMLPUnstructuredGridReader,
+    # the reader ParaView uses for .pvtu) is the reference for the file format
+    try:
+        from vtkmodules.util.numpy_support import vtk_to_numpy
+        from vtkmodules.vtkIOXML import vtkXMLPUnstructuredGridReader
+    except ImportError:
+        if REQUIRED:
+            pytest.fail("vtk is missing: `make mpi` installs it (extra mpi-test)")
+        pytest.skip("vtk is not installed (`make mpi` installs it)")
+    from scipy.spatial import cKDTree
+
+    r = _load(runs, 2, name)
+    reader = vtkXMLPUnstructuredGridReader()
+    reader.SetFileName(str(r["index"]))
+    reader.Update()
+    grid = reader.GetOutput()
+    problem, degree, _, _ = mpi_cases.case(name)
+    mesh = problem.mesh
+    # P1: the computational cells; P2: each refined once (4 or 8 children)
+    children = 1 if degree == 1 else 2 ** mesh.dim
+    assert grid.GetNumberOfCells() == mesh.n_cells * children
+    ranks = vtk_to_numpy(grid.GetCellData().GetArray("rank"))
+    assert sorted(set(ranks.tolist())) == [0, 1]
+    pts = vtk_to_numpy(grid.GetPoints().GetData())
+    u = vtk_to_numpy(grid.GetPointData().GetArray("u"))
+    disc = gk.Discretization(mesh, degree)
+    nodes = np.column_stack([disc.dof_points, np.zeros((disc.n_dofs, 3 - mesh.dim))])
+    dist, nearest = cKDTree(nodes).query(pts)
+    # P1 and P2 output points are dof nodes (P2 refined once: its nodes exactly)
+    assert dist.max() < 1e-12
+    np.testing.assert_allclose(u, r["u"][nearest], rtol=0, atol=1e-13)
