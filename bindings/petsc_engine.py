@@ -418,7 +418,7 @@ class LocalSystem:
     After :func:`assemble_part`: ``A_full`` and ``b_full`` over the rank's
     dofs (its cells' contributions only).  After :func:`constrain_part`:
     ``A`` (CSR) and ``b`` over the rank's free dofs in the order
-    ``elim.free``, ``rows`` their distributed rows.  The distributed system
+    ``free``, ``rows`` their distributed rows.  The distributed system
     is the sum over the ranks of ``A`` and ``b`` at those rows.
     """
 
@@ -433,12 +433,20 @@ class LocalSystem:
     weights: np.ndarray = None
     accurate: np.ndarray = None
     component: np.ndarray = None
-    elim: object = None
+    free: np.ndarray = None
+    fixed: np.ndarray = None
     fixed_values: np.ndarray = None
     rows: np.ndarray = None
     A: object = None
     b: np.ndarray = None
     notes: list = field(default_factory=list)
+
+    def expand(self, u_free):
+        """Values at all the rank's dofs from those at its free dofs."""
+        u = np.empty(self.disc.n_dofs)
+        u[self.fixed] = self.fixed_values
+        u[self.free] = u_free
+        return u
 
 
 def assemble_part(part, data, dim, degree, *, seconds=None) -> LocalSystem:
@@ -506,7 +514,8 @@ def constrain_part(system: LocalSystem, totals=None, *, seconds=None) -> LocalSy
     system.rows = part.global_index[system.l2p][elim.free]
     if (system.rows < 0).any():
         raise SolverError(f"rank {part.rank}: a free dof has no distributed row")
-    system.elim, system.fixed_values = elim, fixed_vals
+    # keep what expand() needs, not the elimination's maps (~16 bytes per entry)
+    system.free, system.fixed, system.fixed_values = elim.free, fixed_local, fixed_vals
     system.A_full = system.b_full = None
     sec["constrain"] = time.perf_counter() - t0
     return system
@@ -606,7 +615,7 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
         totals = comm.allreduce(mine, op=MPI.SUM)
     with _together(comm, "constrain"):
         constrain_part(system, totals, seconds=sec)
-    disc, l2p, elim = system.disc, system.l2p, system.elim
+    disc, l2p = system.disc, system.l2p
     Af, bf, rows_of_free, fixed_vals = system.A, system.b, system.rows, system.fixed_values
 
     # -- 3. PETSc matrix and vector by COO, summed over ranks --------------------
@@ -685,7 +694,7 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
         iset = PETSc.IS().createGeneral(rows_of_free.astype(ix), comm=PETSc.COMM_SELF)
         scatter = PETSc.Scatter().create(x, iset, local, None)
         scatter.scatter(x, local, PETSc.InsertMode.INSERT_VALUES, PETSc.ScatterMode.FORWARD)
-        u = elim.expand(local.getArray().copy(), fixed_vals)
+        u = system.expand(local.getArray())
         for obj in (scatter, iset, local, r):
             obj.destroy()
     notes = []
