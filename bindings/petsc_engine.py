@@ -13,7 +13,7 @@ Flow (every rank runs :func:`solve_distributed`; SPMD)
    partitions the cells (:mod:`galerkit.bindings.partition`) and sends each
    rank its :class:`~galerkit.bindings.partition.LocalPart` and the
    problem's data (coefficients pickled; per-cell and per-dof arrays cut to
-   the rank's cells and dofs).
+   the rank's cells and dofs), one part at a time.
 2. Each rank builds its own :class:`~galerkit.Mesh` and
    :class:`~galerkit.Discretization` from its cells, checks that their dof
    numbering maps onto the global one, and assembles its cells with an
@@ -47,6 +47,9 @@ from galerkit.errors import GalerkitError, InputError, ProblemError, SolverError
 
 __all__ = ["solve_distributed", "DistributedSolution", "petsc_available", "DEFAULT_KSP",
            "DEFAULT_PC", "parse_petsc_options"]
+
+#: message tag of the parts that rank 0 sends
+_PART_TAG = 7301
 
 #: Krylov method and preconditioner used unless PETSc options name others.
 DEFAULT_KSP = "cg"
@@ -259,29 +262,42 @@ def _cut(value, n_cells, n_dofs, cells, dofs, name):
                      f"per-dof array ({n_dofs},)")
 
 
-def _problem_data(problem, n_dofs, part):
+def _check_problem_data(problem, n_dofs):
+    """Refuse, before anything is sent, data that cannot be cut or pickled."""
     m = problem.mesh.n_cells
-    c, d = part.cells, part.dofs
-    data = {
-        "conductivity": _cut(problem.conductivity, m, n_dofs, c, d, "conductivity"),
-        "source": _cut(problem.source, m, n_dofs, c, d, "source"),
-        "neumann": {t: v for t, v in problem.neumann.items() if t in part.facet_tags},
-        "robin": {t: v for t, v in problem.robin.items() if t in part.facet_tags},
-    }
+    none = np.zeros(0, dtype=np.int64)
+    sendable = {}
+    for name in ("conductivity", "source"):
+        value = getattr(problem, name)
+        _cut(value, m, n_dofs, none, none, name)  # shape check only
+        if not isinstance(value, np.ndarray):
+            sendable[name] = value
     for kind in ("neumann", "robin"):
-        for t, v in data[kind].items():
+        for t, v in getattr(problem, kind).items():
             for x in (v if kind == "robin" else (v,)):
                 if not callable(x) and np.ndim(x) > 0:
                     raise InputError(f"the petsc engine: {kind}[{t!r}] must be a number or a "
                                      "callable (arrays over facets are not distributed)")
+        sendable[kind] = getattr(problem, kind)
     try:
-        pickle.dumps(data)
+        pickle.dumps(sendable)
     except Exception as exc:  # noqa: BLE001
         raise InputError(
             f"the petsc engine sends the problem's coefficients to the ranks by pickling, "
             f"and one cannot be pickled ({type(exc).__name__}: {exc}); use module-level "
             "functions or problem-file formulas instead of lambdas and closures") from None
-    return data
+
+
+def _problem_data(problem, n_dofs, part):
+    """The problem's data cut to one part (checked by :func:`_check_problem_data`)."""
+    m = problem.mesh.n_cells
+    c, d = part.cells, part.dofs
+    return {
+        "conductivity": _cut(problem.conductivity, m, n_dofs, c, d, "conductivity"),
+        "source": _cut(problem.source, m, n_dofs, c, d, "source"),
+        "neumann": {t: v for t, v in problem.neumann.items() if t in part.facet_tags},
+        "robin": {t: v for t, v in problem.robin.items() if t in part.facet_tags},
+    }
 
 
 def _floating_components(problem, disc, fixed_dofs):
@@ -364,8 +380,11 @@ def prepare_parts(problem, degree, n_parts, *, exact=None, exact_gradient=None):
     header : dict
         What every rank needs (dimension, sizes, tag names, partition quality,
         the exact solution).
-    payloads : list of (LocalPart, dict)
-        Per part, its cells and dofs and the problem's data cut to it.
+    payloads : iterator of (LocalPart, dict)
+        Part by part (0, 1, ...), its cells and dofs and the problem's data
+        cut to it; made one at a time, so that rank 0 can send each and free
+        it before cutting the next.  Everything that can be refused is
+        checked before this returns.
     """
     from galerkit import Discretization, PoissonProblem
 
@@ -375,6 +394,12 @@ def prepare_parts(problem, degree, n_parts, *, exact=None, exact_gradient=None):
         raise InputError(f"solve_distributed: problem must be a PoissonProblem on rank 0, got "
                          f"{type(problem).__name__}")
     disc = Discretization(problem.mesh, degree)
+    _check_problem_data(problem, disc.n_dofs)
+    try:
+        pickle.dumps((exact, exact_gradient))
+    except Exception as exc:  # noqa: BLE001
+        raise InputError(f"solve_distributed: the exact solution cannot be pickled ({exc}); "
+                         "use a module-level function") from None
     fixed_dofs, fixed_vals = problem._dirichlet(disc)
     floating, dof_label = _floating_components(problem, disc, fixed_dofs)
     if floating.size:
@@ -387,28 +412,26 @@ def prepare_parts(problem, degree, n_parts, *, exact=None, exact_gradient=None):
     values[fixed_dofs] = fixed_vals
     parts = partition_cells(problem.mesh, n_parts)
     layout = dof_layout(disc, parts, n_parts, fixed_dofs)
-    payloads = []
-    for r in range(n_parts):
-        part = local_part(disc, layout, r, values)
-        data = _problem_data(problem, disc.n_dofs, part)
-        data["floating"] = floating
-        data["components"] = int(dof_label.max()) + 1
-        data["dof_component"] = dof_label[part.dofs] if floating.size else None
-        payloads.append((part, data))
     quality = (partition_report(disc, parts, n_parts, cut_facets=False).as_dict()
                if n_parts > 1 else {})
+    n_comp = int(dof_label.max()) + 1
     header = {"dim": problem.mesh.dim, "n_dofs": disc.n_dofs,
               "n_cells": problem.mesh.n_cells, "n_vertices": problem.mesh.n_vertices,
               "tags": list(problem.mesh.facet_tags),
               "n_global": layout.n_global, "partition": quality,
-              "floating": int(floating.size), "components": int(dof_label.max()) + 1,
+              "floating": int(floating.size), "components": n_comp,
               "exact": (exact, exact_gradient)}
-    try:
-        pickle.dumps(header["exact"])
-    except Exception as exc:  # noqa: BLE001
-        raise InputError(f"solve_distributed: the exact solution cannot be pickled ({exc}); "
-                         "use a module-level function") from None
-    return header, payloads
+
+    def payloads():
+        for r in range(n_parts):
+            part = local_part(disc, layout, r, values)
+            data = _problem_data(problem, disc.n_dofs, part)
+            data["floating"] = floating
+            data["components"] = n_comp
+            data["dof_component"] = dof_label[part.dofs] if floating.size else None
+            yield part, data
+
+    return header, payloads()
 
 
 @dataclass
@@ -595,13 +618,20 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
                 parse_petsc_options(petsc_options)
             header, payloads = prepare_parts(problem, degree, size, exact=exact,
                                              exact_gradient=exact_gradient)
-    # with ``load``, this is the last reference to the global mesh: freed here
-    problem = load = None
+    problem = load = None  # with ``load``, the parts generator holds the last reference
     sec["partition"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     header = comm.bcast(header, root=0)
-    part, data = comm.scatter(payloads, root=0)
-    del payloads
+    if rank == 0:  # one part at a time: cut, send, free
+        for r, payload in enumerate(payloads):
+            if r == 0:
+                part, data = payload
+            else:
+                comm.send(payload, dest=r, tag=_PART_TAG)
+            del payload
+    else:
+        part, data = comm.recv(source=0, tag=_PART_TAG)
+    payloads = None  # the global mesh and numbering are freed here
     exact, exact_gradient = header["exact"]
     sec["distribute"] = time.perf_counter() - t0
 

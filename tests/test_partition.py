@@ -113,6 +113,7 @@ def _serial_reduced(problem, degree):
 def _parts_systems(problem, degree, n_parts):
     """Every part's reduced system, the ranks' sums done by hand."""
     header, payloads = prepare_parts(problem, degree, n_parts)
+    payloads = list(payloads)
     systems = [assemble_part(part, data, header["dim"], degree) for part, data in payloads]
     totals = sum(neumann_sums(s) for s in systems) if header["floating"] else None
     return header, payloads, [constrain_part(s, totals) for s in systems]
@@ -218,7 +219,7 @@ def test_prepare_cuts_per_cell_conductivity_to_each_part():
     kappa = 1.0 + np.arange(mesh.n_cells, dtype=float)
     problem = gk.PoissonProblem(mesh, conductivity=kappa, dirichlet={"boundary": 1.0})
     _, payloads = prepare_parts(problem, 1, 3)
-    for part, data in payloads:
+    for part, data in list(payloads):
         np.testing.assert_array_equal(data["conductivity"], kappa[part.cells])
 
 
