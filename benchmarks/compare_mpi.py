@@ -8,6 +8,7 @@ size, and the ratio of each run's total to the serial total.
 
     python benchmarks/compare_mpi.py                 # 10^6 dofs, 1 and 2 ranks
     python benchmarks/compare_mpi.py --size 40 --ranks 1,2,3
+    python benchmarks/compare_mpi.py --repeat 3      # best of 3 runs (timings vary)
 
 Needs ``make mpi``.  Close other work first: the machine has 2 cores, and
 2 ranks use both.
@@ -73,6 +74,8 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--size", type=int, default=99)
     ap.add_argument("--ranks", default="1,2")
+    ap.add_argument("--repeat", type=int, default=1,
+                    help="runs of each engine; the one with the smallest total is shown")
     ap.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
     ap.add_argument("--serial", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
@@ -85,17 +88,22 @@ def main(argv=None):
     if mpiexec is None:
         sys.exit("compare_mpi: mpiexec not found; run `make mpi` first")
     me = [sys.executable, os.path.join(HERE, "compare_mpi.py"), "--size", str(args.size)]
-    runs = [json.loads(subprocess.run(me + ["--serial"], check=True, capture_output=True,
-                                      text=True).stdout)]
+    def best(cmd):
+        tries = []
+        for _ in range(max(1, args.repeat)):
+            out = subprocess.run(cmd, check=True, capture_output=True, text=True).stdout
+            tries.append(json.loads(out.strip().splitlines()[-1]))
+        return min(tries, key=lambda r: r["seconds"]["total"])
+
+    runs = [best(me + ["--serial"])]
     for n in [int(r) for r in args.ranks.split(",")]:
-        out = subprocess.run([mpiexec, "-n", str(n)] + me + ["--worker"], check=True,
-                             capture_output=True, text=True).stdout
-        runs.append(json.loads(out.strip().splitlines()[-1]))
+        runs.append(best([mpiexec, "-n", str(n)] + me + ["--worker"]))
     phases = []
     for r in runs:
         phases += [k for k in r["seconds"] if k not in phases and k != "total"]
     phases.append("total")
-    print(f"unit cube, P1, {runs[0]['dofs']} dofs, rtol 1e-8, {os.cpu_count()} cores\n")
+    print(f"unit cube, P1, {runs[0]['dofs']} dofs, rtol 1e-8, {os.cpu_count()} cores, "
+          f"best of {max(1, args.repeat)} run(s) by total\n")
     head = f"{'phase':<14s}" + "".join(f"{r['engine'][:18] + ' x' + str(r['ranks']):>24s}"
                                         for r in runs)
     print(head)
