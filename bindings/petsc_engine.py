@@ -125,6 +125,40 @@ def parse_petsc_options(text: str) -> list:
 # ----------------------------------------------------------------------------
 # collective errors
 # ----------------------------------------------------------------------------
+def _quiet_barrier(comm, poll=0.002):
+    """A barrier that sleeps while it waits.
+
+    MPI implementations spin in blocking calls: a rank waiting in one for
+    rank 0's serial set-up would take a core from it.
+    """
+    req = comm.Ibarrier()
+    while not req.Test():
+        time.sleep(poll)
+
+
+def _quiet_recv(comm, source, tag, poll=0.002):
+    """``comm.recv`` that sleeps until the message has arrived."""
+    while not comm.Iprobe(source=source, tag=tag):
+        time.sleep(poll)
+    return comm.recv(source=source, tag=tag)
+
+
+@contextmanager
+def _root_threads(comm):
+    """Rank 0 uses every numba thread while the other ranks wait for it."""
+    import numba
+
+    if comm.rank != 0 or comm.size == 1:
+        yield
+        return
+    mine = numba.get_num_threads()
+    numba.set_num_threads(_NODE_THREADS.get("all", mine))
+    try:
+        yield
+    finally:
+        numba.set_num_threads(mine)
+
+
 @contextmanager
 def _together(comm, what):
     """Run a block on every rank; if it fails on any, raise that error on all."""
@@ -133,6 +167,7 @@ def _together(comm, what):
         yield
     except Exception as exc:  # noqa: BLE001 - re-raised below, on every rank
         err = exc
+    _quiet_barrier(comm)
     errors = comm.allgather(None if err is None else _portable(err, comm.rank, what))
     first = next((e for e in errors if e is not None), None)
     if first is not None:
@@ -153,11 +188,14 @@ def _portable(exc, rank, what):
 
 
 def _on_root(comm, fn):
-    """``fn()`` on rank 0, its result broadcast; an error in it raised on every rank."""
+    """``fn()`` on rank 0 (with every numba thread), its result broadcast; an error in it
+    raised on every rank."""
     result = None
+    _numba_threads(comm)
     with _together(comm, "root"):
         if comm.rank == 0:
-            result = fn()
+            with _root_threads(comm):
+                result = fn()
     return comm.bcast(result, root=0)
 
 
@@ -322,17 +360,27 @@ def _floating_components(problem, disc, fixed_dofs):
 # ----------------------------------------------------------------------------
 # the solve
 # ----------------------------------------------------------------------------
-def _numba_threads(comm, MPI):
+#: numba threads: "all" while rank 0 works alone, "rank" otherwise (set once)
+_NODE_THREADS: dict = {}
+
+
+def _numba_threads(comm):
     """One node's cores shared by the ranks on it, unless NUMBA_NUM_THREADS is set."""
     import numba
+    from mpi4py import MPI
 
-    if "NUMBA_NUM_THREADS" in os.environ:
-        return numba.get_num_threads()
-    node = comm.Split_type(MPI.COMM_TYPE_SHARED)
-    per_rank = max(1, (os.cpu_count() or 1) // node.size)
-    node.Free()
-    numba.set_num_threads(min(per_rank, numba.config.NUMBA_NUM_THREADS))
-    return numba.get_num_threads()
+    if "rank" not in _NODE_THREADS:
+        if "NUMBA_NUM_THREADS" in os.environ:
+            _NODE_THREADS["rank"] = _NODE_THREADS["all"] = numba.get_num_threads()
+        else:
+            node = comm.Split_type(MPI.COMM_TYPE_SHARED)
+            size = node.size
+            node.Free()
+            cores = min(os.cpu_count() or 1, numba.config.NUMBA_NUM_THREADS)
+            _NODE_THREADS["all"] = cores
+            _NODE_THREADS["rank"] = max(1, cores // size)
+    numba.set_num_threads(_NODE_THREADS["rank"])
+    return _NODE_THREADS["rank"]
 
 
 def _local_mesh(part, dim):
@@ -605,32 +653,34 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
     comm = MPI.COMM_WORLD if comm is None else comm
     rank, size = comm.rank, comm.size
     sec = {}
-    threads = _numba_threads(comm, MPI)
+    threads = _numba_threads(comm)
 
     # -- 1. rank 0: global numbering, Dirichlet data, partition ------------------
     t0 = time.perf_counter()
     payloads = header = None
     with _together(comm, "set-up"):
         if rank == 0:
-            if load is not None:
-                problem = load()
-            if petsc_options is not None:
-                parse_petsc_options(petsc_options)
-            header, payloads = prepare_parts(problem, degree, size, exact=exact,
-                                             exact_gradient=exact_gradient)
+            with _root_threads(comm):
+                if load is not None:
+                    problem = load()
+                if petsc_options is not None:
+                    parse_petsc_options(petsc_options)
+                header, payloads = prepare_parts(problem, degree, size, exact=exact,
+                                                 exact_gradient=exact_gradient)
     problem = load = None  # with ``load``, the parts generator holds the last reference
     sec["partition"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     header = comm.bcast(header, root=0)
     if rank == 0:  # one part at a time: cut, send, free
-        for r, payload in enumerate(payloads):
-            if r == 0:
-                part, data = payload
-            else:
-                comm.send(payload, dest=r, tag=_PART_TAG)
-            del payload
+        with _root_threads(comm):
+            for r, payload in enumerate(payloads):
+                if r == 0:
+                    part, data = payload
+                else:
+                    comm.send(payload, dest=r, tag=_PART_TAG)
+                del payload
     else:
-        part, data = comm.recv(source=0, tag=_PART_TAG)
+        part, data = _quiet_recv(comm, 0, _PART_TAG)
     payloads = None  # the global mesh and numbering are freed here
     exact, exact_gradient = header["exact"]
     sec["distribute"] = time.perf_counter() - t0
