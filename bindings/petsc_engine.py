@@ -661,6 +661,13 @@ def solve_distributed(problem=None, degree=1, *, rtol=1e-10, maxiter=None, petsc
     with _together(comm, "set-up"):
         if rank == 0:
             with _root_threads(comm):
+                if not (isinstance(rtol, (int, float)) and 0 < rtol < 1):
+                    raise InputError(f"solve_distributed: rtol must be a number in (0, 1), got "
+                                     f"{rtol!r}")
+                if maxiter is not None and not (isinstance(maxiter, (int, np.integer))
+                                                and maxiter >= 1):
+                    raise InputError(f"solve_distributed: maxiter must be an integer >= 1, got "
+                                     f"{maxiter!r}")
                 if load is not None:
                     problem = load()
                 if petsc_options is not None:

@@ -274,3 +274,28 @@ def test_vtk_reads_the_parallel_index_as_one_data_set(runs, name):
     # P1 and P2 output points are dof nodes (P2 refined once: its nodes exactly)
     assert dist.max() < 1e-12
     np.testing.assert_allclose(u, r["u"][nearest], rtol=0, atol=1e-13)
+
+
+def test_bad_arguments_are_refused_on_every_rank(tmp_path):
+    script = tmp_path / "bad_rtol.py"
+    script.write_text(
+        "from mpi4py import MPI\n"
+        "import galerkit as gk\n"
+        "from galerkit.bindings.petsc_engine import solve_distributed\n"
+        "rank = MPI.COMM_WORLD.rank\n"
+        "p = gk.PoissonProblem(gk.structured_triangles(4, 4), dirichlet={'boundary': 0.0}) "
+        "if rank == 0 else None\n"
+        "import sys\n"
+        "with open(sys.argv[1] + f'/rank{rank}.txt', 'w') as out:\n"
+        "    for kw in ({'rtol': 2.0}, {'maxiter': 0}):\n"
+        "        try:\n"
+        "            solve_distributed(p, **kw)\n"
+        "        except gk.InputError as exc:\n"
+        "            print(list(kw)[0], str(exc), file=out)\n")
+    code, out, err = _mpiexec(2, [sys.executable, script, tmp_path])
+    assert code == 0, err
+    for rank in (0, 1):
+        lines = (tmp_path / f"rank{rank}.txt").read_text().splitlines()
+        assert [line.split()[0] for line in lines] == ["rtol", "maxiter"]
+        assert "rtol must be a number in (0, 1)" in lines[0]
+        assert "maxiter must be an integer >= 1" in lines[1]
