@@ -363,6 +363,19 @@ def _error_line(errors) -> str:
     return "  error       " + ", ".join(parts) + " (against [exact])"
 
 
+def _report_tail(say, opts, lo, hi, errors, written, notes):
+    """The field range, errors, files written, notes and the caution of ``solve``."""
+    unit = f" {opts.units}" if opts.units else ""
+    say.result(f"  {opts.name:<12s}{lo:.6g} .. {hi:.6g}{unit}")
+    if errors is not None:
+        say.result(_error_line(errors))
+    for p in written:
+        say.result(f"  wrote       {p}")
+    for n in notes:
+        say.result(f"  note        {n}")
+    say.caution()
+
+
 def _solve(args) -> int:
     if args.engine == "petsc":
         return _solve_distributed(args)
@@ -464,15 +477,8 @@ def _solve(args) -> int:
     for k, v in seconds.items():
         say.result(f"  {k:<12s}{v:8.3f} s")
     say.result(f"  peak memory {info['peak_rss_mb']:.0f} MB (peak resident set size)")
-    unit = f" {opts.units}" if opts.units else ""
-    say.result(f"  {opts.name:<12s}{info['field']['min']:.6g} .. {info['field']['max']:.6g}{unit}")
-    if errors is not None:
-        say.result(_error_line(errors))
-    for p in outputs:
-        say.result(f"  wrote       {p}")
-    for n in notes:
-        say.result(f"  note        {n}")
-    say.caution()
+    _report_tail(say, opts, info["field"]["min"], info["field"]["max"], errors,
+                 [str(p) for p in outputs], notes)
     return code
 
 
@@ -570,15 +576,8 @@ def _solve_distributed(args) -> int:
         say.result(f"    {k:<14s}{v:8.3f} s")
     say.result("  peak memory " + ", ".join(f"{m:.0f}" for m in sol.peak_rss_mb)
                + " MB per rank (peak resident set size)")
-    unit = f" {opts.units}" if opts.units else ""
-    say.result(f"  {opts.name:<12s}{lo:.6g} .. {hi:.6g}{unit}")
-    if errors is not None:
-        say.result(_error_line(errors))
-    for p in outputs:
-        say.result(f"  wrote       {p} (+ {sol.size} piece{'s' if sol.size > 1 else ''})")
-    for n in notes:
-        say.result(f"  note        {n}")
-    say.caution()
+    pieces = f" (+ {sol.size} piece{'s' if sol.size > 1 else ''})"
+    _report_tail(say, opts, lo, hi, errors, [f"{p}{pieces}" for p in outputs], notes)
     return code
 
 
