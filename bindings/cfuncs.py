@@ -244,6 +244,21 @@ def _row_counts(dofs, n_dofs, n_chunks):
 
 
 @nb.njit(cache=True)
+def _pattern_arguments_bad(stamp, n_dofs, n_cells, n_chunks, n_local):
+    return stamp < 0 or n_dofs < 1 or n_cells < 1 or n_chunks < 1 or n_local < 3 \
+        or n_local > 35
+
+
+@nb.njit(cache=True)
+def _checked_row_counts(D, n_dofs, n_chunks):
+    """(E_INDEX, empty) for a cell with a bad or repeated dof, else (OK, entries per row)."""
+    first, code, count = _check_cells(D, n_dofs)
+    if first >= 0:
+        return E_INDEX, np.empty(0, dtype=np.int64)
+    return OK, _row_counts(D, n_dofs, n_chunks)
+
+
+@nb.njit(cache=True)
 def _matrix_checks(P, C, D, n_dofs, IP, IX, O, PM, rows, windows, scatter):
     st = _mesh_status(P, C, D, n_dofs)
     if st != OK:
@@ -328,15 +343,13 @@ def _build(stamp):
 
     @cfunc(sig("galerkit_pattern_count"), cache=True)
     def pattern_count(n_dofs, n_cells, n_local, cell_dofs, n_chunks, indptr):
-        if stamp < 0 or n_dofs < 1 or n_cells < 1 or n_chunks < 1 or n_local < 3 \
-                or n_local > 35:
+        if _pattern_arguments_bad(stamp, n_dofs, n_cells, n_chunks, n_local):
             return E_ARGUMENT
         D = carray(cell_dofs, (n_cells, n_local))
         IP = carray(indptr, (n_dofs + 1,))
-        first, code, count = _check_cells(D, n_dofs)
-        if first >= 0:
-            return E_INDEX
-        row_nnz = _row_counts(D, n_dofs, n_chunks)
+        err, row_nnz = _checked_row_counts(D, n_dofs, n_chunks)
+        if err != OK:
+            return err
         total = 0
         IP[0] = 0
         for i in range(n_dofs):
@@ -351,15 +364,13 @@ def _build(stamp):
     @cfunc(sig("galerkit_pattern_fill"), cache=True)
     def pattern_fill(n_dofs, n_cells, n_local, cell_dofs, n_chunks, indptr, indices, cell_order,
                      position_map, chunk_plan):
-        if stamp < 0 or n_dofs < 1 or n_cells < 1 or n_chunks < 1 or n_local < 3 \
-                or n_local > 35:
+        if _pattern_arguments_bad(stamp, n_dofs, n_cells, n_chunks, n_local):
             return E_ARGUMENT
         D = carray(cell_dofs, (n_cells, n_local))
         IP = carray(indptr, (n_dofs + 1,))
-        first, code, count = _check_cells(D, n_dofs)
-        if first >= 0:
-            return E_INDEX
-        row_nnz = _row_counts(D, n_dofs, n_chunks)
+        err, row_nnz = _checked_row_counts(D, n_dofs, n_chunks)
+        if err != OK:
+            return err
         if IP[0] != 0:
             return E_PATTERN
         for i in range(n_dofs):
