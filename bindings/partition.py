@@ -438,11 +438,13 @@ class PartitionReport:
                 "neighbours_max": int(self.neighbours.max())}
 
 
-def partition_report(disc, parts, n_parts: int, *, cut_facets=True) -> PartitionReport:
+def partition_report(disc, parts, n_parts: int, *, cut_facets=True,
+                     layout=None) -> PartitionReport:
     """Balance, edge cut and halo sizes of a cell partition of ``disc``.
 
     ``cut_facets=False`` skips the edge cut (it enumerates every facet, the
-    costly part) and reports ``-1`` for it.
+    costly part) and reports ``-1`` for it.  ``layout``: the
+    :func:`dof_layout` of this partition, when the caller has it already.
 
     Examples
     --------
@@ -453,7 +455,8 @@ def partition_report(disc, parts, n_parts: int, *, cut_facets=True) -> Partition
     ([192, 192], 1.0)
     """
     mesh = disc.mesh
-    layout = dof_layout(disc, parts, n_parts)
+    if layout is None:
+        layout = dof_layout(disc, parts, n_parts)
     order = np.argsort(layout.parts, kind="stable")
     starts = np.zeros(n_parts + 1, dtype=np.int64)
     np.cumsum(np.bincount(layout.parts, minlength=n_parts), out=starts[1:])

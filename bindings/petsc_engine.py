@@ -460,8 +460,8 @@ def prepare_parts(problem, degree, n_parts, *, exact=None, exact_gradient=None):
     values[fixed_dofs] = fixed_vals
     parts = partition_cells(problem.mesh, n_parts)
     layout = dof_layout(disc, parts, n_parts, fixed_dofs)
-    quality = (partition_report(disc, parts, n_parts, cut_facets=False).as_dict()
-               if n_parts > 1 else {})
+    quality = (partition_report(disc, parts, n_parts, cut_facets=False,
+                                layout=layout).as_dict() if n_parts > 1 else {})
     n_comp = int(dof_label.max()) + 1
     header = {"dim": problem.mesh.dim, "n_dofs": disc.n_dofs,
               "n_cells": problem.mesh.n_cells, "n_vertices": problem.mesh.n_vertices,
@@ -510,7 +510,6 @@ class LocalSystem:
     rows: np.ndarray = None
     A: object = None
     b: np.ndarray = None
-    notes: list = field(default_factory=list)
 
     def expand(self, u_free):
         """Values at all the rank's dofs from those at its free dofs."""
