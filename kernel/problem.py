@@ -33,7 +33,8 @@ from .dofs import Discretization
 from .errors import InputError, ProblemError
 from .evaluation import cell_gradients, evaluate
 from .mesh import Mesh
-from .solvers import SolveReport, prepare_solver
+from .multigrid import p1_coarse_space
+from .solvers import SolveReport, choose_method, prepare_solver
 
 __all__ = ["PoissonProblem", "Solution"]
 
@@ -190,6 +191,7 @@ class PoissonProblem:
         elim, Af, bf, fixed_vals, comps, notes = self.constrain(asm, A, b, robin_diagonal)
         sec["constrain"] = time.perf_counter() - t0
         t0 = time.perf_counter()
+        solver_options = _p_multigrid_options(disc, elim, Af.shape[0], method, solver_options)
         solver = prepare_solver(Af, method, dim=self.mesh.dim, degree=disc.degree, **solver_options)
         sec["solver_setup"] = time.perf_counter() - t0
         t0 = time.perf_counter()
@@ -381,6 +383,21 @@ def check_compatibility(total, accurate, scale, component, n_components):
             + f": integral of source + boundary flux = {accurate:.6e} (relative "
             f"{abs(accurate) / scale:.2e}); it must vanish. Add a Dirichlet or Robin "
             "condition, or balance the source and the fluxes")
+
+
+def _p_multigrid_options(disc, elim, n, method, options):
+    """Options with the nested P1 coarse space when the native multigrid solves P_k, k >= 2.
+
+    ``method`` "auto" is resolved as :func:`prepare_solver` will resolve it;
+    a ``coarse_space`` given by the caller is kept.
+    """
+    name = choose_method(n, disc.mesh.dim, disc.degree) if method == "auto" else method
+    if name != "cg-amg" or disc.degree < 2 or "coarse_space" in options:
+        return options
+    coarse = p1_coarse_space(disc, elim.free)
+    if not 0 < coarse.shape[1] < n:
+        return options
+    return {**options, "coarse_space": coarse}
 
 
 def _product(alpha, uext):

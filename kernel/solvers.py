@@ -923,35 +923,41 @@ class _CGSolver:
         x, history, k, breakdown = _pcg(
             self.A, b, x0, rtol, maxiter, self.precondition, callback
         )
-        elapsed = time.perf_counter() - t0
-        final = history[-1]
-        converged = not breakdown and final <= rtol
-        if breakdown:
-            message = (
-                f"{self.method}: {breakdown}; stopped after {k} iterations with "
-                f"relative residual {final:.3e} (tolerance rtol={rtol:.1e}). Check "
-                "that Dirichlet conditions were applied and the stiffness matrix "
-                "has the right sign, or use 'direct' for a symmetric indefinite matrix"
-            )
-        elif not converged:
-            message = (
-                f"{self.method}: not converged after {k} iterations: relative "
-                f"residual {final:.3e} is above the tolerance rtol={rtol:.1e}. "
-                f"Try a larger maxiter (was {maxiter}), a looser rtol, or a "
-                "stronger method ('cg-amg' or 'direct')"
-            )
-        else:
-            message = ""
-        return SolveReport(
-            x=x,
-            converged=bool(converged),
-            iterations=int(k),
-            residuals=np.asarray(history, dtype=np.float64),
-            solve_seconds=elapsed,
-            method=self.method,
-            options={**self.options, "rtol": rtol, "maxiter": maxiter},
-            message=message,
+        return _cg_report(self.method, x, history, k, breakdown, rtol, maxiter,
+                          time.perf_counter() - t0, self.options)
+
+
+def _cg_report(method, x, history, k, breakdown, rtol, maxiter, elapsed, options):
+    """The SolveReport of a CG run, with the message of a breakdown or non-convergence."""
+    final = history[-1]
+    converged = not breakdown and final <= rtol
+    if breakdown:
+        message = (
+            f"{method}: {breakdown}; stopped after {k} iterations with "
+            f"relative residual {final:.3e} (tolerance rtol={rtol:.1e}). Check "
+            "that Dirichlet conditions were applied and the stiffness matrix "
+            "has the right sign, or use 'direct' for a symmetric indefinite matrix"
         )
+    elif not converged:
+        others = [m for m in ("cg-amg", "direct") if m != method]
+        message = (
+            f"{method}: not converged after {k} iterations: relative "
+            f"residual {final:.3e} is above the tolerance rtol={rtol:.1e}. "
+            f"Try a larger maxiter (was {maxiter}), a looser rtol, or "
+            f"{' or '.join(repr(m) for m in others)}"
+        )
+    else:
+        message = ""
+    return SolveReport(
+        x=x,
+        converged=bool(converged),
+        iterations=int(k),
+        residuals=np.asarray(history, dtype=np.float64),
+        solve_seconds=elapsed,
+        method=method,
+        options={**options, "rtol": rtol, "maxiter": maxiter},
+        message=message,
+    )
 
 
 # --------------------------------------------------------------------------
@@ -1196,8 +1202,11 @@ DEFAULT_AMG_OPTIONS = {
 AMG_SEED = 0
 
 
-def _cg_amg(A, *, amg_options: dict | None = None):
-    """CG preconditioned by one smoothed-aggregation V-cycle (PyAMG).
+def _cg_pyamg(A, *, amg_options: dict | None = None):
+    """CG preconditioned by one smoothed-aggregation V-cycle of PyAMG.
+
+    Kept beside the native ``"cg-amg"`` so that the two can be compared on
+    the same system (``galerkit bench``).
 
     ``amg_options`` is passed unchanged as keywords to
     ``pyamg.smoothed_aggregation_solver`` (for example ``max_levels``,
@@ -1210,7 +1219,7 @@ def _cg_amg(A, *, amg_options: dict | None = None):
     """
     import pyamg
 
-    where = "solver 'cg-amg'"
+    where = "solver 'cg-pyamg'"
     if amg_options is None:
         amg_options = {}
     if not isinstance(amg_options, dict):
@@ -1253,12 +1262,103 @@ def _cg_amg(A, *, amg_options: dict | None = None):
         "levels": len(hierarchy.levels),
         "operator_complexity": float(hierarchy.operator_complexity()),
     }
-    backend = _CGSolver(A, "cg-amg", cycle.matvec, 500, options)
+    backend = _CGSolver(A, "cg-pyamg", cycle.matvec, 500, options)
     backend.hierarchy = hierarchy
     return backend
 
 
 register_solver(
+    "cg-pyamg", _cg_pyamg,
+    description="conjugate gradients preconditioned by PyAMG's smoothed-aggregation V-cycle",
+)
+
+
+# --------------------------------------------------------------------------
+# built-in: the native multigrid (galerkit.multigrid)
+# --------------------------------------------------------------------------
+
+
+class _MultigridSolver:
+    """Backend of "cg-amg": a hierarchy and the compiled CG loop."""
+
+    def __init__(self, hierarchy, options):
+        self.h = hierarchy
+        self.options = options
+
+    def _system(self):
+        fine = self.h._levels[0]
+        return fine.ptr, fine.ind, fine.val
+
+    def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
+        if maxiter is None:
+            maxiter = 500
+        t0 = time.perf_counter()
+        ptr, ind, val = self._system()
+        if callback is None:
+            x, history, k, status = self.h.pcg(ptr, ind, val, b, x0, rtol, maxiter,
+                                               _MAX_TRUE_RESIDUAL_RESTARTS)
+            breakdown = ""
+            if status == 1:
+                breakdown = ("the preconditioned residual gave r.z <= 0, so the matrix is not "
+                             "symmetric positive definite (SPD)")
+            elif status == 2:
+                breakdown = ("the search direction gave p.Ap <= 0, so the matrix is not "
+                             "symmetric positive definite (SPD)")
+        else:  # a Python callback per iteration: the shared loop, the same V-cycle
+            A = sp.csr_array((val, ind, ptr), shape=(self.h.n, self.h.n))
+            x, history, k, breakdown = _pcg(A, b, x0, rtol, maxiter, self.h.apply, callback)
+        return _cg_report("cg-amg", x, history, k, breakdown, rtol, maxiter,
+                          time.perf_counter() - t0, self.options)
+
+    def refresh(self, A):
+        """New values with the same pattern: keep the aggregates (see Hierarchy.refresh)."""
+        done = self.h.refresh(A)
+        if done:
+            self.options = {**self.options, **_hierarchy_facts(self.h)}
+        return done
+
+
+def _hierarchy_facts(h):
+    return {
+        "levels": len(h.levels),
+        "level_sizes": [lv["n"] for lv in h.levels],
+        "level_nonzeros": [lv["nnz"] for lv in h.levels],
+        "operator_complexity": float(h.operator_complexity),
+        "grid_complexity": float(h.grid_complexity),
+        "hierarchy_bytes": int(h.memory_bytes()),
+        "setup_phases": dict(h.setup_phases),
+        "coarsest": h.coarsest,
+    }
+
+
+def _cg_amg(A, *, coarse_space=None, theta=None, max_coarse=None, max_levels=None,
+            smoother_degree=None, smoother_lower=None, fine_smoother_degree=None):
+    """CG preconditioned by one V-cycle of galerkit's smoothed-aggregation multigrid.
+
+    See :mod:`galerkit.multigrid` for the method.  Options (None takes the
+    default of :data:`galerkit.multigrid.DEFAULTS`): ``theta`` strength
+    threshold, ``max_coarse`` size of the dense coarsest level,
+    ``max_levels``, ``smoother_degree`` and ``smoother_lower`` (Chebyshev
+    degree and interval), ``coarse_space`` a P_k -> P1 interpolation for
+    p-multigrid (with ``fine_smoother_degree`` on the P_k level).
+    Default maxiter 500.
+    """
+    from . import multigrid
+
+    given = {"theta": theta, "max_coarse": max_coarse, "max_levels": max_levels,
+             "smoother_degree": smoother_degree, "smoother_lower": smoother_lower,
+             "fine_smoother_degree": fine_smoother_degree}
+    settings = {k: (multigrid.DEFAULTS[k] if v is None else v) for k, v in given.items()}
+    h = multigrid.build_hierarchy(A, coarse_space=coarse_space, **settings)
+    options = {**settings, "p_multigrid": coarse_space is not None,
+               "method": "smoothed aggregation (Vanek, Mandel & Brezina 1996), "
+                         "Chebyshev smoother in the l1-scaled operator, V-cycle",
+               **_hierarchy_facts(h)}
+    return _MultigridSolver(h, options)
+
+
+register_solver(
     "cg-amg", _cg_amg,
-    description="conjugate gradients preconditioned by a smoothed-aggregation AMG V-cycle (PyAMG)",
+    description="conjugate gradients preconditioned by galerkit's smoothed-aggregation "
+                "multigrid V-cycle (compiled, thread-parallel)",
 )
