@@ -573,12 +573,15 @@ class PreparedSolver:
         The set-up options as passed.
     """
 
-    def __init__(self, method: str, n: int, backend: Any, setup_seconds: float, options: dict):
+    def __init__(self, method: str, n: int, backend: Any, setup_seconds: float, options: dict,
+                 factory: Callable[..., Any] | None = None, pattern: tuple | None = None):
         self.method = method
         self.n = n
         self.setup_seconds = setup_seconds
         self.options = dict(options)
         self._backend = backend
+        self._factory = factory
+        self._pattern = pattern
 
     def __repr__(self) -> str:
         return (
@@ -653,6 +656,70 @@ class PreparedSolver:
             setup_seconds=self.setup_seconds,
             solve_seconds=elapsed,
         )
+
+
+    def refresh(self, A: Any) -> bool:
+        """Take new matrix values with the same sparsity pattern (time loops).
+
+        Methods with a numeric-only path use it: ``"cg-amg"`` keeps its
+        aggregates and recomputes prolongators, coarse operators and the
+        coarsest factor.  Other methods repeat their whole set-up with the
+        options they were prepared with.  ``setup_seconds`` becomes the time
+        of this refresh.
+
+        Parameters
+        ----------
+        A : scipy.sparse matrix, shape (n, n)
+            The new matrix: the same shape and the same stored pattern
+            (``indptr``, ``indices``) as the prepared one, e.g. re-assembled
+            with ``out=``.
+
+        Returns
+        -------
+        bool
+            True when the numeric-only path was used, False when the set-up
+            was repeated.
+
+        Raises
+        ------
+        InputError
+            If ``A`` is invalid or its shape or pattern differs (prepare a new
+            solver for a new pattern).
+
+        Examples
+        --------
+        >>> import numpy as np, scipy.sparse as sp
+        >>> from galerkit.solvers import prepare_solver
+        >>> A = sp.diags([-1.0, 2.0, -1.0], [-1, 0, 1], shape=(900, 900), format="csr")
+        >>> amg = prepare_solver(A, "cg-amg")
+        >>> A2 = A.copy(); A2.data *= 3.0
+        >>> amg.refresh(A2)
+        True
+        >>> bool(np.allclose(3.0 * amg.solve(np.ones(900)).x, prepare_solver(A).solve(np.ones(900)).x))
+        True
+        """
+        where = f"refresh of solver {self.method!r}"
+        A = _validate_matrix(A, where)
+        if A.shape != (self.n, self.n):
+            raise InputError(
+                f"{where}: the new matrix has shape {A.shape}, the prepared one "
+                f"({self.n}, {self.n}); prepare a new solver for a new system")
+        old = self._pattern
+        if old is not None and not (
+                (A.indptr is old[0] or np.array_equal(A.indptr, old[0]))
+                and (A.indices is old[1] or np.array_equal(A.indices, old[1]))):
+            raise InputError(
+                f"{where}: the new matrix has another sparsity pattern than the prepared "
+                "one (indptr/indices differ); refresh is for new values on the same pattern: "
+                "prepare a new solver instead")
+        t0 = time.perf_counter()
+        hook = getattr(self._backend, "refresh", None)
+        numeric_only = bool(callable(hook) and hook(A))
+        if not numeric_only:
+            self._backend = self._factory(A, **self.options)
+        self._pattern = (A.indptr, A.indices)
+        self.setup_seconds = time.perf_counter() - t0
+        return numeric_only
 
 
 def prepare_solver(
@@ -736,7 +803,8 @@ def prepare_solver(
             f"{where}: the factory of solver {name!r} returned "
             f"{type(backend).__name__}, which has no solve() method"
         )
-    return PreparedSolver(name, n, backend, setup, options)
+    return PreparedSolver(name, n, backend, setup, options, factory=entry.factory,
+                          pattern=(A.indptr, A.indices))
 
 
 def solve(
