@@ -51,6 +51,7 @@ test-mpi: $(MPI_STAMP)
 bench: $(STAMP)
 	$(PY) benchmarks/compare.py
 	$(PY) benchmarks/compare_poisson.py
+	$(PY) benchmarks/compare_solvers.py
 
 clean: clean-cache
 	rm -rf $(VENV) build *.egg-info

@@ -119,8 +119,10 @@ def heat_loop(dim, n, steps, rebuild_every, dt=1e-3):
         elim.reduce_matrix(S, out=Sf)
         rf = elim.reduce_rhs(S, M @ u + dt * b, zeros)
         lap("reduce")
-        if solver is None or step % rebuild_every == 0:
+        if solver is None:
             solver = prepare_solver(Sf, "cg-amg")  # holds Sf itself: sees later in-place updates
+        elif step % rebuild_every == 0:
+            solver.refresh(Sf)  # numeric only: same aggregates, new coarse operators
         lap("AMG set-up")
         report = solver.solve(rf, x0=u[elim.free], rtol=1e-10)
         lap("solve")

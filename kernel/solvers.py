@@ -22,11 +22,17 @@ name            method
                 ordering; factorised once in set-up, reused for every b
 ``cg``          conjugate gradients, no preconditioner
 ``cg-jacobi``   conjugate gradients preconditioned by the inverse diagonal
-``cg-amg``      conjugate gradients preconditioned by one V-cycle of a
-                PyAMG smoothed-aggregation hierarchy (built once in set-up)
+``cg-amg``      conjugate gradients preconditioned by one V-cycle of our own
+                smoothed-aggregation multigrid (:mod:`galerkit.multigrid`;
+                p-multigrid through the nested P1 space for degree >= 2);
+                hierarchy built once in set-up, CG loop in compiled code
+``cg-pyamg``    conjugate gradients preconditioned by one V-cycle of PyAMG's
+                smoothed aggregation: the reference to compare ``cg-amg`` with
 ==============  ============================================================
 
-The three CG methods share one preconditioned CG loop.  It stops when the
+``cg``, ``cg-jacobi`` and ``cg-pyamg`` share one preconditioned CG loop in
+Python; ``cg-amg`` runs the same algorithm compiled (and falls back to the
+Python loop when a ``callback`` is given).  The loop stops when the
 residual of the CG recurrence satisfies ``||r_k|| <= rtol * ||b||`` and then
 checks the true residual ``b - A x_k`` (restarting from it a few times when
 rounding made the two drift apart); the last entry of the residual history is
@@ -744,7 +750,7 @@ def prepare_solver(
         Mesh dimension and element degree, used only by ``"auto"``.
     **options
         Set-up options of the method, e.g. ``memory_limit_bytes`` and
-        ``ordering`` for ``"direct"``, ``amg_options`` for ``"cg-amg"``.
+        ``ordering`` for ``"direct"``, ``theta``, ``max_coarse``, ``coarse_space``, ... for ``"cg-amg"``, ``amg_options`` for ``"cg-pyamg"``.
 
     Returns
     -------
@@ -839,7 +845,7 @@ def solve(
         Relative residual tolerance (default 1e-10).
     maxiter : int, optional
         Iteration limit; None takes the method's default (``max(1000, n)``
-        for ``"cg"`` and ``"cg-jacobi"``, 500 for ``"cg-amg"``).
+        for ``"cg"`` and ``"cg-jacobi"``, 500 for ``"cg-amg"`` and ``"cg-pyamg"``).
     x0 : array_like, shape (n,), optional
         Initial guess for iterative methods.
     dim, degree : int, optional
