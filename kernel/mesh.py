@@ -16,9 +16,8 @@ from functools import cached_property
 import numba as nb
 import numpy as np
 
-from .elements import REFERENCE_FACETS
 from .errors import MeshError
-from .topology import enumerate_entities, index_dtype
+from .topology import facet_topology, index_dtype
 
 __all__ = ["Mesh", "MeshQuality", "remove_unreferenced_vertices", "DEGENERACY_TOLERANCE"]
 
@@ -107,46 +106,94 @@ def _check_cells(cells, n_vertices):
     return first, code, count
 
 
-def _permutation_sign(p):
-    """+1 for an even permutation of 0..k-1 (a tuple), -1 for an odd one."""
-    inv = sum(1 for i in range(len(p)) for j in range(i + 1, len(p)) if p[i] > p[j])
-    return -1 if inv % 2 else 1
+@nb.njit(cache=True, parallel=True)
+def _copy_check_cells(src, n_vertices, out, codes, used):
+    """Copy ``src`` into ``out`` (both (m, k); may be the same array), code
+    each cell (0 fine, 1 an index out of range, 2 a repeated vertex) and mark
+    the vertices in use.  Returns the number of bad cells.
 
-
-def _check_folds(cells, local, ent, cell_ent, mult):
-    """Refuse a mesh that folds over itself: two cells on the same side of their facet.
-
-    Every cell is positively oriented (re-oriented before this runs), so the side
-    of a cell's opposite vertex, seen from its facet with the vertices in sorted
-    order, is the sign of the permutation from (facet in local order, opposite
-    vertex) to the cell order times the parity of sorting the facet's global
-    vertex ids: no arithmetic on coordinates.  The two cells of an interior
-    facet lie on opposite sides (sides sum to 0) unless the mesh is tangled.
+    Every write to ``used`` stores the same value 1, so the marks do not
+    depend on the order of the threads.
     """
-    m, k = cells.shape
-    positive = np.empty((m, local.shape[0]), dtype=bool)
-    for f in range(local.shape[0]):
-        lf = [int(v) for v in local[f]]
-        opposite = [v for v in range(k) if v not in lf][0]
-        odd = _permutation_sign(lf + [opposite]) < 0
-        for i in range(len(lf)):
-            for j in range(i + 1, len(lf)):
-                odd = odd ^ (cells[:, lf[i]] > cells[:, lf[j]])
-        positive[:, f] = ~odd
-    n_ent = ent.shape[0]
-    total = (2 * np.bincount(cell_ent[positive], minlength=n_ent)
-             - np.bincount(cell_ent.ravel(), minlength=n_ent))
-    folded = (mult == 2) & (total != 0)
-    if folded.any():
-        _refuse_duplicates(cells)
-        e = int(np.flatnonzero(folded)[0])
-        pair = np.flatnonzero((cell_ent == e).any(axis=1))
-        raise MeshError(
-            f"mesh: cells {int(pair[0])} and {int(pair[1])} lie on the same side of their "
-            f"shared facet with vertices {ent[e].tolist()} ({int(folded.sum())} such facets): "
-            "the mesh folds over itself (an inverted cell overlaps its neighbour, which "
-            "re-orienting cannot repair); move the vertices so that cells do not overlap"
-        )
+    m, k = src.shape
+    bad_cells = 0
+    for c in nb.prange(m):
+        bad = 0
+        for i in range(k):
+            v = src[c, i]
+            if v < 0 or v >= n_vertices:
+                bad = 1
+                break
+            for j in range(i):
+                if src[c, j] == v:
+                    bad = 2
+        codes[c] = bad
+        if bad == 0:
+            for i in range(k):
+                v = src[c, i]
+                out[c, i] = v
+                used[v] = 1
+        bad_cells += 1 if bad else 0
+    return bad_cells
+
+
+@nb.njit(cache=True, parallel=True)
+def _orient_cells(points, cells, tol, volume, codes):
+    """Volumes, degeneracy and orientation in one pass.
+
+    ``volume[c]`` gets |signed volume|; a cell with |volume| <= tol * (longest
+    edge)**d gets ``codes[c] = 3`` (degenerate); a negatively oriented cell
+    has its last two vertices swapped.  Returns (degenerate, re-oriented)
+    counts.
+    """
+    m = cells.shape[0]
+    d = points.shape[1]
+    n_degenerate = 0
+    n_negative = 0
+    for c in nb.prange(m):
+        longest = 0.0
+        for i in range(d + 1):
+            for j in range(i + 1, d + 1):
+                s = 0.0
+                for r in range(d):
+                    t = points[cells[c, j], r] - points[cells[c, i], r]
+                    s += t * t
+                if s > longest:
+                    longest = s
+        p0 = cells[c, 0]
+        if d == 2:
+            ax = points[cells[c, 1], 0] - points[p0, 0]
+            ay = points[cells[c, 1], 1] - points[p0, 1]
+            bx = points[cells[c, 2], 0] - points[p0, 0]
+            by = points[cells[c, 2], 1] - points[p0, 1]
+            vol = 0.5 * (ax * by - ay * bx)
+        else:
+            a0 = points[cells[c, 1], 0] - points[p0, 0]
+            a1 = points[cells[c, 1], 1] - points[p0, 1]
+            a2 = points[cells[c, 1], 2] - points[p0, 2]
+            b0 = points[cells[c, 2], 0] - points[p0, 0]
+            b1 = points[cells[c, 2], 1] - points[p0, 1]
+            b2 = points[cells[c, 2], 2] - points[p0, 2]
+            c0 = points[cells[c, 3], 0] - points[p0, 0]
+            c1 = points[cells[c, 3], 1] - points[p0, 1]
+            c2 = points[cells[c, 3], 2] - points[p0, 2]
+            vol = (a0 * (b1 * c2 - b2 * c1) - a1 * (b0 * c2 - b2 * c0)
+                   + a2 * (b0 * c1 - b1 * c0)) / 6.0
+        scale = np.sqrt(longest)
+        degenerate = abs(vol) <= tol * scale**d
+        if degenerate:
+            codes[c] = 3
+            volume[c] = vol
+        elif vol < 0:
+            t = cells[c, d - 1]
+            cells[c, d - 1] = cells[c, d]
+            cells[c, d] = t
+            volume[c] = -vol
+        else:
+            volume[c] = vol
+        n_degenerate += 1 if degenerate else 0
+        n_negative += 1 if (vol < 0 and not degenerate) else 0
+    return n_degenerate, n_negative
 
 
 def _refuse_duplicates(cells):
@@ -236,6 +283,10 @@ def _as_points(points):
 
 
 def _as_cells(cells, n_vertices, dim):
+    return _cells_and_use(cells, n_vertices, dim)[0]
+
+
+def _cells_and_use(cells, n_vertices, dim):
     try:
         c = np.asarray(cells)
     except Exception as exc:
@@ -262,11 +313,34 @@ def _as_cells(cells, n_vertices, dim):
                 f"0..{n_vertices - 1} ({int(big.sum())} such cells)"
             )
         c = c.astype(np.int64)
-    c64 = c if c.dtype.itemsize <= 8 else c.astype(np.int64)
-    first, code, count = _check_cells(c64, n_vertices)
-    if first >= 0:
-        i = int(first)
-        if code == 1:
+    return _checked_copy(c, n_vertices, dim)
+
+
+def _checked_copy(c, n_vertices, dim):
+    """A fresh C-contiguous copy of the cell table in the index dtype, and
+    whether each vertex is used (uint8); raises for an index out of range or a
+    repeated vertex, naming the first such cell."""
+    idt = index_dtype(n_vertices)
+    if c.dtype != idt:
+        # out-of-range values must not wrap in the conversion: check in numpy
+        bad = ((c < 0) | (c >= n_vertices)).any(axis=1)
+        if bad.any():
+            i = int(np.flatnonzero(bad)[0])
+            raise MeshError(
+                f"mesh cells: cell {i} has vertex indices {c[i].tolist()} outside "
+                f"0..{n_vertices - 1} ({int(bad.sum())} such cells)"
+            )
+        src = np.ascontiguousarray(c, dtype=idt)
+        out = src if src is not c and not np.shares_memory(src, c) else np.empty_like(src)
+    else:
+        src = c
+        out = np.empty(c.shape, dtype=idt)
+    codes = np.empty(c.shape[0], dtype=np.uint8)
+    used = np.zeros(n_vertices, dtype=np.uint8)
+    count = _copy_check_cells(src, n_vertices, out, codes, used)
+    if count:
+        i = int(np.flatnonzero(codes)[0])
+        if codes[i] == 1:
             raise MeshError(
                 f"mesh cells: cell {i} has vertex indices {c[i].tolist()} outside "
                 f"0..{n_vertices - 1} ({int(count)} such cells)"
@@ -275,7 +349,7 @@ def _as_cells(cells, n_vertices, dim):
             f"mesh cells: cell {i} repeats a vertex {c[i].tolist()} "
             f"({int(count)} such cells); each cell needs {dim + 1} distinct vertices"
         )
-    return np.array(c, dtype=index_dtype(n_vertices), order="C", copy=True)
+    return out, used
 
 
 def remove_unreferenced_vertices(points, cells):
@@ -340,36 +414,33 @@ class Mesh:
     def __init__(self, points, cells, *, facet_tags=None):
         p = _as_points(points)
         n, d = p.shape
-        c = _as_cells(cells, n, d)
+        c, used = _cells_and_use(cells, n, d)
         if facet_tags is not None and not hasattr(facet_tags, "items"):
             raise MeshError(
                 f"mesh facet_tags must be a dict of name -> boundary facet ids, got "
                 f"{type(facet_tags).__name__}")
-        used = np.bincount(c.ravel(), minlength=n)
-        if (used == 0).any():
-            i = int(np.flatnonzero(used == 0)[0])
+        if not used.all():
+            unused = np.flatnonzero(used == 0)
             raise MeshError(
-                f"mesh: vertex {i} belongs to no cell ({int((used == 0).sum())} such "
+                f"mesh: vertex {int(unused[0])} belongs to no cell ({unused.size} such "
                 "vertices); they would make the matrices singular. Remove them with "
                 "galerkit.mesh.remove_unreferenced_vertices(points, cells)"
             )
+        del used
         vol = np.empty(c.shape[0])
-        scale = np.empty(c.shape[0])
-        _geometry(p, c, vol, scale)
-        degenerate = np.abs(vol) <= DEGENERACY_TOLERANCE * scale**d
-        if degenerate.any():
-            i = int(np.flatnonzero(degenerate)[0])
+        codes = np.zeros(c.shape[0], dtype=np.uint8)
+        n_degenerate, n_negative = _orient_cells(p, c, DEGENERACY_TOLERANCE, vol, codes)
+        if n_degenerate:
+            i = int(np.flatnonzero(codes == 3)[0])
+            scale = np.sqrt(max(float(((p[c[i, a]] - p[c[i, b]]) ** 2).sum())
+                                for a in range(d + 1) for b in range(a + 1, d + 1)))
             raise MeshError(
                 f"mesh: cell {i} (vertices {c[i].tolist()}) is degenerate: volume "
-                f"{vol[i]:.3e} for longest edge {scale[i]:.3e} "
-                f"({int(degenerate.sum())} such cells); remove or repair them"
+                f"{vol[i]:.3e} for longest edge {scale:.3e} "
+                f"({int(n_degenerate)} such cells); remove or repair them"
             )
-        neg = vol < 0
-        self.n_reoriented = int(neg.sum())
-        if self.n_reoriented:
-            # swapping the last two vertices flips the orientation
-            c[neg, d - 1], c[neg, d] = c[neg, d].copy(), c[neg, d - 1].copy()
-            vol = np.abs(vol)
+        del codes
+        self.n_reoriented = int(n_negative)
         p.flags.writeable = False
         c.flags.writeable = False
         vol.flags.writeable = False
@@ -411,25 +482,27 @@ class Mesh:
     # -- topology -------------------------------------------------------------
     @cached_property
     def _facet_topology(self):
-        local = np.array(REFERENCE_FACETS[self.dim], dtype=np.int64)
-        ent, cell_ent, mult, first = enumerate_entities(self.cells, local, self.n_vertices)
-        if (mult > 2).any():
+        top = facet_topology(self.cells, self.n_vertices)
+        if top["shared"]:
             _refuse_duplicates(self.cells)
-            i = int(np.flatnonzero(mult > 2)[0])
+            verts, owners = top["shared_example"]
             raise MeshError(
-                f"mesh: facet with vertices {ent[i].tolist()} is shared by {int(mult[i])} "
+                f"mesh: facet with vertices {verts} is shared by {len(owners)} "
                 "cells (non-manifold); each facet may belong to one or two cells"
             )
-        _check_folds(self.cells, local, ent, cell_ent, mult)
-        del cell_ent
-        bnd = np.flatnonzero(mult == 1)
-        facets = np.ascontiguousarray(ent[bnd])
-        nf = local.shape[0]
-        fcell = (first[bnd] // nf).astype(index_dtype(self.n_cells))
-        flocal = (first[bnd] % nf).astype(np.int8)
+        if top["folded"]:
+            _refuse_duplicates(self.cells)
+            verts, owners = top["folded_example"]
+            raise MeshError(
+                f"mesh: cells {owners[0]} and {owners[1]} lie on the same side of their "
+                f"shared facet with vertices {verts} ({top['folded']} such facets): "
+                "the mesh folds over itself (an inverted cell overlaps its neighbour, which "
+                "re-orienting cannot repair); move the vertices so that cells do not overlap"
+            )
+        facets, fcell, flocal = top["facets"], top["facet_cells"], top["facet_local"]
         for a in (facets, fcell, flocal):
             a.flags.writeable = False
-        return facets, fcell, flocal, int(ent.shape[0])
+        return facets, fcell, flocal, top["n_facets"]
 
     @property
     def boundary_facets(self) -> np.ndarray:
