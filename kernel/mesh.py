@@ -240,6 +240,43 @@ def _duplicate_cells(cells):
     return (int(idx[first[inverse[t]]]), int(idx[t])), int(later.size)
 
 
+@nb.njit(cache=True)
+def _cell_components(cells, n_vertices, labels):
+    """Connected components through shared vertices: a union-find on the
+    vertices (roots are the smallest vertex of their set, path halving), then
+    components numbered in the order of their first cell.  Serial, so the
+    labels are the same for any thread count."""
+    parent = np.arange(n_vertices)
+    m, k = cells.shape
+    for c in range(m):
+        a = cells[c, 0]
+        while parent[a] != a:
+            parent[a] = parent[parent[a]]
+            a = parent[a]
+        for j in range(1, k):
+            b = cells[c, j]
+            while parent[b] != b:
+                parent[b] = parent[parent[b]]
+                b = parent[b]
+            if a < b:
+                parent[b] = a
+            elif b < a:
+                parent[a] = b
+                a = b
+    # parent[v] <= v, so one ascending pass leaves every vertex on its root
+    for v in range(n_vertices):
+        parent[v] = parent[parent[v]]
+    rank = np.full(n_vertices, -1, dtype=np.int64)
+    count = 0
+    for c in range(m):
+        r = parent[cells[c, 0]]
+        if rank[r] < 0:
+            rank[r] = count
+            count += 1
+        labels[c] = rank[r]
+    return count
+
+
 @dataclass(frozen=True)
 class MeshQuality:
     """Summary of cell sizes and shapes (see :meth:`Mesh.quality`).
@@ -628,9 +665,8 @@ class Mesh:
 
         Two cells are connected when they share a vertex (continuous Lagrange
         elements couple them through that vertex's dof).  The components are
-        found by ``scipy.sparse.csgraph.connected_components`` on this cell
-        adjacency, stored as a graph on the vertices (each cell joins its
-        vertices).
+        found by a union-find over the vertices (each cell joins its
+        vertices), compiled and serial.
 
         Returns
         -------
@@ -652,29 +688,10 @@ class Mesh:
 
     @cached_property
     def _components(self):
-        import scipy.sparse as sp
-        from scipy.sparse.csgraph import connected_components
-
-        # the cells' adjacency through shared vertices, as a graph on the
-        # vertices: each cell joins its first vertex to its others (rows grouped
-        # by first vertex: CSR without a COO conversion)
-        n = self.n_vertices
-        first_vertex = self.cells[:, 0]
-        order = np.argsort(first_vertex, kind="stable")
-        k = self.cells.shape[1] - 1
-        indptr = np.zeros(n + 1, dtype=np.int64)
-        np.cumsum(np.bincount(first_vertex, minlength=n) * k, out=indptr[1:])
-        cols = np.ascontiguousarray(self.cells[order, 1:]).ravel()
-        graph = sp.csr_array((np.ones(cols.size, dtype=np.int8), cols, indptr), shape=(n, n))
-        _, vertex_label = connected_components(graph, directed=False)
-        labels = vertex_label[first_vertex]
-        # number the components by their first cell
-        _, first, inverse = np.unique(labels, return_index=True, return_inverse=True)
-        rank = np.empty(first.size, dtype=np.int64)
-        rank[np.argsort(first, kind="stable")] = np.arange(first.size)
-        labels = rank[inverse.ravel()]
+        labels = np.empty(self.n_cells, dtype=np.int64)
+        count = _cell_components(self.cells, self.n_vertices, labels)
         labels.flags.writeable = False
-        return int(first.size), labels
+        return int(count), labels
 
     # -- quality ---------------------------------------------------------------
     def cell_quality(self) -> np.ndarray:

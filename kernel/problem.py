@@ -228,8 +228,11 @@ class PoissonProblem:
         fixed_dofs, fixed_vals = self._dirichlet(asm.disc)
         # components without Dirichlet dofs or Robin terms are pure Neumann
         n_comp, cell_label = self.mesh.connected_components()
-        dof_label = np.empty(asm.n_dofs, dtype=np.int64)
-        dof_label[asm.disc.cell_dofs] = cell_label[:, None]
+        if n_comp == 1:
+            dof_label = np.zeros(asm.n_dofs, dtype=np.int64)
+        else:
+            dof_label = np.empty(asm.n_dofs, dtype=np.int64)
+            dof_label[asm.disc.cell_dofs] = cell_label[:, None]
         anchored = np.zeros(n_comp, dtype=bool)
         anchored[dof_label[fixed_dofs]] = True
         anchored[dof_label[robin_diagonal > 0]] = True
