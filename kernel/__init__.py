@@ -17,7 +17,7 @@ _nb.get_num_threads()
 
 from .errors import *  # noqa: F401,F403
 from . import compilation  # noqa: F401  (counts compile time from the first kernel on)
-from .mesh import Mesh, MeshQuality, remove_unreferenced_vertices
+from .mesh import Mesh, MeshQuality, remove_unreferenced_vertices, merge_duplicate_vertices
 from .generators import structured_triangles, structured_tetrahedra, l_shaped_triangles
 from .quadrature import QuadratureRule, simplex_quadrature
 from .elements import LagrangeElement, lagrange_element

@@ -86,7 +86,7 @@ def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0)) -> Mesh:
     cells = np.empty((2 * v00.size, 3), dtype=np.int64)
     cells[0::2] = np.stack([v00, v10, v11], axis=1)
     cells[1::2] = np.stack([v00, v11, v01], axis=1)
-    mesh = Mesh(pts, cells)
+    mesh = Mesh(pts, cells, check_coincident=False)  # grid points are distinct
     return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny))
 
 
@@ -135,7 +135,7 @@ def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.
         for j, col in enumerate(cols):
             cells[:, t, j] = col
     cells = cells.reshape(-1, 4)
-    mesh = Mesh(pts, cells)
+    mesh = Mesh(pts, cells, check_coincident=False)  # grid points are distinct
     return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny, nz))
 
 
@@ -158,7 +158,7 @@ def l_shaped_triangles(n) -> Mesh:
     centroid = sq.points[sq.cells].mean(axis=1)
     keep = ~((centroid[:, 0] > 0) & (centroid[:, 1] < 0))
     pts, cells, _ = remove_unreferenced_vertices(sq.points, sq.cells[keep])
-    mesh = Mesh(pts, cells)
+    mesh = Mesh(pts, cells, check_coincident=False)
     x = mesh.facet_midpoints()
     tol = 1e-8 / n
     sides = {

@@ -19,10 +19,13 @@ import numpy as np
 from .errors import MeshError
 from .topology import facet_topology, index_dtype
 
-__all__ = ["Mesh", "MeshQuality", "remove_unreferenced_vertices", "DEGENERACY_TOLERANCE"]
+__all__ = ["Mesh", "MeshQuality", "remove_unreferenced_vertices", "merge_duplicate_vertices",
+           "DEGENERACY_TOLERANCE", "COINCIDENCE_TOLERANCE"]
 
 #: a cell is degenerate when |volume| <= tol * (longest edge)**d.
 DEGENERACY_TOLERANCE = 1e-12
+#: two vertices coincide when their distance is <= tol * the shortest edge at either.
+COINCIDENCE_TOLERANCE = 1e-10
 
 
 @nb.njit(cache=True, parallel=True)
@@ -413,6 +416,125 @@ def remove_unreferenced_vertices(points, cells):
     return points[used], old_to_new[cells], old_to_new
 
 
+@nb.njit(cache=True)
+def _shortest_edges(points, cells, h):
+    """``h[v]``: length of the shortest edge at vertex ``v`` (a minimum: the
+    same whatever the order)."""
+    m, k = cells.shape
+    d = points.shape[1]
+    for v in range(h.shape[0]):
+        h[v] = np.inf
+    for c in range(m):
+        for i in range(k):
+            a = cells[c, i]
+            for j in range(i + 1, k):
+                b = cells[c, j]
+                s = 0.0
+                for r in range(d):
+                    t = points[a, r] - points[b, r]
+                    s += t * t
+                length = np.sqrt(s)
+                if length < h[a]:
+                    h[a] = length
+                if length < h[b]:
+                    h[b] = length
+
+
+def _coincident_pairs(points, cells, tolerance):
+    """Pairs ``(i, j)``, ``i < j``, of distinct vertices closer than ``tolerance``
+    times the shorter of their shortest edges (an array of shape (p, 2), sorted).
+
+    Vertices are binned on a grid of the largest tolerance, twice (the second
+    grid shifted by half a bin), and compared inside each bin.
+    """
+    h = np.empty(points.shape[0])
+    _shortest_edges(points, cells, h)
+    tol = tolerance * h
+    q = float(tol.max())
+    if not np.isfinite(q) or q <= 0.0:
+        return np.empty((0, 2), dtype=np.int64)
+    scale = np.abs(points).max() + 1.0
+    if q < scale * 1e-15:  # below round-off of the coordinates: exact repeats only
+        q = scale * 1e-15
+    found = []
+    for shift in (0.0, 0.5):
+        key = np.floor(points / q + shift).astype(np.int64)
+        order = np.lexsort(key.T[::-1])
+        ks = key[order]
+        same = (ks[1:] == ks[:-1]).all(axis=1)
+        if not same.any():
+            continue
+        # runs of one bin: compare every member with the run's later members
+        starts = np.flatnonzero(np.concatenate([[True], ~same]))
+        ends = np.concatenate([starts[1:], [order.size]])
+        for a, b in zip(starts[ends - starts > 1], ends[ends - starts > 1]):
+            members = order[a:b]
+            for x in range(members.size):
+                for y in range(x + 1, members.size):
+                    i, j = int(members[x]), int(members[y])
+                    d = float(np.sqrt(((points[i] - points[j]) ** 2).sum()))
+                    if d <= min(tol[i], tol[j]):
+                        found.append((min(i, j), max(i, j)))
+    if not found:
+        return np.empty((0, 2), dtype=np.int64)
+    return np.unique(np.array(found, dtype=np.int64), axis=0)
+
+
+def merge_duplicate_vertices(points, cells, *, tolerance=None):
+    """Merge vertices that lie at the same place into one vertex.
+
+    A mesh whose parts were generated separately, or a file with nodes
+    repeated along an interface, can hold two vertex ids at one point: the
+    cells on either side are then not connected, and the domain is cut
+    apart there.  :class:`Mesh` refuses such vertices; this function joins
+    them (each group keeps its smallest id's coordinates) and drops the ids
+    no cell uses any more.
+
+    Parameters
+    ----------
+    points : array_like, shape (n, d)
+    cells : array_like, shape (m, d + 1), integer
+    tolerance : float, optional
+        Relative to the shortest edge at either vertex (default
+        ``COINCIDENCE_TOLERANCE``).
+
+    Returns
+    -------
+    points : ndarray, shape (n_merged, d)
+    cells : ndarray, shape (m, d + 1)
+    old_to_new : ndarray, shape (n,), int64 (-1 for a vertex no cell used)
+
+    Examples
+    --------
+    >>> pts = [[0, 0], [1, 0], [0, 1], [1, 0], [1, 1], [0, 1]]
+    >>> p, c, old_to_new = merge_duplicate_vertices(pts, [[0, 1, 2], [3, 4, 5]])
+    >>> len(p), c.tolist()
+    (4, [[0, 1, 2], [1, 3, 2]])
+    """
+    p = _as_points(points)
+    c = _as_cells(cells, p.shape[0], p.shape[1])
+    tol = COINCIDENCE_TOLERANCE if tolerance is None else float(tolerance)
+    if not (np.isfinite(tol) and 0 <= tol < 0.5):
+        raise MeshError(f"merge_duplicate_vertices: tolerance must be in [0, 0.5), got {tolerance!r}")
+    pairs = _coincident_pairs(p, c, tol)
+    target = np.arange(p.shape[0])
+    # join each pair's groups to the smallest id (few pairs: plain loops)
+    for i, j in pairs.tolist():
+        while target[i] != i:
+            i = int(target[i])
+        while target[j] != j:
+            j = int(target[j])
+        if i != j:
+            target[max(i, j)] = min(i, j)
+    for v in range(target.size):  # target[v] <= v: one pass reaches the roots
+        target[v] = target[target[v]]
+    merged = target[c]
+    pts, new_cells, old_to_new = remove_unreferenced_vertices(p, merged)
+    # a vertex that was merged away maps to its group's representative
+    old_to_new = old_to_new[target]
+    return pts, new_cells, old_to_new
+
+
 class Mesh:
     """A validated triangle (2D) or tetrahedron (3D) mesh.
 
@@ -425,6 +547,11 @@ class Mesh:
         re-oriented (two vertices swapped) and counted in ``n_reoriented``.
     facet_tags : dict, optional
         ``name -> boundary facet ids`` to start with.
+    check_coincident : bool, default True
+        Refuse distinct vertices at one place (see
+        :func:`merge_duplicate_vertices`).  The generators and
+        :func:`~galerkit.refine_uniform` pass False: their vertices are
+        distinct by construction.
 
     Raises
     ------
@@ -433,7 +560,9 @@ class Mesh:
         a cell repeating a vertex, two cells with the same vertex set (both
         named), a degenerate cell (|volume| below
         ``DEGENERACY_TOLERANCE * longest_edge**d``), a vertex no cell uses
-        (remove them with :func:`remove_unreferenced_vertices`), a facet
+        (remove them with :func:`remove_unreferenced_vertices`), two distinct
+        vertices at one place (merge them with
+        :func:`merge_duplicate_vertices`), a facet
         shared by more than two cells, two cells on the same side of their
         shared facet (a folded mesh: an inverted cell overlapping its
         neighbour), or ``facet_tags`` that is not a dict of valid ids.  The
@@ -448,7 +577,7 @@ class Mesh:
     (4, 2)
     """
 
-    def __init__(self, points, cells, *, facet_tags=None):
+    def __init__(self, points, cells, *, facet_tags=None, check_coincident=True):
         p = _as_points(points)
         n, d = p.shape
         c, used = _cells_and_use(cells, n, d)
@@ -477,6 +606,16 @@ class Mesh:
                 f"({int(n_degenerate)} such cells); remove or repair them"
             )
         del codes
+        if check_coincident:
+            pairs = _coincident_pairs(p, c, COINCIDENCE_TOLERANCE)
+            if pairs.size:
+                shown = ", ".join(f"{i} and {j}" for i, j in pairs[:3].tolist())
+                raise MeshError(
+                    f"mesh: vertices {shown} lie at the same place ({len(pairs)} such pairs, "
+                    f"closer than {COINCIDENCE_TOLERANCE:g} x the shortest edge there) but "
+                    "are distinct vertices, which cuts the domain apart between their cells. "
+                    "Merge them with galerkit.mesh.merge_duplicate_vertices(points, cells) "
+                    "and build the mesh from its result")
         self.n_reoriented = int(n_negative)
         p.flags.writeable = False
         c.flags.writeable = False

@@ -87,7 +87,8 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     points = np.ascontiguousarray(points[order])
     parents = np.ascontiguousarray(parents[order])
     children = new_id[children].astype(cells.dtype)
-    fine = Mesh(points, children)
+    # midpoints of distinct edges of a valid (unfolded) mesh are distinct points
+    fine = Mesh(points, children, check_coincident=False)
     fine.parent = mesh
     fine.parent_cells = np.repeat(np.arange(mesh.n_cells), n_children)
     fine.vertex_parents = parents
