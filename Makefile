@@ -4,7 +4,7 @@ VENV   := .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: venv demo test bench clean clean-cache mpi test-mpi
+.PHONY: venv warm-up demo test bench clean clean-cache mpi test-mpi
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -14,10 +14,19 @@ $(STAMP): pyproject.toml
 
 venv: $(STAMP)
 
-demo: $(STAMP)
+# Compile the common kernels once, ahead of the first run (`galerkit warm-up`);
+# redone when a kernel source changes (numba recompiles only what changed).
+WARM := $(VENV)/.warm
+$(WARM): $(STAMP) $(wildcard kernel/*.py bindings/*.py)
+	$(VENV)/bin/galerkit --quiet warm-up
+	touch $(WARM)
+
+warm-up: $(WARM)
+
+demo: $(WARM)
 	$(VENV)/bin/galerkit demo
 
-test: $(STAMP)
+test: $(WARM)
 	$(PY) -m pytest -q
 
 # Optional distributed engine (galerkit[mpi]): MPICH and LAPACK from Debian,
@@ -60,3 +69,4 @@ clean: clean-cache
 # function from another file is not recompiled when only that file changes.
 clean-cache:
 	find kernel bindings -name '*.nbi' -o -name '*.nbc' | xargs rm -f
+	rm -f $(WARM)

@@ -1,6 +1,14 @@
 """galerkit: Lagrange finite elements on triangles and tetrahedra."""
 
+import os as _os
+
 import numba as _nb
+
+# GALERKIT_CACHE_DIR: where the compiled kernels are cached (see compilation.py);
+# numba reads its cache folder when each kernel module is imported, below.
+if _os.environ.get("GALERKIT_CACHE_DIR") and not _os.environ.get("NUMBA_CACHE_DIR"):
+    _os.environ["NUMBA_CACHE_DIR"] = _os.path.expanduser(_os.environ["GALERKIT_CACHE_DIR"])
+    _nb.config.reload_config()
 
 # Start numba's thread pool before any cached kernel is loaded: a cached serial
 # function that calls a parallel one can otherwise fail to resolve the
@@ -8,7 +16,8 @@ import numba as _nb
 _nb.get_num_threads()
 
 from .errors import *  # noqa: F401,F403
-from .mesh import Mesh, MeshQuality, remove_unreferenced_vertices
+from . import compilation  # noqa: F401  (counts compile time from the first kernel on)
+from .mesh import Mesh, MeshQuality, remove_unreferenced_vertices, merge_duplicate_vertices
 from .generators import structured_triangles, structured_tetrahedra, l_shaped_triangles
 from .quadrature import QuadratureRule, simplex_quadrature
 from .elements import LagrangeElement, lagrange_element

@@ -17,60 +17,71 @@ import numpy as np
 import scipy.sparse as sp
 
 from .errors import InputError
+from .topology import index_dtype
 from .solvers import _check_csr_structure
 
 __all__ = ["DirichletElimination", "dirichlet_values"]
 
 
-@nb.njit(cache=True)
-def _reduced_pattern(indptr, indices, new_index, n_free):
-    rptr = np.zeros(n_free + 1, dtype=np.int64)
-    n = indptr.shape[0] - 1
-    for i in range(n):
-        r = new_index[i]
-        if r < 0:
-            continue
-        cnt = 0
-        for j in range(indptr[i], indptr[i + 1]):
-            if new_index[indices[j]] >= 0:
-                cnt += 1
-        rptr[r + 1] = cnt
-    for r in range(n_free):
-        rptr[r + 1] += rptr[r]
-    nnz = rptr[n_free]
-    rind = np.empty(nnz, dtype=indices.dtype)
-    src = np.empty(nnz, dtype=np.int64)
-    for i in range(n):
-        r = new_index[i]
-        if r < 0:
-            continue
+@nb.njit(cache=True, parallel=True)
+def _reduced_pattern(indptr, indices, new_index, free, rptr, rind):
+    """Row lengths (first call, ``rind`` empty) or columns (second call) of
+    ``A_ff``; each free row is walked by one thread, in column order."""
+    n_free = free.shape[0]
+    if rind.shape[0] == 0:
+        for r in nb.prange(n_free):
+            i = free[r]
+            cnt = 0
+            for j in range(indptr[i], indptr[i + 1]):
+                if new_index[indices[j]] >= 0:
+                    cnt += 1
+            rptr[r + 1] = cnt
+        return
+    for r in nb.prange(n_free):
+        i = free[r]
         pos = rptr[r]
         for j in range(indptr[i], indptr[i + 1]):
             cnew = new_index[indices[j]]
             if cnew >= 0:
                 rind[pos] = cnew
-                src[pos] = j
                 pos += 1
-    return rptr, rind, src
 
 
 @nb.njit(cache=True, parallel=True)
-def _gather(data, src, out):
-    for j in nb.prange(src.shape[0]):
-        out[j] = data[src[j]]
+def _reduce(indptr, indices, data, new_index, free, rptr, out, lift, b, g_full, rhs):
+    """``A_ff`` values into ``out`` and, when ``lift``, ``b_f - A_fd g`` into ``rhs``.
 
-
-@nb.njit(cache=True, parallel=True)
-def _lift(indptr, indices, data, new_index, free, b, g_full, out):
-    # out[r] = b[i] - sum_{j Dirichlet} A_ij g_j for free row i = free[r]
-    for r in nb.prange(free.shape[0]):
-        i = free[r]
-        s = b[i]
+    One walk over the stored entries of every row: free rows copy their free
+    columns in order (the reduced pattern) and sum their Dirichlet columns
+    times ``g`` in column order (fixed order: the same bits for any thread
+    count).  Returns the number of non-finite entries of ``A`` (all rows).
+    """
+    n = indptr.shape[0] - 1
+    write = out.shape[0] > 0
+    bad = 0
+    for i in nb.prange(n):
+        r = new_index[i]
+        if r < 0:
+            for j in range(indptr[i], indptr[i + 1]):
+                if not np.isfinite(data[j]):
+                    bad += 1
+            continue
+        pos = rptr[r]
+        s = b[i] if lift else 0.0
         for j in range(indptr[i], indptr[i + 1]):
+            a = data[j]
+            if not np.isfinite(a):
+                bad += 1
             c = indices[j]
-            if new_index[c] < 0:
-                s -= data[j] * g_full[c]
-        out[r] = s
+            if new_index[c] >= 0:
+                if write:
+                    out[pos] = a
+                    pos += 1
+            elif lift:
+                s -= a * g_full[c]
+        if lift:
+            rhs[r] = s
+    return bad
 
 
 class DirichletElimination:
@@ -123,18 +134,43 @@ class DirichletElimination:
         self.n = n
         self.dofs = dofs
         self._given = given
-        new_index = np.zeros(n, dtype=np.int64)
+        idt = index_dtype(n)
+        new_index = np.zeros(n, dtype=idt)
         new_index[dofs] = -1
-        free = np.flatnonzero(new_index == 0)
-        new_index[free] = np.arange(free.size)
+        free = np.flatnonzero(new_index == 0).astype(idt)
+        new_index[free] = np.arange(free.size, dtype=idt)
+        for arr in (dofs, free, new_index):
+            arr.flags.writeable = False
         self.free = free
         self.new_index = new_index
         self._indptr, self._indices = A.indptr, A.indices
-        rptr, rind, src = _reduced_pattern(A.indptr, A.indices, new_index, free.size)
-        idt = A.indices.dtype
-        self.reduced_indptr = rptr.astype(idt)
+        # the reduced pattern, once: row lengths, then columns (no map back to
+        # the full matrix: the numeric phase walks the full rows again)
+        pdt = A.indices.dtype
+        rptr = np.zeros(free.size + 1, dtype=np.int64)
+        _reduced_pattern(A.indptr, A.indices, new_index, free, rptr, np.empty(0, pdt))
+        np.cumsum(rptr, out=rptr)
+        nnz = int(rptr[-1])
+        if pdt.itemsize < 8 and nnz >= 2**31:
+            pdt = np.dtype(np.int64)
+        rind = np.empty(nnz, dtype=pdt)
+        _reduced_pattern(A.indptr, A.indices, new_index, free, rptr, rind)
+        self.reduced_indptr = rptr.astype(pdt) if pdt != rptr.dtype else rptr
         self.reduced_indices = rind
-        self._src = src
+        for arr in (self.reduced_indptr, rind):
+            arr.flags.writeable = False
+        self._nnz = nnz
+        self._no_rhs = np.empty(0)
+
+    @property
+    def nnz(self) -> int:
+        """Stored entries of the reduced matrix."""
+        return self._nnz
+
+    def memory_bytes(self) -> int:
+        """Bytes held by the elimination (maps and the reduced pattern)."""
+        return int(sum(a.nbytes for a in (self.dofs, self.free, self.new_index,
+                                          self.reduced_indptr, self.reduced_indices)))
 
     @property
     def n_free(self) -> int:
@@ -154,12 +190,6 @@ class DirichletElimination:
             raise InputError(
                 f"DirichletElimination: the matrix data must be real with "
                 f"{int(self._indptr[-1])} entries, got {A.data.dtype} of shape {A.data.shape}")
-        if not np.isfinite(A.data).all():
-            k = int(np.flatnonzero(~np.isfinite(A.data))[0])
-            row = int(np.searchsorted(self._indptr, k, side="right") - 1)
-            raise InputError(
-                f"DirichletElimination: the matrix has a non-finite entry "
-                f"{float(A.data[k])!r} in row {row}; check the coefficients that produced it")
 
     def _full_values(self, values):
         """Dirichlet values as a full vector (zero on free dofs).
@@ -192,31 +222,58 @@ class DirichletElimination:
                 f"dof given), got shape {v.shape}")
         return g_full
 
-    def reduce_matrix(self, A, out=None):
-        """``A_ff`` as a CSR array (in place into ``out`` when given)."""
-        self._check(A)
-        if out is None:
-            data = np.empty(self._src.size)
-            _gather(A.data, self._src, data)
-            R = sp.csr_array((data, self.reduced_indices, self.reduced_indptr),
-                             shape=(self.n_free, self.n_free), copy=False)
-            R.has_sorted_indices = True
-            return R
+    def _run(self, A, out, b=None, g_full=None, rhs=None):
+        """One pass of the numeric kernel; refuses non-finite entries of ``A``."""
+        data = A.data if A.data.dtype == np.float64 else A.data.astype(np.float64)
+        lift = rhs is not None
+        if not lift:
+            b = g_full = rhs = self._no_rhs
+        bad = _reduce(self._indptr, self._indices, data, self.new_index, self.free,
+                      self.reduced_indptr, out, lift, b, g_full, rhs)
+        if bad:
+            k = int(np.flatnonzero(~np.isfinite(data[:int(self._indptr[-1])]))[0])
+            row = int(np.searchsorted(self._indptr, k, side="right") - 1)
+            raise InputError(
+                f"DirichletElimination: the matrix has a non-finite entry "
+                f"{float(data[k])!r} in row {row} ({int(bad)} such entries); check the "
+                "coefficients that produced it")
+
+    def _new_matrix(self, data):
+        R = sp.csr_array((data, self.reduced_indices, self.reduced_indptr),
+                         shape=(self.n_free, self.n_free), copy=False)
+        R.has_sorted_indices = True
+        return R
+
+    def _check_out(self, out):
         # Fix: validate out= before the kernel writes into it (a too small
         # data array was written past its end)
         if not (sp.issparse(out) and out.format == "csr" and out.shape == (self.n_free, self.n_free)
                 and out.data.dtype == np.float64 and out.data.flags.c_contiguous
-                and out.data.flags.writeable and out.data.shape == self._src.shape
-                and np.array_equal(out.indptr, self.reduced_indptr)
-                and np.array_equal(out.indices, self.reduced_indices)):
+                and out.data.flags.writeable and out.data.shape == (self._nnz,)
+                and (out.indptr is self.reduced_indptr
+                     or np.array_equal(out.indptr, self.reduced_indptr))
+                and (out.indices is self.reduced_indices
+                     or np.array_equal(out.indices, self.reduced_indices))):
             raise InputError("DirichletElimination: out= must be a matrix returned earlier by "
                              "reduce_matrix of this elimination (same reduced pattern, float64 data)")
-        _gather(A.data, self._src, out.data)
+
+    def reduce_matrix(self, A, out=None):
+        """``A_ff`` as a CSR array (in place into ``out`` when given).
+
+        The result shares the reduced pattern (``reduced_indptr``,
+        ``reduced_indices``, read-only) with every other matrix of this
+        elimination; in place, nothing is allocated.
+        """
+        self._check(A)
+        if out is None:
+            data = np.empty(self._nnz)
+            self._run(A, data)
+            return self._new_matrix(data)
+        self._check_out(out)
+        self._run(A, out.data)
         return out
 
-    def reduce_rhs(self, A, b, values):
-        """``b_f - A_fd g`` for Dirichlet values ``g`` (one per Dirichlet dof)."""
-        self._check(A)
+    def _rhs_inputs(self, b, values):
         g_full = self._full_values(values)
         try:
             b = np.asarray(b)
@@ -227,13 +284,34 @@ class DirichletElimination:
         b = np.ascontiguousarray(b, dtype=np.float64)
         if b.shape != (self.n,):  # Fix: the kernel read past the end of a short b
             raise InputError(f"DirichletElimination: rhs must have shape ({self.n},), got {b.shape}")
-        out = np.empty(self.n_free)
-        _lift(A.indptr, A.indices, A.data, self.new_index, self.free, b, g_full, out)
-        return out
+        return b, g_full
 
-    def reduce(self, A, b, values):
-        """Both: ``(A_ff, b_f - A_fd g)``."""
-        return self.reduce_matrix(A), self.reduce_rhs(A, b, values)
+    def reduce_rhs(self, A, b, values):
+        """``b_f - A_fd g`` for Dirichlet values ``g`` (one per Dirichlet dof)."""
+        self._check(A)
+        b, g_full = self._rhs_inputs(b, values)
+        rhs = np.empty(self.n_free)
+        self._run(A, self._no_rhs, b, g_full, rhs)  # an empty out: the values are not written
+        return rhs
+
+    def reduce(self, A, b, values, *, out=None):
+        """Both, in one pass over ``A``: ``(A_ff, b_f - A_fd g)``.
+
+        With ``out`` (a matrix from an earlier ``reduce``/``reduce_matrix`` of
+        this elimination) the matrix is re-reduced in place: every stored
+        entry of ``A`` is read once and nothing but the right-hand side is
+        allocated.
+        """
+        self._check(A)
+        b, g_full = self._rhs_inputs(b, values)
+        rhs = np.empty(self.n_free)
+        if out is None:
+            data = np.empty(self._nnz)
+            self._run(A, data, b, g_full, rhs)
+            return self._new_matrix(data), rhs
+        self._check_out(out)
+        self._run(A, out.data, b, g_full, rhs)
+        return out, rhs
 
     def expand(self, u_free, values):
         """The full vector from the free part and the Dirichlet values."""

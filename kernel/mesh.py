@@ -16,14 +16,16 @@ from functools import cached_property
 import numba as nb
 import numpy as np
 
-from .elements import REFERENCE_FACETS
 from .errors import MeshError
-from .topology import enumerate_entities, index_dtype
+from .topology import facet_topology, index_dtype
 
-__all__ = ["Mesh", "MeshQuality", "remove_unreferenced_vertices", "DEGENERACY_TOLERANCE"]
+__all__ = ["Mesh", "MeshQuality", "remove_unreferenced_vertices", "merge_duplicate_vertices",
+           "DEGENERACY_TOLERANCE", "COINCIDENCE_TOLERANCE"]
 
 #: a cell is degenerate when |volume| <= tol * (longest edge)**d.
 DEGENERACY_TOLERANCE = 1e-12
+#: two vertices coincide when their distance is <= tol * the shortest edge at either.
+COINCIDENCE_TOLERANCE = 1e-10
 
 
 @nb.njit(cache=True, parallel=True)
@@ -107,46 +109,94 @@ def _check_cells(cells, n_vertices):
     return first, code, count
 
 
-def _permutation_sign(p):
-    """+1 for an even permutation of 0..k-1 (a tuple), -1 for an odd one."""
-    inv = sum(1 for i in range(len(p)) for j in range(i + 1, len(p)) if p[i] > p[j])
-    return -1 if inv % 2 else 1
+@nb.njit(cache=True, parallel=True)
+def _copy_check_cells(src, n_vertices, out, codes, used):
+    """Copy ``src`` into ``out`` (both (m, k); may be the same array), code
+    each cell (0 fine, 1 an index out of range, 2 a repeated vertex) and mark
+    the vertices in use.  Returns the number of bad cells.
 
-
-def _check_folds(cells, local, ent, cell_ent, mult):
-    """Refuse a mesh that folds over itself: two cells on the same side of their facet.
-
-    Every cell is positively oriented (re-oriented before this runs), so the side
-    of a cell's opposite vertex, seen from its facet with the vertices in sorted
-    order, is the sign of the permutation from (facet in local order, opposite
-    vertex) to the cell order times the parity of sorting the facet's global
-    vertex ids: no arithmetic on coordinates.  The two cells of an interior
-    facet lie on opposite sides (sides sum to 0) unless the mesh is tangled.
+    Every write to ``used`` stores the same value 1, so the marks do not
+    depend on the order of the threads.
     """
-    m, k = cells.shape
-    positive = np.empty((m, local.shape[0]), dtype=bool)
-    for f in range(local.shape[0]):
-        lf = [int(v) for v in local[f]]
-        opposite = [v for v in range(k) if v not in lf][0]
-        odd = _permutation_sign(lf + [opposite]) < 0
-        for i in range(len(lf)):
-            for j in range(i + 1, len(lf)):
-                odd = odd ^ (cells[:, lf[i]] > cells[:, lf[j]])
-        positive[:, f] = ~odd
-    n_ent = ent.shape[0]
-    total = (2 * np.bincount(cell_ent[positive], minlength=n_ent)
-             - np.bincount(cell_ent.ravel(), minlength=n_ent))
-    folded = (mult == 2) & (total != 0)
-    if folded.any():
-        _refuse_duplicates(cells)
-        e = int(np.flatnonzero(folded)[0])
-        pair = np.flatnonzero((cell_ent == e).any(axis=1))
-        raise MeshError(
-            f"mesh: cells {int(pair[0])} and {int(pair[1])} lie on the same side of their "
-            f"shared facet with vertices {ent[e].tolist()} ({int(folded.sum())} such facets): "
-            "the mesh folds over itself (an inverted cell overlaps its neighbour, which "
-            "re-orienting cannot repair); move the vertices so that cells do not overlap"
-        )
+    m, k = src.shape
+    bad_cells = 0
+    for c in nb.prange(m):
+        bad = 0
+        for i in range(k):
+            v = src[c, i]
+            if v < 0 or v >= n_vertices:
+                bad = 1
+                break
+            for j in range(i):
+                if src[c, j] == v:
+                    bad = 2
+        codes[c] = bad
+        if bad == 0:
+            for i in range(k):
+                v = src[c, i]
+                out[c, i] = v
+                used[v] = 1
+        bad_cells += 1 if bad else 0
+    return bad_cells
+
+
+@nb.njit(cache=True, parallel=True)
+def _orient_cells(points, cells, tol, volume, codes):
+    """Volumes, degeneracy and orientation in one pass.
+
+    ``volume[c]`` gets |signed volume|; a cell with |volume| <= tol * (longest
+    edge)**d gets ``codes[c] = 3`` (degenerate); a negatively oriented cell
+    has its last two vertices swapped.  Returns (degenerate, re-oriented)
+    counts.
+    """
+    m = cells.shape[0]
+    d = points.shape[1]
+    n_degenerate = 0
+    n_negative = 0
+    for c in nb.prange(m):
+        longest = 0.0
+        for i in range(d + 1):
+            for j in range(i + 1, d + 1):
+                s = 0.0
+                for r in range(d):
+                    t = points[cells[c, j], r] - points[cells[c, i], r]
+                    s += t * t
+                if s > longest:
+                    longest = s
+        p0 = cells[c, 0]
+        if d == 2:
+            ax = points[cells[c, 1], 0] - points[p0, 0]
+            ay = points[cells[c, 1], 1] - points[p0, 1]
+            bx = points[cells[c, 2], 0] - points[p0, 0]
+            by = points[cells[c, 2], 1] - points[p0, 1]
+            vol = 0.5 * (ax * by - ay * bx)
+        else:
+            a0 = points[cells[c, 1], 0] - points[p0, 0]
+            a1 = points[cells[c, 1], 1] - points[p0, 1]
+            a2 = points[cells[c, 1], 2] - points[p0, 2]
+            b0 = points[cells[c, 2], 0] - points[p0, 0]
+            b1 = points[cells[c, 2], 1] - points[p0, 1]
+            b2 = points[cells[c, 2], 2] - points[p0, 2]
+            c0 = points[cells[c, 3], 0] - points[p0, 0]
+            c1 = points[cells[c, 3], 1] - points[p0, 1]
+            c2 = points[cells[c, 3], 2] - points[p0, 2]
+            vol = (a0 * (b1 * c2 - b2 * c1) - a1 * (b0 * c2 - b2 * c0)
+                   + a2 * (b0 * c1 - b1 * c0)) / 6.0
+        scale = np.sqrt(longest)
+        degenerate = abs(vol) <= tol * scale**d
+        if degenerate:
+            codes[c] = 3
+            volume[c] = vol
+        elif vol < 0:
+            t = cells[c, d - 1]
+            cells[c, d - 1] = cells[c, d]
+            cells[c, d] = t
+            volume[c] = -vol
+        else:
+            volume[c] = vol
+        n_degenerate += 1 if degenerate else 0
+        n_negative += 1 if (vol < 0 and not degenerate) else 0
+    return n_degenerate, n_negative
 
 
 def _refuse_duplicates(cells):
@@ -193,6 +243,43 @@ def _duplicate_cells(cells):
     return (int(idx[first[inverse[t]]]), int(idx[t])), int(later.size)
 
 
+@nb.njit(cache=True)
+def _cell_components(cells, n_vertices, labels):
+    """Connected components through shared vertices: a union-find on the
+    vertices (roots are the smallest vertex of their set, path halving), then
+    components numbered in the order of their first cell.  Serial, so the
+    labels are the same for any thread count."""
+    parent = np.arange(n_vertices)
+    m, k = cells.shape
+    for c in range(m):
+        a = cells[c, 0]
+        while parent[a] != a:
+            parent[a] = parent[parent[a]]
+            a = parent[a]
+        for j in range(1, k):
+            b = cells[c, j]
+            while parent[b] != b:
+                parent[b] = parent[parent[b]]
+                b = parent[b]
+            if a < b:
+                parent[b] = a
+            elif b < a:
+                parent[a] = b
+                a = b
+    # parent[v] <= v, so one ascending pass leaves every vertex on its root
+    for v in range(n_vertices):
+        parent[v] = parent[parent[v]]
+    rank = np.full(n_vertices, -1, dtype=np.int64)
+    count = 0
+    for c in range(m):
+        r = parent[cells[c, 0]]
+        if rank[r] < 0:
+            rank[r] = count
+            count += 1
+        labels[c] = rank[r]
+    return count
+
+
 @dataclass(frozen=True)
 class MeshQuality:
     """Summary of cell sizes and shapes (see :meth:`Mesh.quality`).
@@ -236,6 +323,10 @@ def _as_points(points):
 
 
 def _as_cells(cells, n_vertices, dim):
+    return _cells_and_use(cells, n_vertices, dim)[0]
+
+
+def _cells_and_use(cells, n_vertices, dim):
     try:
         c = np.asarray(cells)
     except Exception as exc:
@@ -262,11 +353,34 @@ def _as_cells(cells, n_vertices, dim):
                 f"0..{n_vertices - 1} ({int(big.sum())} such cells)"
             )
         c = c.astype(np.int64)
-    c64 = c if c.dtype.itemsize <= 8 else c.astype(np.int64)
-    first, code, count = _check_cells(c64, n_vertices)
-    if first >= 0:
-        i = int(first)
-        if code == 1:
+    return _checked_copy(c, n_vertices, dim)
+
+
+def _checked_copy(c, n_vertices, dim):
+    """A fresh C-contiguous copy of the cell table in the index dtype, and
+    whether each vertex is used (uint8); raises for an index out of range or a
+    repeated vertex, naming the first such cell."""
+    idt = index_dtype(n_vertices)
+    if c.dtype != idt:
+        # out-of-range values must not wrap in the conversion: check in numpy
+        bad = ((c < 0) | (c >= n_vertices)).any(axis=1)
+        if bad.any():
+            i = int(np.flatnonzero(bad)[0])
+            raise MeshError(
+                f"mesh cells: cell {i} has vertex indices {c[i].tolist()} outside "
+                f"0..{n_vertices - 1} ({int(bad.sum())} such cells)"
+            )
+        src = np.ascontiguousarray(c, dtype=idt)
+        out = src if src is not c and not np.shares_memory(src, c) else np.empty_like(src)
+    else:
+        src = c
+        out = np.empty(c.shape, dtype=idt)
+    codes = np.empty(c.shape[0], dtype=np.uint8)
+    used = np.zeros(n_vertices, dtype=np.uint8)
+    count = _copy_check_cells(src, n_vertices, out, codes, used)
+    if count:
+        i = int(np.flatnonzero(codes)[0])
+        if codes[i] == 1:
             raise MeshError(
                 f"mesh cells: cell {i} has vertex indices {c[i].tolist()} outside "
                 f"0..{n_vertices - 1} ({int(count)} such cells)"
@@ -275,7 +389,7 @@ def _as_cells(cells, n_vertices, dim):
             f"mesh cells: cell {i} repeats a vertex {c[i].tolist()} "
             f"({int(count)} such cells); each cell needs {dim + 1} distinct vertices"
         )
-    return np.array(c, dtype=index_dtype(n_vertices), order="C", copy=True)
+    return out, used
 
 
 def remove_unreferenced_vertices(points, cells):
@@ -302,6 +416,125 @@ def remove_unreferenced_vertices(points, cells):
     return points[used], old_to_new[cells], old_to_new
 
 
+@nb.njit(cache=True)
+def _shortest_edges(points, cells, h):
+    """``h[v]``: length of the shortest edge at vertex ``v`` (a minimum: the
+    same whatever the order)."""
+    m, k = cells.shape
+    d = points.shape[1]
+    for v in range(h.shape[0]):
+        h[v] = np.inf
+    for c in range(m):
+        for i in range(k):
+            a = cells[c, i]
+            for j in range(i + 1, k):
+                b = cells[c, j]
+                s = 0.0
+                for r in range(d):
+                    t = points[a, r] - points[b, r]
+                    s += t * t
+                length = np.sqrt(s)
+                if length < h[a]:
+                    h[a] = length
+                if length < h[b]:
+                    h[b] = length
+
+
+def _coincident_pairs(points, cells, tolerance):
+    """Pairs ``(i, j)``, ``i < j``, of distinct vertices closer than ``tolerance``
+    times the shorter of their shortest edges (an array of shape (p, 2), sorted).
+
+    Vertices are binned on a grid of the largest tolerance, twice (the second
+    grid shifted by half a bin), and compared inside each bin.
+    """
+    h = np.empty(points.shape[0])
+    _shortest_edges(points, cells, h)
+    tol = tolerance * h
+    q = float(tol.max())
+    if not np.isfinite(q) or q <= 0.0:
+        return np.empty((0, 2), dtype=np.int64)
+    scale = np.abs(points).max() + 1.0
+    if q < scale * 1e-15:  # below round-off of the coordinates: exact repeats only
+        q = scale * 1e-15
+    found = []
+    for shift in (0.0, 0.5):
+        key = np.floor(points / q + shift).astype(np.int64)
+        order = np.lexsort(key.T[::-1])
+        ks = key[order]
+        same = (ks[1:] == ks[:-1]).all(axis=1)
+        if not same.any():
+            continue
+        # runs of one bin: compare every member with the run's later members
+        starts = np.flatnonzero(np.concatenate([[True], ~same]))
+        ends = np.concatenate([starts[1:], [order.size]])
+        for a, b in zip(starts[ends - starts > 1], ends[ends - starts > 1]):
+            members = order[a:b]
+            for x in range(members.size):
+                for y in range(x + 1, members.size):
+                    i, j = int(members[x]), int(members[y])
+                    d = float(np.sqrt(((points[i] - points[j]) ** 2).sum()))
+                    if d <= min(tol[i], tol[j]):
+                        found.append((min(i, j), max(i, j)))
+    if not found:
+        return np.empty((0, 2), dtype=np.int64)
+    return np.unique(np.array(found, dtype=np.int64), axis=0)
+
+
+def merge_duplicate_vertices(points, cells, *, tolerance=None):
+    """Merge vertices that lie at the same place into one vertex.
+
+    A mesh whose parts were generated separately, or a file with nodes
+    repeated along an interface, can hold two vertex ids at one point: the
+    cells on either side are then not connected, and the domain is cut
+    apart there.  :class:`Mesh` refuses such vertices; this function joins
+    them (each group keeps its smallest id's coordinates) and drops the ids
+    no cell uses any more.
+
+    Parameters
+    ----------
+    points : array_like, shape (n, d)
+    cells : array_like, shape (m, d + 1), integer
+    tolerance : float, optional
+        Relative to the shortest edge at either vertex (default
+        ``COINCIDENCE_TOLERANCE``).
+
+    Returns
+    -------
+    points : ndarray, shape (n_merged, d)
+    cells : ndarray, shape (m, d + 1)
+    old_to_new : ndarray, shape (n,), int64 (-1 for a vertex no cell used)
+
+    Examples
+    --------
+    >>> pts = [[0, 0], [1, 0], [0, 1], [1, 0], [1, 1], [0, 1]]
+    >>> p, c, old_to_new = merge_duplicate_vertices(pts, [[0, 1, 2], [3, 4, 5]])
+    >>> len(p), c.tolist()
+    (4, [[0, 1, 2], [1, 3, 2]])
+    """
+    p = _as_points(points)
+    c = _as_cells(cells, p.shape[0], p.shape[1])
+    tol = COINCIDENCE_TOLERANCE if tolerance is None else float(tolerance)
+    if not (np.isfinite(tol) and 0 <= tol < 0.5):
+        raise MeshError(f"merge_duplicate_vertices: tolerance must be in [0, 0.5), got {tolerance!r}")
+    pairs = _coincident_pairs(p, c, tol)
+    target = np.arange(p.shape[0])
+    # join each pair's groups to the smallest id (few pairs: plain loops)
+    for i, j in pairs.tolist():
+        while target[i] != i:
+            i = int(target[i])
+        while target[j] != j:
+            j = int(target[j])
+        if i != j:
+            target[max(i, j)] = min(i, j)
+    for v in range(target.size):  # target[v] <= v: one pass reaches the roots
+        target[v] = target[target[v]]
+    merged = target[c]
+    pts, new_cells, old_to_new = remove_unreferenced_vertices(p, merged)
+    # a vertex that was merged away maps to its group's representative
+    old_to_new = old_to_new[target]
+    return pts, new_cells, old_to_new
+
+
 class Mesh:
     """A validated triangle (2D) or tetrahedron (3D) mesh.
 
@@ -314,6 +547,11 @@ class Mesh:
         re-oriented (two vertices swapped) and counted in ``n_reoriented``.
     facet_tags : dict, optional
         ``name -> boundary facet ids`` to start with.
+    check_coincident : bool, default True
+        Refuse distinct vertices at one place (see
+        :func:`merge_duplicate_vertices`).  The generators and
+        :func:`~galerkit.refine_uniform` pass False: their vertices are
+        distinct by construction.
 
     Raises
     ------
@@ -322,7 +560,9 @@ class Mesh:
         a cell repeating a vertex, two cells with the same vertex set (both
         named), a degenerate cell (|volume| below
         ``DEGENERACY_TOLERANCE * longest_edge**d``), a vertex no cell uses
-        (remove them with :func:`remove_unreferenced_vertices`), a facet
+        (remove them with :func:`remove_unreferenced_vertices`), two distinct
+        vertices at one place (merge them with
+        :func:`merge_duplicate_vertices`), a facet
         shared by more than two cells, two cells on the same side of their
         shared facet (a folded mesh: an inverted cell overlapping its
         neighbour), or ``facet_tags`` that is not a dict of valid ids.  The
@@ -337,39 +577,46 @@ class Mesh:
     (4, 2)
     """
 
-    def __init__(self, points, cells, *, facet_tags=None):
+    def __init__(self, points, cells, *, facet_tags=None, check_coincident=True):
         p = _as_points(points)
         n, d = p.shape
-        c = _as_cells(cells, n, d)
+        c, used = _cells_and_use(cells, n, d)
         if facet_tags is not None and not hasattr(facet_tags, "items"):
             raise MeshError(
                 f"mesh facet_tags must be a dict of name -> boundary facet ids, got "
                 f"{type(facet_tags).__name__}")
-        used = np.bincount(c.ravel(), minlength=n)
-        if (used == 0).any():
-            i = int(np.flatnonzero(used == 0)[0])
+        if not used.all():
+            unused = np.flatnonzero(used == 0)
             raise MeshError(
-                f"mesh: vertex {i} belongs to no cell ({int((used == 0).sum())} such "
+                f"mesh: vertex {int(unused[0])} belongs to no cell ({unused.size} such "
                 "vertices); they would make the matrices singular. Remove them with "
                 "galerkit.mesh.remove_unreferenced_vertices(points, cells)"
             )
+        del used
         vol = np.empty(c.shape[0])
-        scale = np.empty(c.shape[0])
-        _geometry(p, c, vol, scale)
-        degenerate = np.abs(vol) <= DEGENERACY_TOLERANCE * scale**d
-        if degenerate.any():
-            i = int(np.flatnonzero(degenerate)[0])
+        codes = np.zeros(c.shape[0], dtype=np.uint8)
+        n_degenerate, n_negative = _orient_cells(p, c, DEGENERACY_TOLERANCE, vol, codes)
+        if n_degenerate:
+            i = int(np.flatnonzero(codes == 3)[0])
+            scale = np.sqrt(max(float(((p[c[i, a]] - p[c[i, b]]) ** 2).sum())
+                                for a in range(d + 1) for b in range(a + 1, d + 1)))
             raise MeshError(
                 f"mesh: cell {i} (vertices {c[i].tolist()}) is degenerate: volume "
-                f"{vol[i]:.3e} for longest edge {scale[i]:.3e} "
-                f"({int(degenerate.sum())} such cells); remove or repair them"
+                f"{vol[i]:.3e} for longest edge {scale:.3e} "
+                f"({int(n_degenerate)} such cells); remove or repair them"
             )
-        neg = vol < 0
-        self.n_reoriented = int(neg.sum())
-        if self.n_reoriented:
-            # swapping the last two vertices flips the orientation
-            c[neg, d - 1], c[neg, d] = c[neg, d].copy(), c[neg, d - 1].copy()
-            vol = np.abs(vol)
+        del codes
+        if check_coincident:
+            pairs = _coincident_pairs(p, c, COINCIDENCE_TOLERANCE)
+            if pairs.size:
+                shown = ", ".join(f"{i} and {j}" for i, j in pairs[:3].tolist())
+                raise MeshError(
+                    f"mesh: vertices {shown} lie at the same place ({len(pairs)} such pairs, "
+                    f"closer than {COINCIDENCE_TOLERANCE:g} x the shortest edge there) but "
+                    "are distinct vertices, which cuts the domain apart between their cells. "
+                    "Merge them with galerkit.mesh.merge_duplicate_vertices(points, cells) "
+                    "and build the mesh from its result")
+        self.n_reoriented = int(n_negative)
         p.flags.writeable = False
         c.flags.writeable = False
         vol.flags.writeable = False
@@ -411,25 +658,27 @@ class Mesh:
     # -- topology -------------------------------------------------------------
     @cached_property
     def _facet_topology(self):
-        local = np.array(REFERENCE_FACETS[self.dim], dtype=np.int64)
-        ent, cell_ent, mult, first = enumerate_entities(self.cells, local, self.n_vertices)
-        if (mult > 2).any():
+        top = facet_topology(self.cells, self.n_vertices)
+        if top["shared"]:
             _refuse_duplicates(self.cells)
-            i = int(np.flatnonzero(mult > 2)[0])
+            verts, owners = top["shared_example"]
             raise MeshError(
-                f"mesh: facet with vertices {ent[i].tolist()} is shared by {int(mult[i])} "
+                f"mesh: facet with vertices {verts} is shared by {len(owners)} "
                 "cells (non-manifold); each facet may belong to one or two cells"
             )
-        _check_folds(self.cells, local, ent, cell_ent, mult)
-        del cell_ent
-        bnd = np.flatnonzero(mult == 1)
-        facets = np.ascontiguousarray(ent[bnd])
-        nf = local.shape[0]
-        fcell = (first[bnd] // nf).astype(index_dtype(self.n_cells))
-        flocal = (first[bnd] % nf).astype(np.int8)
+        if top["folded"]:
+            _refuse_duplicates(self.cells)
+            verts, owners = top["folded_example"]
+            raise MeshError(
+                f"mesh: cells {owners[0]} and {owners[1]} lie on the same side of their "
+                f"shared facet with vertices {verts} ({top['folded']} such facets): "
+                "the mesh folds over itself (an inverted cell overlaps its neighbour, which "
+                "re-orienting cannot repair); move the vertices so that cells do not overlap"
+            )
+        facets, fcell, flocal = top["facets"], top["facet_cells"], top["facet_local"]
         for a in (facets, fcell, flocal):
             a.flags.writeable = False
-        return facets, fcell, flocal, int(ent.shape[0])
+        return facets, fcell, flocal, top["n_facets"]
 
     @property
     def boundary_facets(self) -> np.ndarray:
@@ -555,9 +804,8 @@ class Mesh:
 
         Two cells are connected when they share a vertex (continuous Lagrange
         elements couple them through that vertex's dof).  The components are
-        found by ``scipy.sparse.csgraph.connected_components`` on this cell
-        adjacency, stored as a graph on the vertices (each cell joins its
-        vertices).
+        found by a union-find over the vertices (each cell joins its
+        vertices), compiled and serial.
 
         Returns
         -------
@@ -579,29 +827,10 @@ class Mesh:
 
     @cached_property
     def _components(self):
-        import scipy.sparse as sp
-        from scipy.sparse.csgraph import connected_components
-
-        # the cells' adjacency through shared vertices, as a graph on the
-        # vertices: each cell joins its first vertex to its others (rows grouped
-        # by first vertex: CSR without a COO conversion)
-        n = self.n_vertices
-        first_vertex = self.cells[:, 0]
-        order = np.argsort(first_vertex, kind="stable")
-        k = self.cells.shape[1] - 1
-        indptr = np.zeros(n + 1, dtype=np.int64)
-        np.cumsum(np.bincount(first_vertex, minlength=n) * k, out=indptr[1:])
-        cols = np.ascontiguousarray(self.cells[order, 1:]).ravel()
-        graph = sp.csr_array((np.ones(cols.size, dtype=np.int8), cols, indptr), shape=(n, n))
-        _, vertex_label = connected_components(graph, directed=False)
-        labels = vertex_label[first_vertex]
-        # number the components by their first cell
-        _, first, inverse = np.unique(labels, return_index=True, return_inverse=True)
-        rank = np.empty(first.size, dtype=np.int64)
-        rank[np.argsort(first, kind="stable")] = np.arange(first.size)
-        labels = rank[inverse.ravel()]
+        labels = np.empty(self.n_cells, dtype=np.int64)
+        count = _cell_components(self.cells, self.n_vertices, labels)
         labels.flags.writeable = False
-        return int(first.size), labels
+        return int(count), labels
 
     # -- quality ---------------------------------------------------------------
     def cell_quality(self) -> np.ndarray:

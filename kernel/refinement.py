@@ -27,6 +27,8 @@ from __future__ import annotations
 import numpy as np
 
 from .elements import REFERENCE_EDGES
+from .errors import InputError
+from .generators import check_mesh_memory
 from .mesh import Mesh
 from .topology import enumerate_entities
 
@@ -65,7 +67,12 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     >>> fine.n_cells, fine.n_vertices, len(fine.facet_tags["left"])
     (32, 25, 4)
     """
+    if not isinstance(mesh, Mesh):
+        raise InputError(
+            f"refine_uniform: expected a galerkit Mesh, got {type(mesh).__name__}; build one "
+            "with Mesh(points, cells) or a generator")
     d = mesh.dim
+    _check_refinement_memory(mesh)
     # Bey's rule needs the vertex order it produced itself, not the order after
     # Mesh re-oriented a child: keep that order beside the mesh.
     cells = mesh.refinement_cells
@@ -87,7 +94,8 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     points = np.ascontiguousarray(points[order])
     parents = np.ascontiguousarray(parents[order])
     children = new_id[children].astype(cells.dtype)
-    fine = Mesh(points, children)
+    # midpoints of distinct edges of a valid (unfolded) mesh are distinct points
+    fine = Mesh(points, children, check_coincident=False)
     fine.parent = mesh
     fine.parent_cells = np.repeat(np.arange(mesh.n_cells), n_children)
     fine.vertex_parents = parents
@@ -97,6 +105,24 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     if mesh.facet_tags:
         _carry_tags(mesh, fine, parents, n_children)
     return fine
+
+
+def _check_refinement_memory(mesh):
+    """Refuse a refinement whose fine mesh would not fit, before allocating it.
+
+    The fine mesh has 2**d times the cells and about 2**d times the vertices;
+    the coarse edge enumeration (an int32 and an int64 per cell edge, the
+    cell-edge table) comes on top while the fine mesh is built.
+    """
+    d = mesh.dim
+    n_edges_local = 3 if d == 2 else 6
+    extra = mesh.n_cells * n_edges_local * 16
+    fine_cells = mesh.n_cells * 2**d
+    fine_vertices = mesh.n_vertices * 2**d
+    check_mesh_memory(
+        f"refine_uniform (mesh of {mesh.n_cells} cells)",
+        fine_vertices + extra // (8 * d + 80), fine_cells, d,
+        "refine fewer times or start from a coarser mesh")
 
 
 def _carry_tags(coarse: Mesh, fine: Mesh, vertex_parents, n_children):

@@ -1,0 +1,108 @@
+"""Compilation accounting: how long numba spent compiling, and where its cache lives.
+
+Every kernel is compiled the first time it runs with a new signature and then
+cached on disk (``cache=True``), so only a first run pays for compilation.
+This module listens to numba's ``numba:compile`` events (fired only when a
+kernel is really compiled, not when it is loaded from the cache) and adds up
+the outermost compiles, so a phase can report its own time without them.
+
+Cache location (numba's rules): beside the sources in ``__pycache__`` when that
+folder is writable (an editable or user install); otherwise -- a read-only
+install, a system site-packages -- numba falls back to a user-wide folder
+(``$XDG_CACHE_HOME/numba`` or ``~/.cache/numba`` on Linux).  Set
+``GALERKIT_CACHE_DIR`` (before importing galerkit) to put galerkit's kernels in
+a folder of your choice, or ``NUMBA_CACHE_DIR`` for every numba program.  A
+cache entry is keyed on the source file's path and modification time, so an
+upgraded install recompiles once.  ``galerkit warm-up`` compiles the common
+kernels ahead of time.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+
+from numba.core import config as _config
+from numba.core import event as _event
+
+__all__ = ["compile_seconds", "PhaseSeconds", "cache_folder", "on_first_compile"]
+
+_state = {"seconds": 0.0, "depth": 0, "start": 0.0, "count": 0, "announce": None}
+
+
+class _Listener(_event.Listener):
+    def on_start(self, event):
+        if _state["depth"] == 0:
+            _state["start"] = time.perf_counter()
+            _state["count"] += 1
+            announce = _state["announce"]
+            if announce is not None:
+                _state["announce"] = None  # once per process
+                announce()
+        _state["depth"] += 1
+
+    def on_end(self, event):
+        _state["depth"] -= 1
+        if _state["depth"] == 0:
+            _state["seconds"] += time.perf_counter() - _state["start"]
+
+
+_event.register("numba:compile", _Listener())
+
+
+def compile_seconds() -> float:
+    """Seconds this process has spent compiling kernels so far (outermost compiles)."""
+    return _state["seconds"]
+
+
+def compile_count() -> int:
+    """Number of outermost compilations so far (kernels and signatures)."""
+    return _state["count"]
+
+
+def on_first_compile(callback) -> None:
+    """Call ``callback()`` once, when the next kernel compilation starts (None: never)."""
+    _state["announce"] = callback
+
+
+class PhaseSeconds(dict):
+    """Seconds per phase with compilation counted apart.
+
+    Assign the wall time of each phase as it ends (``sec["assemble"] = t``):
+    the compile seconds spent since the previous assignment are subtracted
+    and added to a ``"compile"`` entry, kept last and present only when a
+    kernel was compiled.  The values still sum to the wall time.
+    """
+
+    def __init__(self):
+        super().__init__()
+        self._mark = compile_seconds()
+
+    def __setitem__(self, key, wall):
+        now = compile_seconds()
+        spent = now - self._mark
+        self._mark = now
+        if key == "compile" or spent <= 0.0:
+            super().__setitem__(key, wall)
+            return
+        super().__setitem__(key, max(0.0, wall - spent))
+        total = self.pop("compile", 0.0) + spent
+        super().__setitem__("compile", total)
+
+
+def cache_folder() -> str:
+    """Where numba keeps galerkit's compiled kernels (see the module notes)."""
+    if _config.CACHE_DIR:
+        return str(_config.CACHE_DIR)
+    here = os.path.dirname(os.path.abspath(__file__))
+    pycache = os.path.join(here, "__pycache__")
+    try:
+        os.makedirs(pycache, exist_ok=True)
+        probe = os.path.join(pycache, f".write-probe-{os.getpid()}")
+        with open(probe, "w"):
+            pass
+        os.remove(probe)
+        return pycache
+    except OSError:
+        base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+        return os.path.join(base, "numba")
