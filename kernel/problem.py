@@ -10,8 +10,11 @@ Solves ``-div(kappa grad u) = f`` in the domain with, per facet tag,
   ``alpha u_ext`` to the load) -- for example convective cooling with heat
   transfer coefficient alpha and ambient temperature u_ext.
 
-Untagged boundary is insulated (zero Neumann).  Where Dirichlet tags share
-dofs, the tag given later wins.  A connected component of the mesh without
+Untagged boundary is insulated (zero Neumann).  Two conditions on tags that
+share facets are refused (:func:`conflicting_conditions`) unless they are the
+same condition (same kind, same value); tags that meet only at a vertex or an
+edge of a facet are fine, and where Dirichlet tags share such dofs the tag
+given later wins.  A connected component of the mesh without
 Dirichlet dofs and without Robin facets of alpha > 0 is pure Neumann: its
 data must be compatible (``integral f + integral q = 0`` over that
 component), and its free constant is fixed by a zero mean over it.  Robin
@@ -36,7 +39,7 @@ from .mesh import Mesh
 from .multigrid import p1_coarse_space
 from .solvers import SolveReport, choose_method, prepare_solver
 
-__all__ = ["PoissonProblem", "Solution"]
+__all__ = ["PoissonProblem", "Solution", "conflicting_conditions"]
 
 
 @dataclass
@@ -128,6 +131,19 @@ class PoissonProblem:
                 raise ProblemError(
                     f"robin[{tag!r}]: the heat transfer coefficient alpha = {alpha!r} must be "
                     "finite and >= 0 (a negative alpha makes the problem unstable)")
+        conditions = [(kind, tag, value)
+                      for kind, table in (("dirichlet", self.dirichlet),
+                                          ("neumann", self.neumann), ("robin", self.robin))
+                      for tag, value in table.items()]
+        clash = conflicting_conditions(mesh, conditions)
+        if clash is not None:
+            i, j, count = clash
+            (ka, ta, _), (kb, tb, _) = conditions[i], conditions[j]
+            raise ProblemError(
+                f"{ka}[{ta!r}] and {kb}[{tb!r}]: tags {ta!r} and {tb!r} share {count} "
+                "boundary facet(s) and the two conditions differ, so the result would "
+                "depend on which one is applied last. Give each facet one condition: tag "
+                "the facets of each condition separately (Mesh.tag_boundary) or drop one")
 
     def discretize(self, degree=1):
         return Discretization(self.mesh, degree)
@@ -351,6 +367,61 @@ class PoissonProblem:
         for sel in comps:
             u[sel] -= float(w[sel] @ u[sel]) / float(w[sel].sum())
         return u
+
+
+def _same_value(a, b):
+    if a is b:
+        return True
+    if isinstance(a, (tuple, list)) and isinstance(b, (tuple, list)):
+        return len(a) == len(b) and all(_same_value(x, y) for x, y in zip(a, b))
+    if callable(a) or callable(b):
+        return False
+    try:
+        a_arr, b_arr = np.asarray(a), np.asarray(b)
+        return a_arr.shape == b_arr.shape and bool(np.array_equal(a_arr, b_arr))
+    except Exception:  # noqa: BLE001 - values that cannot be compared are different
+        return False
+
+
+def conflicting_conditions(mesh, conditions, same=_same_value):
+    """The first pair of different conditions whose tags share boundary facets.
+
+    Parameters
+    ----------
+    mesh : Mesh
+    conditions : list of (kind, tag, value)
+        ``kind`` is for example ``"dirichlet"``; ``tag`` is a facet tag of
+        ``mesh``.
+    same : callable, optional
+        ``same(value_a, value_b)``: whether two values of one kind are the same
+        condition (default: the same object, or equal numbers or arrays).
+
+    Returns
+    -------
+    (i, j, shared_facet_count) or None
+        Positions in ``conditions``, ``i < j``.
+
+    Examples
+    --------
+    >>> from galerkit import structured_triangles
+    >>> m = structured_triangles(4, 4)
+    >>> conflicting_conditions(m, [("dirichlet", "left", 1.0),
+    ...                            ("dirichlet", "boundary", 0.0)])
+    (0, 1, 4)
+    >>> conflicting_conditions(m, [("dirichlet", "left", 0.0),
+    ...                            ("dirichlet", "boundary", 0.0)]) is None
+    True
+    """
+    ids = [mesh.tagged_facets(tag) for _, tag, _ in conditions]
+    for i in range(len(conditions)):
+        for j in range(i + 1, len(conditions)):
+            (ka, _, va), (kb, _, vb) = conditions[i], conditions[j]
+            if ka == kb and same(va, vb):
+                continue
+            count = int(np.intersect1d(ids[i], ids[j], assume_unique=True).size)
+            if count:
+                return i, j, count
+    return None
 
 
 def check_compatibility(total, accurate, scale, component, n_components):

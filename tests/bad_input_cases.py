@@ -720,6 +720,16 @@ def _():
     gk.PoissonProblem(mesh2(), dirichlet={"boundary": 0.0}).solve(degree=7)
 
 
+@case("two fixed values on overlapping tags (left inside boundary)", P, "ProblemError")
+def _():
+    gk.PoissonProblem(mesh2(), dirichlet={"left": 1.0, "boundary": 0.0})
+
+
+@case("a flux on a tag inside a fixed tag", P, "ProblemError")
+def _():
+    gk.PoissonProblem(mesh2(), dirichlet={"boundary": 0.0}, neumann={"left": 2.0})
+
+
 # ----------------------------------------------------------------------------
 # functionals and evaluation
 # ----------------------------------------------------------------------------
@@ -966,6 +976,27 @@ def _():
     from galerkit.bindings.petsc_engine import parse_petsc_options
 
     parse_petsc_options("ksp_type cg")
+
+
+# ----------------------------------------------------------------------------
+# problem files and the command line
+# ----------------------------------------------------------------------------
+C = "problem files and command line"
+
+
+def _problem(extra=""):
+    import tomllib
+
+    from galerkit.bindings.problemfile import parse_problem
+
+    text = '[mesh]\ngenerator = "square"\ncells = 3\n' + extra
+    return parse_problem(tomllib.loads(text), source="case.toml", text=text)
+
+
+@case("problem file: a fixed entry and a flux entry on overlapping tags", C, "InputError")
+def _():
+    _problem('[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n'
+             '[[boundary]]\ntag = "top"\nkind = "flux"\nflux = 1\n')
 
 
 # ----------------------------------------------------------------------------

@@ -47,6 +47,7 @@ from galerkit import (
 )
 from galerkit.errors import InputError, ProblemError
 from galerkit.evaluation import cell_gradients
+import galerkit as gk
 
 PI = np.pi
 
@@ -502,3 +503,34 @@ def test_table_markdown_and_csv_round_trip():
             else:
                 assert got == want[col]
     np.testing.assert_array_equal(table.column("n_dofs"), [9, 25, 81])
+
+
+# ----------------------------------------------------------------------------
+# conditions on tags that share facets
+# ----------------------------------------------------------------------------
+@pytest.mark.parametrize("order", [("left", "boundary"), ("boundary", "left")])
+def test_different_fixed_values_on_overlapping_tags_are_refused_in_either_order(order):
+    mesh = gk.structured_triangles(4, 4)
+    values = {"left": 1.0, "boundary": 0.0}
+    with pytest.raises(ProblemError, match=r"tags '(left|boundary)' and '(left|boundary)' "
+                                           r"share 4 boundary facet\(s\)"):
+        gk.PoissonProblem(mesh, dirichlet={t: values[t] for t in order})
+
+
+def test_a_flux_under_a_fixed_tag_is_refused_naming_both_conditions():
+    mesh = gk.structured_triangles(4, 4)
+    with pytest.raises(ProblemError, match=r"dirichlet\['boundary'\] and neumann\['top'\]: "
+                                           r"tags 'boundary' and 'top' share 4 "):
+        gk.PoissonProblem(mesh, dirichlet={"boundary": 0.0}, neumann={"top": 1.0})
+    with pytest.raises(ProblemError, match=r"dirichlet\['top'\] and robin\['top'\]"):
+        gk.PoissonProblem(mesh, dirichlet={"top": 0.0}, robin={"top": (1.0, 0.0)})
+
+
+def test_the_same_condition_on_overlapping_tags_and_tags_meeting_at_a_corner_are_accepted():
+    mesh = gk.structured_triangles(4, 4)
+    one = gk.PoissonProblem(mesh, source=1.0, dirichlet={"boundary": 0.0}).solve()
+    both = gk.PoissonProblem(mesh, source=1.0, dirichlet={"left": 0.0, "boundary": 0.0}).solve()
+    np.testing.assert_array_equal(one.u, both.u)
+    # left and bottom share the corner vertex only: no facet, no conflict
+    corner = gk.PoissonProblem(mesh, dirichlet={"left": 1.0, "bottom": 0.0}).solve()
+    assert corner.report.converged
