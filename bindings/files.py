@@ -39,9 +39,12 @@ import contextlib
 import io
 import math
 import os
+import re
 import tempfile
+import time
 import warnings
 from pathlib import Path
+from xml.sax.saxutils import escape as _xml_escape
 
 import numpy as np
 
@@ -50,7 +53,7 @@ from galerkit.errors import InputError, MeshError
 from galerkit.mesh import Mesh
 from galerkit.refinement import refine_uniform
 
-__all__ = ["read_mesh", "write_solution", "atomic_path", "write_atomically",
+__all__ = ["read_mesh", "write_solution", "atomic_path", "write_atomically", "xml_name",
            "sample_solution", "SampledSolution", "TAG_ARRAY_PREFIX"]
 
 _CELL_OF_DIM = {2: "triangle", 3: "tetra"}
@@ -313,6 +316,30 @@ def _read_tags(m, mesh: Mesh, dim: int, old_to_new, where: str) -> None:
 # ----------------------------------------------------------------------------
 # writing
 # ----------------------------------------------------------------------------
+#: characters XML 1.0 cannot hold even escaped (C0 controls but tab, newline and
+#: carriage return; lone surrogates; U+FFFE, U+FFFF): replaced by "?" in names
+_NOT_XML = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\ud800-\udfff\ufffe\uffff]")
+#: escapes inside a double-quoted XML attribute; tab, newline and carriage
+#: return as references, since a parser turns them into spaces otherwise
+_XML_ATTRIBUTE = {'"': "&quot;", "'": "&apos;", "\t": "&#9;", "\n": "&#10;", "\r": "&#13;"}
+
+
+def xml_name(name) -> str:
+    """``name`` as the text of an XML attribute: ``& < > " '`` escaped.
+
+    meshio's VTU writer puts array names into ``Name="..."`` as they are, so
+    every name galerkit writes (field, tags, extra arrays) passes through here;
+    a reader gives back the original name.  Characters that XML cannot hold
+    at all become ``"?"``.
+
+    Examples
+    --------
+    >>> xml_name('a<b & "c"')
+    'a&lt;b &amp; &quot;c&quot;'
+    """
+    return _xml_escape(_NOT_XML.sub("?", str(name)), _XML_ATTRIBUTE)
+
+
 def atomic_path(path):
     """A temporary sibling of ``path`` (same suffix) to write and then rename."""
     p = Path(path)
@@ -548,7 +575,7 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
     g3[:, :d] = grad
     f3 = np.zeros((mesh.n_cells, 3))
     f3[:, :d] = flux
-    cell_data = {f"grad_{name}": [g3], "flux": [f3],
+    cell_data = {xml_name(f"grad_{name}"): [g3], "flux": [f3],
                  "parent_cell": [np.asarray(s.parent_cells, dtype=np.int64)]}
     if tensor is not None:
         t9 = np.zeros((mesh.n_cells, 3, 3))
@@ -557,13 +584,13 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
     else:
         cell_data["conductivity"] = [scalar]
     for key, f in (extra_cell_data or {}).items():
-        cell_data[key] = [np.asarray(f(np.asarray(s.parent_cells)))]
-    point_data = {name: np.asarray(s.values, dtype=np.float64)}
+        cell_data[xml_name(key)] = [np.asarray(f(np.asarray(s.parent_cells)))]
+    point_data = {xml_name(name): np.asarray(s.values, dtype=np.float64)}
     for tag in (mesh.facet_tags if tags is None else tags):
         member = np.zeros(mesh.n_vertices, dtype=np.uint8)
         if tag in mesh.facet_tags:
             member[mesh.boundary_facets[mesh.facet_tags[tag]].ravel()] = 1
-        point_data[TAG_ARRAY_PREFIX + tag] = member
+        point_data[xml_name(TAG_ARRAY_PREFIX + tag)] = member
     out = meshio.Mesh(pts, [(_CELL_OF_DIM[d], np.asarray(mesh.cells))], point_data=point_data,
                       cell_data=cell_data)
     return write_atomically(path, lambda tmp: meshio.write(str(tmp), out, file_format="vtu"))
@@ -644,8 +671,8 @@ def write_parallel_index(path, pieces):
 
     def arrays(kind):
         return "".join(
-            f'      <PDataArray type="{t}"' + (f' Name="{n}"' if n else "")
-            + f' NumberOfComponents="{c}"/>\n' for t, n, c in sections[kind])
+            f'      <PDataArray type="{xml_name(t)}"' + (f' Name="{xml_name(n)}"' if n else "")
+            + f' NumberOfComponents="{xml_name(c)}"/>\n' for t, n, c in sections[kind])
 
     rel = [os.path.relpath(Path(p), path.parent) for p in pieces]
     text = ('<?xml version="1.0"?>\n'
@@ -654,6 +681,6 @@ def write_parallel_index(path, pieces):
             '    <PPointData>\n' + arrays("PointData") + '    </PPointData>\n'
             '    <PCellData>\n' + arrays("CellData") + '    </PCellData>\n'
             '    <PPoints>\n' + arrays("Points") + '    </PPoints>\n'
-            + "".join(f'    <Piece Source="{r}"/>\n' for r in rel)
+            + "".join(f'    <Piece Source="{xml_name(r)}"/>\n' for r in rel)
             + '  </PUnstructuredGrid>\n</VTKFile>\n')
-    return write_atomically(path, lambda tmp: Path(tmp).write_text(text))
+    return write_atomically(path, lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
