@@ -471,6 +471,32 @@ def _():
     asm().load(1.0, out=np.empty(3))
 
 
+@case("load out= the dof-vector source itself", A, "InputError")
+def _():
+    b = np.linspace(0.0, 1.0, asm(2, 2).n_dofs)
+    asm(2, 2).load(b, out=b)
+
+
+@case("mass coefficient read from the out= matrix's own data", A, "InputError")
+def _():
+    M = asm().mass()
+    M.data[:] = 1.0
+    asm().mass(M.data[:mesh2().n_cells], out=M)
+
+
+@case("boundary_load flux read from the out= vector", A, "InputError")
+def _():
+    b = np.zeros(asm().n_dofs)
+    asm().boundary_load("left", b[:len(mesh2().tagged_facets("left"))], out=b)
+
+
+@case("per-cell conductivity read from the out= matrix's own data", A, "InputError")
+def _():
+    K = asm().stiffness()
+    K.data[:] = 1.0  # a valid conductivity, read from the matrix being written
+    asm().stiffness(K.data[:mesh2().n_cells], out=K)
+
+
 @case("boundary_load on an unknown tag", A, "MeshError")
 def _():
     asm().boundary_load("inlet", 1.0)
