@@ -667,6 +667,40 @@ def _():
     gk.solve(sp.csr_array(A), np.ones(20), method="cg-jacobi")
 
 
+def _lying_solver(make_x, residual):
+    """Solve with a registered solver whose report says "converged" with
+    ``make_x(n)`` as x and ``residual`` as the claimed relative residual."""
+    class Liar:
+        def __init__(self, A):
+            self.n = A.shape[0]
+
+        def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
+            return gk.SolveReport(x=make_x(self.n), converged=True, iterations=1,
+                                  residuals=np.array([1.0, residual]))
+    from galerkit.solvers import unregister_solver
+
+    gk.register_solver("claims-success", Liar, overwrite=True)
+    try:
+        gk.solve(_spd(), np.ones(20), method="claims-success")
+    finally:
+        unregister_solver("claims-success")
+
+
+@case("registered solver: converged with an all-NaN x", S, "SolverError")
+def _():
+    _lying_solver(lambda n: np.full(n, np.nan), 1e-12)
+
+
+@case("registered solver: converged with an x of the wrong length", S, "SolverError")
+def _():
+    _lying_solver(lambda n: np.zeros(n - 1), 1e-12)
+
+
+@case("registered solver: claimed residual contradicted by b - A x", S, "SolverError")
+def _():
+    _lying_solver(lambda n: np.zeros(n), 1e-12)
+
+
 # ----------------------------------------------------------------------------
 # the problem driver
 # ----------------------------------------------------------------------------
