@@ -942,6 +942,40 @@ def _plan():
     return _get("plan", lambda: embed.pattern(np.ascontiguousarray(mesh2().cells))[2])
 
 
+@case("embed.pattern: 1-based cells (a Fortran host)", E, "InputError")
+def _():
+    from galerkit.bindings import embed
+
+    embed.pattern(np.ascontiguousarray(mesh2().cells) + 1)
+
+
+@case("embed.pattern: 1-based cells with points (index n_vertices)", E, "InputError")
+def _():
+    from galerkit.bindings import embed
+
+    embed.pattern(np.ascontiguousarray(mesh2().cells) + 1, points=np.ascontiguousarray(
+        mesh2().points))
+
+
+@case("embed.l2_error: a P2 vector without cell_dofs", E, "InputError")
+def _():
+    from galerkit.bindings import embed
+
+    d2 = disc(2, 2)
+    embed.l2_error(np.ascontiguousarray(mesh2().points), np.ascontiguousarray(mesh2().cells),
+                   np.zeros(d2.n_dofs), lambda x: x[0])
+
+
+@case("embed.h1_seminorm_error: u longer than the dofs of cell_dofs", E, "InputError")
+def _():
+    from galerkit.bindings import embed
+
+    d2 = disc(2, 2)
+    embed.h1_seminorm_error(np.ascontiguousarray(mesh2().points),
+                            np.ascontiguousarray(d2.mesh.cells), np.zeros(d2.n_dofs + 5),
+                            lambda x: 0 * x, cell_dofs=np.ascontiguousarray(d2.cell_dofs))
+
+
 @case("embed.pattern: vertex index out of range", E, "InputError")
 def _():
     from galerkit.bindings import embed
