@@ -30,6 +30,7 @@ per-cell coefficients ``R`` is integrated exactly once (one "point").
 
 from __future__ import annotations
 
+import math
 from functools import lru_cache
 
 import numba as nb
@@ -39,7 +40,7 @@ import scipy.sparse as sp
 from .coefficients import scalar_values, tensor_values
 from .dofs import Discretization
 from .elements import REFERENCE_FACETS, lagrange_element
-from .errors import InputError, ResourceError
+from .errors import InputError, MeshError, ResourceError
 from .geometry import invert, jacobian, physical_points
 from .quadrature import simplex_quadrature
 from .topology import incidence, index_dtype
@@ -508,6 +509,39 @@ def estimate_memory(disc: Discretization) -> dict:
     return est
 
 
+#: products of up to 2 * dim lengths appear in the element computations (Jacobian
+#: cofactors squared over the volume, J^T J): volume**2 and extent**(2 dim) must
+#: stay inside double precision, with a margin of 1e8 from its limits
+GEOMETRY_LIMITS = (1e-300, 1e300)
+
+
+def check_geometry_scale(mesh):
+    """Refuse coordinates whose scale would under- or overflow in the element computations.
+
+    Raises
+    ------
+    MeshError
+        When the squared volume of the smallest cell falls below 1e-300, or
+        the extent of the mesh to the power ``2 dim`` exceeds 1e300 (for
+        example coordinates near 1e-160 or 1e150 in 2D).
+    """
+    d = mesh.dim
+    lo, hi = GEOMETRY_LIMITS
+    vmin = float(mesh.cell_volumes.min())
+    if not vmin * vmin >= lo:
+        c = int(np.argmin(mesh.cell_volumes))
+        raise MeshError(
+            f"mesh: cell {c} has volume {vmin:.3e}: lengths this small underflow double "
+            f"precision in the element computations (squared volume below {lo:g}); "
+            "rescale the coordinates (another length unit)")
+    extent = float((mesh.points.max(axis=0) - mesh.points.min(axis=0)).max())
+    if not (math.isfinite(extent) and 2 * d * math.log10(extent) <= math.log10(hi)):
+        raise MeshError(
+            f"mesh: extent {extent:.3e} (largest coordinate {np.abs(mesh.points).max():.3e}) "
+            f"overflows double precision in the element computations (extent**{2 * d} above "
+            f"{hi:g}); rescale the coordinates (another length unit)")
+
+
 def _check_quadrature_degree(value, where):
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
         raise InputError(
@@ -677,6 +711,7 @@ class Assembler:
                 f"Assembler: quadrature_degree must be a non-negative integer, got {quadrature_degree!r}"
             )
         self.quadrature_degree = int(quadrature_degree)
+        check_geometry_scale(self.mesh)
         self._check_memory()
         self._build_pattern()
         self._chunks = {}

@@ -205,6 +205,7 @@ class PoissonProblem:
         sec["assemble"] = time.perf_counter() - t0
         t0 = time.perf_counter()
         elim, Af, bf, fixed_vals, comps, notes = self.constrain(asm, A, b, robin_diagonal)
+        check_scales(Af, bf, fixed_vals)
         sec["constrain"] = time.perf_counter() - t0
         t0 = time.perf_counter()
         solver_options = _p_multigrid_options(disc, elim, Af.shape[0], method, solver_options)
@@ -367,6 +368,53 @@ class PoissonProblem:
         for sel in comps:
             u[sel] -= float(w[sel] @ u[sel]) / float(w[sel].sum())
         return u
+
+
+#: a solution estimated beyond this would overflow double precision (1.8e308)
+SOLUTION_LIMIT = 1e300
+
+
+def check_scales(Af, bf, fixed_values):
+    """Refuse data whose solution would over- or underflow double precision.
+
+    The reduced system ``Af u = bf`` of a stiffness matrix has a solution of
+    size at most about ``max|bf| / min diag(Af)`` times the number of
+    unknowns (a crude bound, exact in order for the discrete Laplacian:
+    ``f h**d / (kappa h**(d - 2))`` times ``(L / h)**2``), plus the Dirichlet
+    values.  Beyond :data:`SOLUTION_LIMIT` the solve would give infinities.
+
+    Raises
+    ------
+    ProblemError
+        A non-finite matrix or load (a coefficient, source, flux or Dirichlet
+        value so large that the assembly or the Dirichlet lifting overflowed),
+        a stiffness diagonal that underflows, or an estimated solution beyond
+        1e300; the message names the sizes and says to rescale the units.
+    """
+    todo = ("rescale the units of the source, fluxes, Dirichlet values or conductivity "
+            "(for example kW instead of W, or a reference temperature)")
+    big = float(np.abs(fixed_values).max()) if fixed_values.size else 0.0
+    if not np.isfinite(Af.data).all() or not np.isfinite(bf).all():
+        raise ProblemError(
+            "the assembled system overflows double precision (a matrix or load entry is "
+            "infinite) although every coefficient is finite: the data are too large "
+            f"(largest Dirichlet value {big:.3e}); " + todo)
+    if bf.size == 0:
+        return
+    diag = Af.diagonal()
+    dmin = float(diag.min())
+    bmax = float(np.abs(bf).max())
+    if not dmin >= np.finfo(np.float64).tiny:
+        raise ProblemError(
+            f"the smallest stiffness diagonal entry is {dmin:.3e}, below the smallest normal "
+            "double (2.2e-308): the conductivity is too small for this mesh; " + todo)
+    est = bmax / dmin * bf.size if bmax else 0.0
+    if not est <= SOLUTION_LIMIT:
+        raise ProblemError(
+            f"the solution would overflow double precision: max |load| {bmax:.3e} over the "
+            f"smallest stiffness diagonal {dmin:.3e}, times {bf.size} unknowns, estimates "
+            f"it at {est:.3e} (limit {SOLUTION_LIMIT:g}): the source, fluxes or Dirichlet "
+            f"values (largest {big:.3e}) are too large for the conductivity; " + todo)
 
 
 def _same_value(a, b):

@@ -644,6 +644,11 @@ class PreparedSolver:
         """
         where = f"solve with {self.method!r}"
         b = _validate_vector(b, self.n, "b", where)
+        if not math.isfinite(float(np.linalg.norm(b))):
+            raise InputError(
+                f"{where}: b has entries up to {float(np.abs(b).max()):.3e}, so its norm "
+                "overflows double precision and no residual can be measured; rescale the "
+                "system (another unit for the data)")
         if x0 is not None:
             x0 = _validate_vector(x0, self.n, "x0", where)
         rtol, maxiter = _validate_solve_args(rtol, maxiter, callback, where)

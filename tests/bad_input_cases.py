@@ -686,6 +686,11 @@ def _lying_solver(make_x, residual):
         unregister_solver("claims-success")
 
 
+@case("right-hand side whose norm overflows", S, "InputError")
+def _():
+    gk.solve(_spd(), np.full(20, 1e300), method="cg")
+
+
 @case("registered solver: converged with an all-NaN x", S, "SolverError")
 def _():
     _lying_solver(lambda n: np.full(n, np.nan), 1e-12)
@@ -778,6 +783,35 @@ def _():
 @case("degree 7", P, "InputError")
 def _():
     gk.PoissonProblem(mesh2(), dirichlet={"boundary": 0.0}).solve(degree=7)
+
+
+@case("conductivity 1e-320 (subnormal)", P, "InputError")
+def _():
+    gk.PoissonProblem(mesh2(), conductivity=1e-320, source=1.0,
+                      dirichlet={"boundary": 0.0}).solve()
+
+
+@case("conductivity 1e-300 with source 1e300 (solution overflows)", P, "ProblemError")
+def _():
+    gk.PoissonProblem(mesh2(), conductivity=1e-300, source=1e300,
+                      dirichlet={"boundary": 0.0}).solve()
+
+
+@case("Dirichlet values near 1e308 (lifting overflows)", P, "ProblemError")
+def _():
+    gk.PoissonProblem(mesh2(), dirichlet={"left": 1e308, "right": -1e308}).solve()
+
+
+@case("coordinates near 1e-160 (cell volumes underflow)", P, "MeshError")
+def _():
+    m = gk.Mesh(mesh2().points * 1e-160, mesh2().cells)
+    m.tag_boundary("all", lambda x: np.ones(x.shape[1], dtype=bool))
+    gk.PoissonProblem(m, source=1.0, dirichlet={"all": 0.0}).solve()
+
+
+@case("coordinates near 1e150 (lengths overflow)", P, "MeshError")
+def _():
+    gk.Assembler(gk.Discretization(gk.Mesh(mesh2().points * 1e150, mesh2().cells), 1))
 
 
 @case("two fixed values on overlapping tags (left inside boundary)", P, "ProblemError")

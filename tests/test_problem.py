@@ -534,3 +534,30 @@ def test_the_same_condition_on_overlapping_tags_and_tags_meeting_at_a_corner_are
     # left and bottom share the corner vertex only: no facet, no conflict
     corner = gk.PoissonProblem(mesh, dirichlet={"left": 1.0, "bottom": 0.0}).solve()
     assert corner.report.converged
+
+
+# ----------------------------------------------------------------------------
+# scales: extreme units are refused, moderate ones give the scaled answer
+# ----------------------------------------------------------------------------
+@pytest.mark.parametrize("s", [1e-40, 1e-6, 1e40])
+def test_a_rescaled_square_gives_the_rescaled_solution(s):
+    # -lap u = 1 on (0, s)^2 with u = 0 on the boundary: u_s(s x) = s^2 u_1(x)
+    # (change of variables, common practice); the scale checks must let it through
+    mesh = structured_triangles(6, 6)
+    ref = PoissonProblem(mesh, source=1.0, dirichlet={"boundary": 0.0}).solve(method="direct")
+    scaled = Mesh(mesh.points * s, mesh.cells)
+    scaled.tag_boundary("all", lambda x: np.ones(x.shape[1], dtype=bool))
+    sol = PoissonProblem(scaled, source=1.0, dirichlet={"all": 0.0}).solve(method="direct")
+    np.testing.assert_allclose(sol.u / s**2, ref.u, rtol=1e-12, atol=1e-15)
+
+
+def test_conductivity_and_source_at_extreme_but_representable_ratio_are_accepted():
+    # kappa 1e-150, f 1e-150: u equals the kappa = f = 1 solution (linearity)
+    mesh = structured_triangles(4, 4)
+    ref = PoissonProblem(mesh, source=1.0, dirichlet={"boundary": 0.0}).solve()
+    sol = PoissonProblem(mesh, conductivity=1e-150, source=1e-150,
+                         dirichlet={"boundary": 0.0}).solve()
+    np.testing.assert_allclose(sol.u, ref.u, rtol=1e-12, atol=1e-15)
+    with pytest.raises(ProblemError, match=r"the solution would overflow .*estimates it at"):
+        PoissonProblem(mesh, conductivity=1e-150, source=1e160,
+                       dirichlet={"boundary": 0.0}).solve()
