@@ -23,6 +23,7 @@ import argparse
 import gc
 import json
 import math
+import re
 import resource
 import sys
 import time
@@ -47,6 +48,26 @@ BENCH_MEMORY_MEASURE = (
 )
 
 
+#: control characters (C0 but newline, DEL, C1) and the bidirectional overrides:
+#: a terminal would act on them, so echoed input shows them escaped
+_CONTROL = re.compile("[\x00-\x09\x0b-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069]")
+
+
+def printable(text) -> str:
+    """``text`` with every control character written as an escape (``\\x1b``).
+
+    Every line the command line prints passes here, so that a tag name, a
+    title or a file name cannot send terminal escape sequences.
+
+    Examples
+    --------
+    >>> printable("tag \x1b[2Jred")
+    'tag \\x1b[2Jred'
+    """
+    return _CONTROL.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"),
+                        str(text))
+
+
 def _peak_rss_mb() -> float:
     """Peak resident set size of this process so far, MB (Linux reports KiB)."""
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
@@ -61,11 +82,11 @@ class _Report:
 
     def head(self, text=""):
         if not (self.quiet or self.silent):
-            print(text)
+            print(printable(text))
 
     def result(self, text):
         if not self.silent:
-            print(text)
+            print(printable(text))
 
     def caution(self):
         self.head()
@@ -783,13 +804,13 @@ def _bench(args) -> int:
 
 # -- parser ------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="galerkit", description="Lagrange finite elements for "
+    p = _Parser(prog="galerkit", description="Lagrange finite elements for "
                                 "Poisson and diffusion problems on triangles and tetrahedra.")
     p.add_argument("--quiet", action="store_true",
                    help="no progress bars or headings: print the results only")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     # the same two flags are accepted after the subcommand too
-    common = argparse.ArgumentParser(add_help=False)
+    common = _Parser(add_help=False)
     common.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS,
                         help="no progress bars or headings: print the results only")
     common.add_argument("--json", action="store_true", default=argparse.SUPPRESS,
@@ -853,11 +874,33 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+class _UsageError(Exception):
+    """A command-line usage error (raised instead of argparse's exit)."""
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):
+        raise _UsageError(f"{self.prog}: {message} (see {self.prog} --help)")
+
+
+#: the ``"error"`` field of the JSON error object, by what went wrong
+ERROR_KINDS = {
+    "usage": "bad command line",
+    "input": "bad input",
+    "memory": "not enough memory",
+    "solver": "solver failure",
+}
+
+
 def main(argv=None) -> int:
     from galerkit.errors import InputError, ResourceError, SolverError
 
+    argv = sys.argv[1:] if argv is None else list(argv)
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except _UsageError as exc:
+        return _fail(argparse.Namespace(json="--json" in argv), "usage", exc, 2)
     try:
         return args.run(args)
     except BrokenPipeError:  # e.g. `galerkit mesh-info f.msh | head`
@@ -866,19 +909,32 @@ def main(argv=None) -> int:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
     except InputError as exc:
-        return _fail(args, "error", exc, 2)
+        return _fail(args, "input", exc, 2)
     except ResourceError as exc:
         # the problem as given does not fit this machine: the input must change
-        return _fail(args, "not enough memory", exc, 2)
+        return _fail(args, "memory", exc, 2)
+    except MemoryError:
+        return _fail(args, "memory", ResourceError(
+            f"galerkit {args.command}: ran out of memory; the problem is too large for this "
+            "machine: use a coarser mesh, fewer refinements, a smaller size or a lower "
+            "degree"), 2)
+    except RecursionError:
+        return _fail(args, "input", InputError(
+            f"galerkit {args.command}: the input is nested too deeply to read (deeply "
+            "nested TOML arrays or tables, or a formula); flatten it"), 2)
     except SolverError as exc:
-        return _fail(args, "solver error", exc, 1)
+        return _fail(args, "solver", exc, 1)
 
 
 def _fail(args, kind, exc, code):
-    """Report an error on stderr, and as one JSON object on stdout with --json."""
-    print(f"galerkit: {kind}: {exc}", file=sys.stderr)
+    """Report an error as one line on stderr, and as one JSON object on stdout with --json."""
+    label = {"usage": "usage error", "input": "error", "memory": "not enough memory",
+             "solver": "solver error"}[kind]
+    message = printable(" ".join(str(exc).split()) if kind == "usage" else str(exc))
+    print(f"galerkit: {label}: {message}", file=sys.stderr)
     if getattr(args, "json", False):
-        print(json.dumps({"error": kind, "message": str(exc), "exception": type(exc).__name__,
+        print(json.dumps({"error": ERROR_KINDS[kind], "message": message,
+                          "exception": type(exc).__name__ if kind != "usage" else "UsageError",
                           "exit_code": code}))
     return code
 

@@ -283,7 +283,14 @@ def load_problem(path) -> ProblemSpec:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise InputError(_toml_message(str(p), text, exc)) from None
-    return parse_problem(data, source=str(p), base=p.parent, text=text, stem=p.stem)
+    except RecursionError:
+        raise InputError(f"problem file {str(p)!r}: arrays or tables are nested too deeply "
+                         "to read; a problem file needs at most a few levels") from None
+    try:
+        return parse_problem(data, source=str(p), base=p.parent, text=text, stem=p.stem)
+    except RecursionError:
+        raise InputError(f"problem file {str(p)!r}: a value is nested too deeply to check; a "
+                         "problem file needs at most a few levels") from None
 
 
 def _toml_message(where: str, text: str, exc) -> str:

@@ -300,3 +300,58 @@ def test_petsc_options_without_the_petsc_engine_are_refused(tmp_path):
                          "-ksp_type cg", "--output", tmp_path)
     assert code == 2
     assert "--petsc-options applies to --engine petsc only" in err
+
+
+# ----------------------------------------------------------------------------
+# one line on stderr, one JSON object on stdout: never a traceback
+# ----------------------------------------------------------------------------
+@pytest.mark.parametrize("argv,needle", [
+    (["--json", "solve"], "the following arguments are required: problem"),
+    (["solve", "p.toml", "--degree", "9", "--json"], "argument --degree: invalid choice: 9"),
+    (["--json", "frobnicate"], "invalid choice: 'frobnicate'"),
+])
+def test_usage_errors_under_json_give_one_json_object(argv, needle, capsys):
+    assert main(argv) == 2
+    cap = capsys.readouterr()
+    obj = json.loads(cap.out)
+    assert obj["error"] == "bad command line" and obj["exit_code"] == 2
+    assert needle in obj["message"]
+    assert cap.err.count("\n") == 1 and cap.err.startswith("galerkit: usage error: ")
+
+
+def test_the_json_error_object_names_the_kind_of_error(tmp_path, capsys):
+    assert main(["--json", "mesh-info", str(tmp_path / "none.msh")]) == 2
+    obj = json.loads(capsys.readouterr().out)
+    assert obj["error"] == "bad input" and obj["exception"] == "InputError"
+
+
+def test_memory_and_recursion_errors_exit_2_with_one_line(monkeypatch, capsys, tmp_path):
+    from galerkit.bindings import cli
+
+    def exhausted(args):
+        raise MemoryError
+
+    monkeypatch.setattr(cli, "_verify", exhausted)
+    assert main(["--json", "verify"]) == 2
+    cap = capsys.readouterr()
+    assert json.loads(cap.out)["error"] == "not enough memory"
+    assert cap.err.startswith("galerkit: not enough memory: galerkit verify: ran out of memory")
+    deep = tmp_path / "deep.toml"
+    deep.write_text('[mesh]\ngenerator = "square"\n[source]\nvalue = ' + "[" * 50000
+                    + "]" * 50000 + "\n")
+    fails_with_2(["solve", deep], capsys, "nested too deeply")
+
+
+def test_control_characters_of_the_input_are_echoed_escaped(tmp_path, capsys):
+    path = tmp_path / "esc.toml"
+    path.write_text('title = "\\u001b[2Jred\\u009b"\n[mesh]\ngenerator = "square"\ncells = 2\n'
+                    '[output]\nvtu = false\n[[boundary]]\ntag = "left"\nkind = "fixed"\n'
+                    'value = 0\n')
+    assert main(["solve", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "\x1b" not in out and "\x9b" not in out
+    assert "galerkit solve: \\x1b[2Jred\\x9b" in out
+    bad = tmp_path / "bad\x1b[2J.msh"
+    assert main(["mesh-info", str(bad)]) == 2
+    err = capsys.readouterr().err
+    assert "\x1b" not in err and "\\x1b[2J" in err
