@@ -142,11 +142,11 @@ def read_mesh(path) -> Mesh:
             warnings.simplefilter("ignore")
             m = meshio.read(str(p))
     except SystemExit:
-        said = " ".join(chatter.getvalue().split())[:300] or "no reason given"
+        # meshio's own words are not quoted: they may hold lines of the file
         raise InputError(
             f"{where} could not be read; it looks damaged or is not in the format its "
-            f"suffix {p.suffix!r} says (meshio: {said}). Export the mesh again from your "
-            "mesher") from None
+            f"suffix {p.suffix!r} says (meshio gave up on it). Export the mesh again from "
+            "your mesher") from None
     except ModuleNotFoundError as exc:
         raise InputError(
             f"{where}: reading this format needs the Python package {exc.name!r}, which is "
@@ -158,9 +158,10 @@ def read_mesh(path) -> Mesh:
             raise InputError(
                 f"{where}: meshio does not know the format of suffix {p.suffix!r}; use a "
                 "Gmsh .msh, .vtu or .xdmf file (or another format meshio reads)") from None
+        # only the kind of failure: the text of a reader's exception may quote the file
         raise InputError(
             f"{where} could not be read; it looks damaged or is not in the format its "
-            f"suffix {p.suffix!r} says ({type(exc).__name__}: {text[:300]}). Export the "
+            f"suffix {p.suffix!r} says (the reader raised {type(exc).__name__}). Export the "
             "mesh again from your mesher") from None
     return _mesh_from_meshio(m, where)
 
@@ -340,9 +341,42 @@ def xml_name(name) -> str:
     return _xml_escape(_NOT_XML.sub("?", str(name)), _XML_ATTRIBUTE)
 
 
+#: a temporary sibling older than this is left over from a killed write
+STALE_SECONDS = 3600.0
+
+
+def _remove_stale_siblings(p: Path) -> None:
+    """Remove temporary siblings of ``p`` left by killed writes (older than an hour).
+
+    Only names of the exact form :func:`atomic_path` makes (``.<stem>.`` +
+    8 characters of :func:`tempfile.mkstemp` + ``<suffix>``) are touched;
+    a younger one may belong to a write still running in another process.
+    """
+    pattern = re.compile(re.escape(f".{p.stem}.") + r"[A-Za-z0-9_]{8}" + re.escape(p.suffix))
+    now = time.time()
+    try:
+        entries = list(os.scandir(p.parent or "."))
+    except OSError:
+        return
+    for entry in entries:
+        if not pattern.fullmatch(entry.name):
+            continue
+        try:
+            if entry.is_file(follow_symlinks=False) and \
+                    now - entry.stat(follow_symlinks=False).st_mtime > STALE_SECONDS:
+                os.unlink(entry.path)
+        except OSError:
+            pass
+
+
 def atomic_path(path):
-    """A temporary sibling of ``path`` (same suffix) to write and then rename."""
+    """A temporary sibling of ``path`` (same suffix) to write and then rename.
+
+    Stale siblings of earlier, killed writes of the same target are removed
+    first (see :data:`STALE_SECONDS`).
+    """
     p = Path(path)
+    _remove_stale_siblings(p)
     fd, tmp = tempfile.mkstemp(prefix=f".{p.stem}.", suffix=p.suffix, dir=p.parent or ".")
     os.close(fd)
     return Path(tmp)

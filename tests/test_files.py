@@ -405,3 +405,34 @@ def test_parallel_index_escapes_names_and_piece_paths(tmp_path):
     names = {a.get("Name") for a in root.iter("PDataArray")}
     assert {"u&v", *(TAG_ARRAY_PREFIX + t for t in ODD_TAGS)} <= names
     assert [p.get("Source") for p in root.iter("Piece")] == ["a&b<c>/p0.vtu"]
+
+
+# ----------------------------------------------------------------------------
+# what reading and writing must not do
+# ----------------------------------------------------------------------------
+@pytest.mark.parametrize("suffix", [".msh", ".vtu", ".xdmf", ".mesh", ".off"])
+def test_a_reader_error_does_not_quote_the_file_content(tmp_path, suffix):
+    path = tmp_path / f"notes{suffix}"
+    path.write_text("password=hunter2 token-7f3a\nsecond line of a private file\n")
+    with pytest.raises(InputError) as info:
+        read_mesh(path)
+    msg = str(info.value)
+    assert "hunter2" not in msg and "token-7f3a" not in msg and "private" not in msg
+    assert str(path) in msg or path.name in msg
+
+
+def test_stale_temporary_files_of_the_same_target_are_removed_at_the_next_write(tmp_path):
+    import time
+
+    sol = solved(1)
+    old = tmp_path / ".u.abcd1234.vtu"      # left by a killed write two hours ago
+    young = tmp_path / ".u.young_12.vtu"    # maybe a write running right now
+    other = tmp_path / ".v.abcd1234.vtu"    # another target's
+    mine = tmp_path / ".u.notes.vtu"        # not a name the writer makes
+    for f in (old, young, other, mine):
+        f.write_text("partial")
+    two_hours_ago = time.time() - 7200
+    for f in (old, other, mine):
+        os.utime(f, (two_hours_ago, two_hours_ago))
+    write_solution(tmp_path / "u.vtu", sol)
+    assert sorted(os.listdir(tmp_path)) == sorted(["u.vtu", young.name, other.name, mine.name])
