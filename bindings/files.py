@@ -11,7 +11,8 @@ in 2D, tetrahedra in 3D) become the mesh; cells one dimension lower (lines in
 
 * the tag of a facet is its Gmsh physical group: the group's *name* where the
   file names it (``$PhysicalNames``, meshio's ``field_data``), otherwise the
-  group's integer id written as a string (``"7"``);
+  group's integer id written as a string (``"7"``); id 0 (what a Gmsh file
+  without physical groups gives every element) is no group and no tag;
 * files without Gmsh physical groups may carry the ids in a cell-data array
   named ``medit:ref`` or ``CellEntityIds``; those are used in that order;
 * a file without facet tags gets one tag, ``"boundary"``, holding every
@@ -274,6 +275,13 @@ def _read_tags(m, mesh: Mesh, dim: int, old_to_new, where: str) -> None:
         return
     verts = np.concatenate(verts)
     ids = np.concatenate(ids)
+    if key == "gmsh:physical":
+        # Gmsh numbers physical groups from 1; 0 is what meshio gives elements
+        # of a file without physical groups: no group, no tag
+        keep = ids != 0
+        verts, ids = verts[keep], ids[keep]
+        if not verts.size:
+            return
     if verts.min() < 0 or verts.max() >= old_to_new.shape[0]:
         raise InputError(f"{where}: a {facet_type} refers to a point that does not exist; "
                          "the file is damaged")

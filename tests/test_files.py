@@ -436,3 +436,20 @@ def test_stale_temporary_files_of_the_same_target_are_removed_at_the_next_write(
         os.utime(f, (two_hours_ago, two_hours_ago))
     write_solution(tmp_path / "u.vtu", sol)
     assert sorted(os.listdir(tmp_path)) == sorted(["u.vtu", young.name, other.name, mine.name])
+
+
+@pytest.mark.parametrize("fmt", ["gmsh22"])  # meshio writes 4.1 only with entity data
+def test_a_gmsh_file_without_physical_groups_gets_only_the_boundary_tag(tmp_path, fmt):
+    # meshio writes gmsh:physical = 0 for elements outside every physical group
+    mesh = gk.structured_triangles(3, 3)
+    facets = mesh.boundary_facets
+    cells = [("line", np.asarray(facets)), ("triangle", np.asarray(mesh.cells))]
+    zeros = [np.zeros(len(facets), dtype=np.int32), np.zeros(mesh.n_cells, dtype=np.int32)]
+    path = tmp_path / "plain.msh"
+    meshio.write(path, meshio.Mesh(np.column_stack([mesh.points, np.zeros(mesh.n_vertices)]),
+                                   cells, cell_data={"gmsh:physical": zeros,
+                                                     "gmsh:geometrical": zeros}),
+                 file_format=fmt, binary=False)
+    back = read_mesh(path)
+    assert sorted(back.facet_tags) == ["boundary"]
+    assert len(back.facet_tags["boundary"]) == 12
