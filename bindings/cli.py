@@ -290,13 +290,28 @@ def _verify(args) -> int:
 
 
 # -- mesh-info ------------------------------------------------------------------------
+def tag_overlaps(mesh) -> list:
+    """One line per pair of facet tags that share facets (a tag holding the whole
+    boundary, such as ``boundary``, is left out: it overlaps every tag)."""
+    n = mesh.boundary_facets.shape[0]
+    tags = [(k, v) for k, v in mesh.facet_tags.items() if len(v) < n]
+    out = []
+    for i, (a, fa) in enumerate(tags):
+        for b, fb in tags[i + 1:]:
+            shared = int(np.intersect1d(fa, fb, assume_unique=True).size)
+            if shared:
+                out.append(f"tags {a!r} and {b!r} share {shared} facet(s); conditions on "
+                           "both must be the same, or the problem is refused")
+    return out
+
+
 def _mesh_info(args) -> int:
     from .files import read_mesh
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         mesh = read_mesh(args.file)
-    notes = [str(w.message) for w in caught]
+    notes = [str(w.message) for w in caught] + tag_overlaps(mesh)
     q = mesh.quality()
     hist, edges = np.histogram(mesh.cell_quality(), bins=10, range=(0.0, 1.0))
     info = {"file": args.file, "cell_type": mesh.cell_type, "cells": mesh.n_cells,
@@ -424,7 +439,7 @@ def _solve(args) -> int:
             spec = load_problem(args.problem)
         problem, opts = spec.build()
         opts = _apply_overrides(args, opts)
-        notes = [str(w.message) for w in caught]
+        notes = [str(w.message) for w in caught] + tag_overlaps(spec.mesh)
         load_seconds = time.perf_counter() - t0
         step("assemble and solve")
         try:
@@ -526,7 +541,8 @@ def _solve_distributed(args) -> int:
         problem, opts = spec.build()
         opts = _apply_overrides(args, opts)
         held["problem"] = problem
-        return opts, spec.mesh_description, [str(w.message) for w in caught]
+        return (opts, spec.mesh_description,
+                [str(w.message) for w in caught] + tag_overlaps(spec.mesh))
 
     opts, description, notes = _on_root(comm, load)
     load_seconds = time.perf_counter() - t0

@@ -355,3 +355,29 @@ def test_control_characters_of_the_input_are_echoed_escaped(tmp_path, capsys):
     assert main(["mesh-info", str(bad)]) == 2
     err = capsys.readouterr().err
     assert "\x1b" not in err and "\\x1b[2J" in err
+
+
+def test_overlapping_tags_are_noted_by_mesh_info_and_by_solve(tmp_path, capsys):
+    # groups 11 (x = 0) and 12 (x = 0 and y = 0) share the 3 facets of x = 0
+    import galerkit as gk
+
+    mesh = gk.structured_triangles(3, 3)
+    f = np.asarray(mesh.boundary_facets)
+    x0 = [i for i, e in enumerate(f) if (mesh.points[e, 0] == 0).all()]
+    y0 = [i for i, e in enumerate(f) if (mesh.points[e, 1] == 0).all()]
+    lines = np.vstack([f[x0], f[x0], f[y0]])
+    ids = np.array([11] * len(x0) + [12] * (len(x0) + len(y0)))
+    pts = np.column_stack([mesh.points, np.zeros(mesh.n_vertices)])
+    meshio.write(tmp_path / "m.msh", meshio.Mesh(
+        pts, [("line", lines), ("triangle", np.asarray(mesh.cells))],
+        cell_data={"gmsh:physical": [ids, np.ones(mesh.n_cells, dtype=int)],
+                   "gmsh:geometrical": [ids, np.ones(mesh.n_cells, dtype=int)]}),
+        file_format="gmsh22", binary=False)
+    note = "tags '11' and '12' share 3 facet(s)"
+    assert main(["mesh-info", str(tmp_path / "m.msh")]) == 0
+    assert note in capsys.readouterr().out
+    problem = tmp_path / "p.toml"
+    problem.write_text('[mesh]\nfile = "m.msh"\n[output]\nvtu = false\n[[boundary]]\n'
+                       'tag = "11"\nkind = "fixed"\nvalue = 0\n')
+    assert main(["--json", "solve", str(problem)]) == 0
+    assert any(note in n for n in json.loads(capsys.readouterr().out)["notes"])
