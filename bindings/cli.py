@@ -253,7 +253,15 @@ def _verify(args) -> int:
     def source(x):
         return d * pi * pi * exact(x)
 
-    mesh = gk.structured_triangles(2, 2) if d == 2 else gk.structured_tetrahedra(1, 1, 1)
+    n = args.start_size
+    if not 1 <= n <= 1000:
+        raise InputError(f"verify: --start-size must be 1..1000 cells per axis, got {n}")
+    if k * n < 2:
+        raise InputError(
+            f"verify: --start-size {n} gives a first mesh without interior unknowns for "
+            f"P{k} (all its dofs lie on the boundary, where u = 0 is fixed); use "
+            f"--start-size {-(-2 // k)} or more")
+    mesh = gk.structured_triangles(n, n) if d == 2 else gk.structured_tetrahedra(n, n, n)
     problem = gk.PoissonProblem(mesh, source=source, dirichlet={"boundary": 0.0})
     bar = _progress(args, args.levels, "verify: levels")
 
@@ -843,6 +851,8 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--cell", choices=["triangle", "tetrahedron"], default="triangle")
     v.add_argument("--degree", type=int, choices=[1, 2, 3, 4], default=1)
     v.add_argument("--levels", type=int, default=5)
+    v.add_argument("--start-size", type=int, default=2, metavar="N",
+                   help="cells per axis of the first (coarsest) mesh (default 2)")
     v.add_argument("--tolerance", type=float, default=0.1, help="allowed order deviation")
     v.add_argument("--output", default="galerkit-verify.png", help="PNG of error versus h")
     v.set_defaults(run=_verify)

@@ -381,3 +381,16 @@ def test_overlapping_tags_are_noted_by_mesh_info_and_by_solve(tmp_path, capsys):
                        'tag = "11"\nkind = "fixed"\nvalue = 0\n')
     assert main(["--json", "solve", str(problem)]) == 0
     assert any(note in n for n in json.loads(capsys.readouterr().out)["notes"])
+
+
+def test_verify_on_tetrahedra_p1_starts_from_a_mesh_with_interior_unknowns(tmp_path, capsys):
+    # a priori orders 2 (L2) and 1 (H1) for P1 (Brenner & Scott 2008)
+    assert main(["--json", "verify", "--cell", "tetrahedron", "--degree", "1", "--levels", "4",
+                 "--output", str(tmp_path / "v.png")]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["pass_l2"] and out["pass_h1"] and out["rows"][0]["n_dofs"] == 27  # 3^3 vertices
+    fails_with_2(["verify", "--start-size", "1", "--degree", "1"], capsys,
+                 "--start-size 1 gives a first mesh without interior unknowns", "--start-size 2")
+    assert main(["--json", "verify", "--start-size", "3", "--levels", "2",
+                 "--output", str(tmp_path / "w.png")]) in (0, 1)
+    assert json.loads(capsys.readouterr().out)["rows"][0]["n_dofs"] == 16  # 4 x 4 vertices
