@@ -644,7 +644,9 @@ class PreparedSolver:
         """
         where = f"solve with {self.method!r}"
         b = _validate_vector(b, self.n, "b", where)
-        if not math.isfinite(float(np.linalg.norm(b))):
+        with np.errstate(over="ignore"):
+            bnorm = float(np.linalg.norm(b))
+        if not math.isfinite(bnorm):
             raise InputError(
                 f"{where}: b has entries up to {float(np.abs(b).max()):.3e}, so its norm "
                 "overflows double precision and no residual can be measured; rescale the "
