@@ -54,7 +54,7 @@ _CONTROL = re.compile("[\x00-\x09\x0b-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069]")
 
 
 def printable(text) -> str:
-    """``text`` with every control character written as an escape (``\\x1b``).
+    r"""``text`` with every control character written as an escape (``\x1b``).
 
     Every line the command line prints passes here, so that a tag name, a
     title or a file name cannot send terminal escape sequences.
