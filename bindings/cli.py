@@ -23,6 +23,7 @@ import argparse
 import gc
 import json
 import math
+import re
 import resource
 import sys
 import time
@@ -47,6 +48,26 @@ BENCH_MEMORY_MEASURE = (
 )
 
 
+#: control characters (C0 but newline, DEL, C1) and the bidirectional overrides:
+#: a terminal would act on them, so echoed input shows them escaped
+_CONTROL = re.compile("[\x00-\x09\x0b-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069]")
+
+
+def printable(text) -> str:
+    r"""``text`` with every control character written as an escape (``\x1b``).
+
+    Every line the command line prints passes here, so that a tag name, a
+    title or a file name cannot send terminal escape sequences.
+
+    Examples
+    --------
+    >>> printable("tag \x1b[2Jred")
+    'tag \\x1b[2Jred'
+    """
+    return _CONTROL.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"),
+                        str(text))
+
+
 def _peak_rss_mb() -> float:
     """Peak resident set size of this process so far, MB (Linux reports KiB)."""
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
@@ -61,11 +82,11 @@ class _Report:
 
     def head(self, text=""):
         if not (self.quiet or self.silent):
-            print(text)
+            print(printable(text))
 
     def result(self, text):
         if not self.silent:
-            print(text)
+            print(printable(text))
 
     def caution(self):
         self.head()
@@ -233,7 +254,15 @@ def _verify(args) -> int:
     def source(x):
         return d * pi * pi * exact(x)
 
-    mesh = gk.structured_triangles(2, 2) if d == 2 else gk.structured_tetrahedra(1, 1, 1)
+    n = args.start_size
+    if not 1 <= n <= 1000:
+        raise InputError(f"verify: --start-size must be 1..1000 cells per axis, got {n}")
+    if k * n < 2:
+        raise InputError(
+            f"verify: --start-size {n} gives a first mesh without interior unknowns for "
+            f"P{k} (all its dofs lie on the boundary, where u = 0 is fixed); use "
+            f"--start-size {-(-2 // k)} or more")
+    mesh = gk.structured_triangles(n, n) if d == 2 else gk.structured_tetrahedra(n, n, n)
     problem = gk.PoissonProblem(mesh, source=source, dirichlet={"boundary": 0.0})
     bar = _progress(args, args.levels, "verify: levels")
 
@@ -270,13 +299,28 @@ def _verify(args) -> int:
 
 
 # -- mesh-info ------------------------------------------------------------------------
+def tag_overlaps(mesh) -> list:
+    """One line per pair of facet tags that share facets (a tag holding the whole
+    boundary, such as ``boundary``, is left out: it overlaps every tag)."""
+    n = mesh.boundary_facets.shape[0]
+    tags = [(k, v) for k, v in mesh.facet_tags.items() if len(v) < n]
+    out = []
+    for i, (a, fa) in enumerate(tags):
+        for b, fb in tags[i + 1:]:
+            shared = int(np.intersect1d(fa, fb, assume_unique=True).size)
+            if shared:
+                out.append(f"tags {a!r} and {b!r} share {shared} facet(s); conditions on "
+                           "both must be the same, or the problem is refused")
+    return out
+
+
 def _mesh_info(args) -> int:
     from .files import read_mesh
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         mesh = read_mesh(args.file)
-    notes = [str(w.message) for w in caught]
+    notes = [str(w.message) for w in caught] + tag_overlaps(mesh)
     q = mesh.quality()
     hist, edges = np.histogram(mesh.cell_quality(), bins=10, range=(0.0, 1.0))
     info = {"file": args.file, "cell_type": mesh.cell_type, "cells": mesh.n_cells,
@@ -405,7 +449,7 @@ def _solve(args) -> int:
             spec = load_problem(args.problem)
         problem, opts = spec.build()
         opts = _apply_overrides(args, opts)
-        notes = [str(w.message) for w in caught]
+        notes = [str(w.message) for w in caught] + tag_overlaps(spec.mesh)
         load_seconds = time.perf_counter() - t0
         step("assemble and solve")
         try:
@@ -506,7 +550,8 @@ def _solve_distributed(args) -> int:
         problem, opts = spec.build()
         opts = _apply_overrides(args, opts)
         held["problem"] = problem
-        return opts, spec.mesh_description, [str(w.message) for w in caught]
+        return (opts, spec.mesh_description,
+                [str(w.message) for w in caught] + tag_overlaps(spec.mesh))
 
     opts, description, notes = _on_root(comm, load)
     load_seconds = time.perf_counter() - t0
@@ -887,13 +932,13 @@ def _warm(args) -> int:
 
 # -- parser ------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="galerkit", description="Lagrange finite elements for "
+    p = _Parser(prog="galerkit", description="Lagrange finite elements for "
                                 "Poisson and diffusion problems on triangles and tetrahedra.")
     p.add_argument("--quiet", action="store_true",
                    help="no progress bars or headings: print the results only")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     # the same two flags are accepted after the subcommand too
-    common = argparse.ArgumentParser(add_help=False)
+    common = _Parser(add_help=False)
     common.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS,
                         help="no progress bars or headings: print the results only")
     common.add_argument("--json", action="store_true", default=argparse.SUPPRESS,
@@ -910,6 +955,8 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--cell", choices=["triangle", "tetrahedron"], default="triangle")
     v.add_argument("--degree", type=int, choices=[1, 2, 3, 4], default=1)
     v.add_argument("--levels", type=int, default=5)
+    v.add_argument("--start-size", type=int, default=2, metavar="N",
+                   help="cells per axis of the first (coarsest) mesh (default 2)")
     v.add_argument("--tolerance", type=float, default=0.1, help="allowed order deviation")
     v.add_argument("--output", default="galerkit-verify.png", help="PNG of error versus h")
     v.set_defaults(run=_verify)
@@ -964,11 +1011,33 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+class _UsageError(Exception):
+    """A command-line usage error (raised instead of argparse's exit)."""
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):
+        raise _UsageError(f"{self.prog}: {message} (see {self.prog} --help)")
+
+
+#: the ``"error"`` field of the JSON error object, by what went wrong
+ERROR_KINDS = {
+    "usage": "bad command line",
+    "input": "bad input",
+    "memory": "not enough memory",
+    "solver": "solver failure",
+}
+
+
 def main(argv=None) -> int:
     from galerkit.errors import InputError, ResourceError, SolverError
 
+    argv = sys.argv[1:] if argv is None else list(argv)
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except _UsageError as exc:
+        return _fail(argparse.Namespace(json="--json" in argv), "usage", exc, 2)
     _announce_compiling(args)
     try:
         return args.run(args)
@@ -978,19 +1047,32 @@ def main(argv=None) -> int:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
     except InputError as exc:
-        return _fail(args, "error", exc, 2)
+        return _fail(args, "input", exc, 2)
     except ResourceError as exc:
         # the problem as given does not fit this machine: the input must change
-        return _fail(args, "not enough memory", exc, 2)
+        return _fail(args, "memory", exc, 2)
+    except MemoryError:
+        return _fail(args, "memory", ResourceError(
+            f"galerkit {args.command}: ran out of memory; the problem is too large for this "
+            "machine: use a coarser mesh, fewer refinements, a smaller size or a lower "
+            "degree"), 2)
+    except RecursionError:
+        return _fail(args, "input", InputError(
+            f"galerkit {args.command}: the input is nested too deeply to read (deeply "
+            "nested TOML arrays or tables, or a formula); flatten it"), 2)
     except SolverError as exc:
-        return _fail(args, "solver error", exc, 1)
+        return _fail(args, "solver", exc, 1)
 
 
 def _fail(args, kind, exc, code):
-    """Report an error on stderr, and as one JSON object on stdout with --json."""
-    print(f"galerkit: {kind}: {exc}", file=sys.stderr)
+    """Report an error as one line on stderr, and as one JSON object on stdout with --json."""
+    label = {"usage": "usage error", "input": "error", "memory": "not enough memory",
+             "solver": "solver error"}[kind]
+    message = printable(" ".join(str(exc).split()) if kind == "usage" else str(exc))
+    print(f"galerkit: {label}: {message}", file=sys.stderr)
     if getattr(args, "json", False):
-        print(json.dumps({"error": kind, "message": str(exc), "exception": type(exc).__name__,
+        print(json.dumps({"error": ERROR_KINDS[kind], "message": message,
+                          "exception": type(exc).__name__ if kind != "usage" else "UsageError",
                           "exit_code": code}))
     return code
 

@@ -294,13 +294,34 @@ def _check_cells_array(cells, where, n_vertices=None, dim=None):
     if first >= 0:
         i = int(first)
         if code == 1:
+            one_based = int(c.min()) >= 1 and int(c.max()) == n_vertices
             raise InputError(
                 f"{where}: cell {i} has vertex indices {c[i].tolist()} outside "
                 f"0..{n_vertices - 1} ({int(count)} such cells); indices are 0-based rows "
-                "of points")
+                "of points" + (_ONE_BASED_HINT if one_based else ""))
         raise InputError(f"{where}: cell {i} repeats a vertex {c[i].tolist()} ({int(count)} such "
                          "cells); each cell needs distinct vertices")
     return c, n_vertices
+
+
+_ONE_BASED_HINT = (" (the indices run 1..n_vertices: a host numbering from 1, as in "
+                   "Fortran, must pass cells - 1)")
+
+
+def _refuse_unreferenced(c, n_vertices, where, what="vertex"):
+    """Every index 0..n_vertices - 1 must appear in the (validated) table ``c``."""
+    used = np.bincount(c.ravel(), minlength=n_vertices)
+    unused = np.flatnonzero(used == 0)
+    if unused.size:
+        one_based = unused[0] == 0 and int(c.min()) == 1
+        raise InputError(
+            f"{where}: {what} {int(unused[0])} belongs to no cell ({unused.size} such, of "
+            f"{n_vertices}); it would leave an empty matrix row or a value no cell uses"
+            + (" (no cell uses index 0: a host numbering from 1, as in Fortran, must pass "
+               "cells - 1)" if one_based else
+               "; remove unused vertices (galerkit.remove_unreferenced_vertices) or pass "
+               "the matching n_vertices" if what == "vertex" else
+               "; u must hold exactly one value per dof of cell_dofs (plan['n_dofs'])"))
 
 
 def _check_points(points, where, n_vertices, dim, cells=None):
@@ -464,7 +485,8 @@ def pattern(cells, degree=1, *, points=None, n_vertices=None):
         ``n_vertices``.
     n_vertices : int, optional
         Degree 1 without points: the number of vertices (default
-        ``cells.max() + 1``).  A vertex in no cell gives an empty matrix row.
+        ``cells.max() + 1``).  Every vertex must belong to a cell (a vertex in
+        no cell would give an empty matrix row).
 
     Returns
     -------
@@ -488,7 +510,9 @@ def pattern(cells, degree=1, *, points=None, n_vertices=None):
     ------
     InputError
         Wrong dtype, layout or shape (the expected ones named), an index out
-        of range, a cell repeating a vertex, an invalid mesh for degree > 1.
+        of range, a vertex in no cell (with a hint when the cells look
+        1-based, as from a Fortran host), a cell repeating a vertex, an
+        invalid mesh for degree > 1.
 
     Notes
     -----
@@ -531,6 +555,7 @@ def pattern(cells, degree=1, *, points=None, n_vertices=None):
             n_vertices, (int, np.integer)) or n_vertices < 1):
         raise InputError(f"{where}: n_vertices must be a positive integer, got {n_vertices!r}")
     c, nv = _check_cells_array(cells, where, n_vertices)
+    _refuse_unreferenced(c, nv, where)
     dim = c.shape[1] - 1
     extra = {}
     if degree == 1:
@@ -817,10 +842,17 @@ def _functional(points, cells, u, reference, cell_dofs, quadrature_degree, mode,
         dofs = _readonly_view(dofs)
     u = _array(u, "u", where, (np.float64,), (None,), hint=" (one value per dof)")
     n = u.shape[0]
+    if cell_dofs is None and n != nv:
+        raise InputError(
+            f"{where}: u has {n} values but the mesh has {nv} vertices; without cell_dofs u "
+            "must be a P1 vector (one value per vertex). For degree 2..4 pass "
+            "cell_dofs=plan['cell_dofs'] of embed.pattern(cells, degree, points=points)")
     first, code, _ = _check_cells(dofs, n)
     if first >= 0:
         raise InputError(f"{where}: cell_dofs row {int(first)} = {dofs[first].tolist()} is out "
                          f"of range 0..{n - 1} for u of length {n}, or repeats a dof")
+    if cell_dofs is not None:
+        _refuse_unreferenced(dofs, n, where + f" (u of length {n}, cell_dofs)", what="dof")
     i = _first_nonfinite(u)
     if i >= 0:
         raise InputError(f"{where}: u: non-finite value {float(u[i])} at dof {i}")

@@ -11,7 +11,8 @@ in 2D, tetrahedra in 3D) become the mesh; cells one dimension lower (lines in
 
 * the tag of a facet is its Gmsh physical group: the group's *name* where the
   file names it (``$PhysicalNames``, meshio's ``field_data``), otherwise the
-  group's integer id written as a string (``"7"``);
+  group's integer id written as a string (``"7"``); id 0 (what a Gmsh file
+  without physical groups gives every element) is no group and no tag;
 * files without Gmsh physical groups may carry the ids in a cell-data array
   named ``medit:ref`` or ``CellEntityIds``; those are used in that order;
 * a file without facet tags gets one tag, ``"boundary"``, holding every
@@ -39,9 +40,12 @@ import contextlib
 import io
 import math
 import os
+import re
 import tempfile
+import time
 import warnings
 from pathlib import Path
+from xml.sax.saxutils import escape as _xml_escape
 
 import numpy as np
 
@@ -50,7 +54,7 @@ from galerkit.errors import InputError, MeshError
 from galerkit.mesh import Mesh
 from galerkit.refinement import refine_uniform
 
-__all__ = ["read_mesh", "write_solution", "atomic_path", "write_atomically",
+__all__ = ["read_mesh", "write_solution", "atomic_path", "write_atomically", "xml_name",
            "sample_solution", "SampledSolution", "TAG_ARRAY_PREFIX"]
 
 _CELL_OF_DIM = {2: "triangle", 3: "tetra"}
@@ -139,11 +143,11 @@ def read_mesh(path) -> Mesh:
             warnings.simplefilter("ignore")
             m = meshio.read(str(p))
     except SystemExit:
-        said = " ".join(chatter.getvalue().split())[:300] or "no reason given"
+        # meshio's own words are not quoted: they may hold lines of the file
         raise InputError(
             f"{where} could not be read; it looks damaged or is not in the format its "
-            f"suffix {p.suffix!r} says (meshio: {said}). Export the mesh again from your "
-            "mesher") from None
+            f"suffix {p.suffix!r} says (meshio gave up on it). Export the mesh again from "
+            "your mesher") from None
     except ModuleNotFoundError as exc:
         raise InputError(
             f"{where}: reading this format needs the Python package {exc.name!r}, which is "
@@ -155,9 +159,10 @@ def read_mesh(path) -> Mesh:
             raise InputError(
                 f"{where}: meshio does not know the format of suffix {p.suffix!r}; use a "
                 "Gmsh .msh, .vtu or .xdmf file (or another format meshio reads)") from None
+        # only the kind of failure: the text of a reader's exception may quote the file
         raise InputError(
             f"{where} could not be read; it looks damaged or is not in the format its "
-            f"suffix {p.suffix!r} says ({type(exc).__name__}: {text[:300]}). Export the "
+            f"suffix {p.suffix!r} says (the reader raised {type(exc).__name__}). Export the "
             "mesh again from your mesher") from None
     return _mesh_from_meshio(m, where)
 
@@ -270,6 +275,13 @@ def _read_tags(m, mesh: Mesh, dim: int, old_to_new, where: str) -> None:
         return
     verts = np.concatenate(verts)
     ids = np.concatenate(ids)
+    if key == "gmsh:physical":
+        # Gmsh numbers physical groups from 1; 0 is what meshio gives elements
+        # of a file without physical groups: no group, no tag
+        keep = ids != 0
+        verts, ids = verts[keep], ids[keep]
+        if not verts.size:
+            return
     if verts.min() < 0 or verts.max() >= old_to_new.shape[0]:
         raise InputError(f"{where}: a {facet_type} refers to a point that does not exist; "
                          "the file is damaged")
@@ -313,9 +325,66 @@ def _read_tags(m, mesh: Mesh, dim: int, old_to_new, where: str) -> None:
 # ----------------------------------------------------------------------------
 # writing
 # ----------------------------------------------------------------------------
+#: characters XML 1.0 cannot hold even escaped (C0 controls but tab, newline and
+#: carriage return; lone surrogates; U+FFFE, U+FFFF): replaced by "?" in names
+_NOT_XML = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\ud800-\udfff\ufffe\uffff]")
+#: escapes inside a double-quoted XML attribute; tab, newline and carriage
+#: return as references, since a parser turns them into spaces otherwise
+_XML_ATTRIBUTE = {'"': "&quot;", "'": "&apos;", "\t": "&#9;", "\n": "&#10;", "\r": "&#13;"}
+
+
+def xml_name(name) -> str:
+    """``name`` as the text of an XML attribute: ``& < > " '`` escaped.
+
+    meshio's VTU writer puts array names into ``Name="..."`` as they are, so
+    every name galerkit writes (field, tags, extra arrays) passes through here;
+    a reader gives back the original name.  Characters that XML cannot hold
+    at all become ``"?"``.
+
+    Examples
+    --------
+    >>> xml_name('a<b & "c"')
+    'a&lt;b &amp; &quot;c&quot;'
+    """
+    return _xml_escape(_NOT_XML.sub("?", str(name)), _XML_ATTRIBUTE)
+
+
+#: a temporary sibling older than this is left over from a killed write
+STALE_SECONDS = 3600.0
+
+
+def _remove_stale_siblings(p: Path) -> None:
+    """Remove temporary siblings of ``p`` left by killed writes (older than an hour).
+
+    Only names of the exact form :func:`atomic_path` makes (``.<stem>.`` +
+    8 characters of :func:`tempfile.mkstemp` + ``<suffix>``) are touched;
+    a younger one may belong to a write still running in another process.
+    """
+    pattern = re.compile(re.escape(f".{p.stem}.") + r"[A-Za-z0-9_]{8}" + re.escape(p.suffix))
+    now = time.time()
+    try:
+        entries = list(os.scandir(p.parent or "."))
+    except OSError:
+        return
+    for entry in entries:
+        if not pattern.fullmatch(entry.name):
+            continue
+        try:
+            if entry.is_file(follow_symlinks=False) and \
+                    now - entry.stat(follow_symlinks=False).st_mtime > STALE_SECONDS:
+                os.unlink(entry.path)
+        except OSError:
+            pass
+
+
 def atomic_path(path):
-    """A temporary sibling of ``path`` (same suffix) to write and then rename."""
+    """A temporary sibling of ``path`` (same suffix) to write and then rename.
+
+    Stale siblings of earlier, killed writes of the same target are removed
+    first (see :data:`STALE_SECONDS`).
+    """
     p = Path(path)
+    _remove_stale_siblings(p)
     fd, tmp = tempfile.mkstemp(prefix=f".{p.stem}.", suffix=p.suffix, dir=p.parent or ".")
     os.close(fd)
     return Path(tmp)
@@ -548,7 +617,7 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
     g3[:, :d] = grad
     f3 = np.zeros((mesh.n_cells, 3))
     f3[:, :d] = flux
-    cell_data = {f"grad_{name}": [g3], "flux": [f3],
+    cell_data = {xml_name(f"grad_{name}"): [g3], "flux": [f3],
                  "parent_cell": [np.asarray(s.parent_cells, dtype=np.int64)]}
     if tensor is not None:
         t9 = np.zeros((mesh.n_cells, 3, 3))
@@ -557,13 +626,13 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
     else:
         cell_data["conductivity"] = [scalar]
     for key, f in (extra_cell_data or {}).items():
-        cell_data[key] = [np.asarray(f(np.asarray(s.parent_cells)))]
-    point_data = {name: np.asarray(s.values, dtype=np.float64)}
+        cell_data[xml_name(key)] = [np.asarray(f(np.asarray(s.parent_cells)))]
+    point_data = {xml_name(name): np.asarray(s.values, dtype=np.float64)}
     for tag in (mesh.facet_tags if tags is None else tags):
         member = np.zeros(mesh.n_vertices, dtype=np.uint8)
         if tag in mesh.facet_tags:
             member[mesh.boundary_facets[mesh.facet_tags[tag]].ravel()] = 1
-        point_data[TAG_ARRAY_PREFIX + tag] = member
+        point_data[xml_name(TAG_ARRAY_PREFIX + tag)] = member
     out = meshio.Mesh(pts, [(_CELL_OF_DIM[d], np.asarray(mesh.cells))], point_data=point_data,
                       cell_data=cell_data)
     return write_atomically(path, lambda tmp: meshio.write(str(tmp), out, file_format="vtu"))
@@ -644,8 +713,8 @@ def write_parallel_index(path, pieces):
 
     def arrays(kind):
         return "".join(
-            f'      <PDataArray type="{t}"' + (f' Name="{n}"' if n else "")
-            + f' NumberOfComponents="{c}"/>\n' for t, n, c in sections[kind])
+            f'      <PDataArray type="{xml_name(t)}"' + (f' Name="{xml_name(n)}"' if n else "")
+            + f' NumberOfComponents="{xml_name(c)}"/>\n' for t, n, c in sections[kind])
 
     rel = [os.path.relpath(Path(p), path.parent) for p in pieces]
     text = ('<?xml version="1.0"?>\n'
@@ -654,6 +723,6 @@ def write_parallel_index(path, pieces):
             '    <PPointData>\n' + arrays("PointData") + '    </PPointData>\n'
             '    <PCellData>\n' + arrays("CellData") + '    </PCellData>\n'
             '    <PPoints>\n' + arrays("Points") + '    </PPoints>\n'
-            + "".join(f'    <Piece Source="{r}"/>\n' for r in rel)
+            + "".join(f'    <Piece Source="{xml_name(r)}"/>\n' for r in rel)
             + '  </PUnstructuredGrid>\n</VTKFile>\n')
-    return write_atomically(path, lambda tmp: Path(tmp).write_text(text))
+    return write_atomically(path, lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))

@@ -283,7 +283,14 @@ def load_problem(path) -> ProblemSpec:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise InputError(_toml_message(str(p), text, exc)) from None
-    return parse_problem(data, source=str(p), base=p.parent, text=text, stem=p.stem)
+    except RecursionError:
+        raise InputError(f"problem file {str(p)!r}: arrays or tables are nested too deeply "
+                         "to read; a problem file needs at most a few levels") from None
+    try:
+        return parse_problem(data, source=str(p), base=p.parent, text=text, stem=p.stem)
+    except RecursionError:
+        raise InputError(f"problem file {str(p)!r}: a value is nested too deeply to check; a "
+                         "problem file needs at most a few levels") from None
 
 
 def _toml_message(where: str, text: str, exc) -> str:
@@ -686,7 +693,31 @@ def _boundary_entries(r: _Reader, entries, mesh, dim, constants):
                    "several tags in the mesher if parts need different ones")
         seen[tag] = i
         out.append(BoundaryEntry(index=i + 1, tag=tag, kind=kind, values=values))
+    _refuse_overlaps(r, out, mesh)
     return out
+
+
+def _same_formulas(a, b):
+    """Whether two entries' value tables are the same condition (same formulas)."""
+    def key(e):
+        return e.value if e.is_constant else e.text.strip()
+    return a.keys() == b.keys() and all(key(a[k]) == key(b[k]) for k in a)
+
+
+def _refuse_overlaps(r: _Reader, entries, mesh):
+    from galerkit.problem import conflicting_conditions
+
+    clash = conflicting_conditions(mesh, [(e.kind, e.tag, e.values) for e in entries],
+                                   same=_same_formulas)
+    if clash is None:
+        return
+    i, j, count = clash
+    a, b = entries[i], entries[j]
+    r.fail(("boundary", b.index - 1, "tag"),
+           f"tag {b.tag!r} ({b.kind}) shares {count} boundary facet(s) with tag {a.tag!r} "
+           f"({a.kind}, boundary entry {a.index}), and the two conditions differ",
+           "give each facet one condition: split the facets into separate tags in the "
+           "mesher, or remove one of the entries")
 
 
 def _solver_section(r: _Reader, t, opts: RunOptions):

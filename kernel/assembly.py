@@ -30,6 +30,7 @@ per-cell coefficients ``R`` is integrated exactly once (one "point").
 
 from __future__ import annotations
 
+import math
 from functools import lru_cache
 
 import numba as nb
@@ -39,7 +40,7 @@ import scipy.sparse as sp
 from .coefficients import scalar_values, tensor_values
 from .dofs import Discretization
 from .elements import REFERENCE_FACETS, lagrange_element
-from .errors import InputError, ResourceError
+from .errors import InputError, MeshError, ResourceError
 from .geometry import invert, jacobian, physical_points
 from .quadrature import simplex_quadrature
 from .topology import incidence, index_dtype
@@ -508,6 +509,39 @@ def estimate_memory(disc: Discretization) -> dict:
     return est
 
 
+#: products of up to 2 * dim lengths appear in the element computations (Jacobian
+#: cofactors squared over the volume, J^T J): volume**2 and extent**(2 dim) must
+#: stay inside double precision, with a margin of 1e8 from its limits
+GEOMETRY_LIMITS = (1e-300, 1e300)
+
+
+def check_geometry_scale(mesh):
+    """Refuse coordinates whose scale would under- or overflow in the element computations.
+
+    Raises
+    ------
+    MeshError
+        When the squared volume of the smallest cell falls below 1e-300, or
+        the extent of the mesh to the power ``2 dim`` exceeds 1e300 (for
+        example coordinates near 1e-160 or 1e150 in 2D).
+    """
+    d = mesh.dim
+    lo, hi = GEOMETRY_LIMITS
+    vmin = float(mesh.cell_volumes.min())
+    if not vmin * vmin >= lo:
+        c = int(np.argmin(mesh.cell_volumes))
+        raise MeshError(
+            f"mesh: cell {c} has volume {vmin:.3e}: lengths this small underflow double "
+            f"precision in the element computations (squared volume below {lo:g}); "
+            "rescale the coordinates (another length unit)")
+    extent = float((mesh.points.max(axis=0) - mesh.points.min(axis=0)).max())
+    if not (math.isfinite(extent) and 2 * d * math.log10(extent) <= math.log10(hi)):
+        raise MeshError(
+            f"mesh: extent {extent:.3e} (largest coordinate {np.abs(mesh.points).max():.3e}) "
+            f"overflows double precision in the element computations (extent**{2 * d} above "
+            f"{hi:g}); rescale the coordinates (another length unit)")
+
+
 def _check_quadrature_degree(value, where):
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
         raise InputError(
@@ -677,6 +711,7 @@ class Assembler:
                 f"Assembler: quadrature_degree must be a non-negative integer, got {quadrature_degree!r}"
             )
         self.quadrature_degree = int(quadrature_degree)
+        check_geometry_scale(self.mesh)
         self._check_memory()
         self._build_pattern()
         self._chunks = {}
@@ -728,7 +763,20 @@ class Assembler:
         }
 
     # -- helpers -----------------------------------------------------------------
-    def _new_matrix(self, out, zero=False):
+    def _refuse_aliasing(self, target, method, inputs):
+        """Refuse an ``out=`` array that shares memory with an input or with the
+        assembler's own arrays: the kernels write it while they read those."""
+        own = {"the mesh points": self.mesh.points, "the mesh cells": self.mesh.cells,
+               "the dof table": self.disc.cell_dofs, "the sparsity pattern": self.indices,
+               "the row pointers": self.indptr}
+        for label, a in [*inputs.items(), *own.items()]:
+            if isinstance(a, np.ndarray) and np.may_share_memory(target, a):
+                raise InputError(
+                    f"Assembler.{method}: out= shares memory with {label}; the result would "
+                    f"be written while {label} is read (a wrong result). Pass a separate "
+                    "array as out=, or a copy of the input")
+
+    def _new_matrix(self, out, zero=False, method="stiffness", inputs=None):
         n = self.n_dofs
         if out is None:
             data = np.empty(self.nnz) if not zero else np.zeros(self.nnz)
@@ -755,6 +803,7 @@ class Assembler:
                     f"shape ({self.nnz},), got {out.data.dtype} of shape {out.data.shape}"
                     + (f" ({what})" if what else ""))
             data = out.data
+            self._refuse_aliasing(data, method, inputs or {})
             if zero:
                 data[:] = 0.0
         return data, out
@@ -768,13 +817,14 @@ class Assembler:
         A.has_canonical_format = True
         return A
 
-    def _new_vector(self, out, zero=False):
+    def _new_vector(self, out, zero=False, method="load", inputs=None):
         n = self.n_dofs
         if out is None:
             return np.zeros(n) if zero else np.empty(n)
         if not isinstance(out, np.ndarray) or out.shape != (n,) or out.dtype != np.float64 \
                 or not out.flags.c_contiguous or not out.flags.writeable:
             raise InputError(f"out= must be a writeable contiguous float64 array of shape ({n},)")
+        self._refuse_aliasing(out, method, inputs or {})
         if zero:
             out[:] = 0.0
         return out
@@ -830,7 +880,8 @@ class Assembler:
                 _check_quadrature_degree(quadrature_degree, "stiffness")
             kappa, rule = self._cell_coefficient(conductivity, "conductivity", True, deg)
             tensor = np.zeros((0, d, d))
-        data, out = self._new_matrix(out)
+        data, out = self._new_matrix(out, method="stiffness",
+                                     inputs={"conductivity": conductivity})
         rows, cells = self._chunk_plan()
         if k == 1:
             if rule is not None:  # gradients are constant: average kappa per cell
@@ -872,7 +923,7 @@ class Assembler:
             R = np.ascontiguousarray(mass_table(mesh.dim, k, 2 * k).sum(axis=0, keepdims=True))
         else:
             R = mass_table(mesh.dim, k, rule.degree)
-        data, out = self._new_matrix(out)
+        data, out = self._new_matrix(out, method="mass", inputs={"the coefficient": coefficient})
         rows, cells = self._chunk_plan()
         _generic_matrix(mesh.points, mesh.cells, disc.cell_dofs, self.order, self.posmap,
                         self.indptr, rows, cells, 1, R, coef, np.zeros((0, mesh.dim, mesh.dim)),
@@ -896,7 +947,7 @@ class Assembler:
         """
         disc, mesh = self.disc, self.mesh
         k = disc.degree
-        b = self._new_vector(out)
+        b = self._new_vector(out, method="load", inputs={"source": source})
         rows, cells = self._chunk_plan()
         arr = None
         if not callable(source):
@@ -996,7 +1047,8 @@ class Assembler:
             tag, coefficient, "boundary coefficient", deg, nonnegative=nonnegative)
         R = np.einsum("q,fqa,fqb->fqab", frule.weights, V, V)
         R = np.ascontiguousarray(0.5 * (R + R.transpose(0, 1, 3, 2)))  # exactly symmetric
-        data, out = self._new_matrix(out, zero=True)
+        data, out = self._new_matrix(out, zero=True, method="boundary_mass",
+                                     inputs={"the coefficient": coefficient})
         _boundary_matrix(self.mesh.points, self.mesh.cells, self.disc.cell_dofs, fcells, flocal,
                          facet_local, refm, R, coef, self.indptr, self.indices, data)
         return self._wrap(data, out)
@@ -1022,7 +1074,7 @@ class Assembler:
         fcells, flocal, facet_local, refm, frule, V, coef = self._facet_setup(
             tag, flux, "boundary flux", deg)
         R = np.ascontiguousarray(frule.weights[None, :, None] * V)
-        b = self._new_vector(out, zero=True)
+        b = self._new_vector(out, zero=True, method="boundary_load", inputs={"flux": flux})
         _boundary_vector(self.mesh.points, self.mesh.cells, self.disc.cell_dofs, fcells, flocal,
                          facet_local, refm, R, coef, b)
         return b

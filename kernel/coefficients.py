@@ -77,7 +77,8 @@ def _real_array(v, what):
     return a.astype(np.float64, copy=False)
 
 
-def _first_bad(values, bad, where_shape, name, what, points=None, unit="cell", offset=0):
+def _first_bad(values, bad, where_shape, name, what, points=None, unit="cell", offset=0,
+               todo=""):
     flat = np.flatnonzero(bad.ravel())
     i = int(flat[0])
     c = offset + (i // where_shape[1] if values.ndim == 2 else i)
@@ -85,7 +86,13 @@ def _first_bad(values, bad, where_shape, name, what, points=None, unit="cell", o
            f"({flat.size} such values)")
     if points is not None:
         msg += f" at x = {points[:, i].tolist()}"
-    raise InputError(msg)
+    raise InputError(msg + (f"; {todo}" if todo else ""))
+
+
+#: positive coefficients below this (the smallest normal double) underflow
+TINY = float(np.finfo(np.float64).tiny)
+_RESCALE = ("it underflows double precision (smallest normal number 2.2e-308), so the "
+            "matrix would be singular or meaningless; rescale the units of the problem")
 
 
 def scalar_values(value, n_items, name, *, positive=False, points=None,
@@ -155,6 +162,9 @@ def _validate(v, name, positive, points, unit, nonnegative=False, offset=0):
         bad = v <= 0
         if bad.any():
             _first_bad(v, bad, v.shape, name, "non-positive", points, unit, offset)
+        bad = v < TINY
+        if bad.any():
+            _first_bad(v, bad, v.shape, name, "subnormal", points, unit, offset, _RESCALE)
     if nonnegative:
         bad = v < 0
         if bad.any():
@@ -205,4 +215,9 @@ def tensor_values(value, n_cells, dim, name):
             f"{name}: tensor of cell {c} is not positive definite (smallest eigenvalue "
             f"{lam[c]:.3e}); conductivity tensors must be symmetric positive definite"
         )
+    bad = lam < TINY
+    if bad.any():
+        c = int(np.flatnonzero(bad)[0])
+        raise InputError(f"{name}: tensor of cell {c} has the subnormal smallest eigenvalue "
+                         f"{lam[c]:.3e}; {_RESCALE}")
     return np.ascontiguousarray(arr)

@@ -10,8 +10,11 @@ Solves ``-div(kappa grad u) = f`` in the domain with, per facet tag,
   ``alpha u_ext`` to the load) -- for example convective cooling with heat
   transfer coefficient alpha and ambient temperature u_ext.
 
-Untagged boundary is insulated (zero Neumann).  Where Dirichlet tags share
-dofs, the tag given later wins.  A connected component of the mesh without
+Untagged boundary is insulated (zero Neumann).  Two conditions on tags that
+share facets are refused (:func:`conflicting_conditions`) unless they are the
+same condition (same kind, same value); tags that meet only at a vertex or an
+edge of a facet are fine, and where Dirichlet tags share such dofs the tag
+given later wins.  A connected component of the mesh without
 Dirichlet dofs and without Robin facets of alpha > 0 is pure Neumann: its
 data must be compatible (``integral f + integral q = 0`` over that
 component), and its free constant is fixed by a zero mean over it.  Robin
@@ -37,7 +40,7 @@ from .mesh import Mesh
 from .multigrid import p1_coarse_space
 from .solvers import SolveReport, choose_method, prepare_solver
 
-__all__ = ["PoissonProblem", "Solution"]
+__all__ = ["PoissonProblem", "Solution", "conflicting_conditions"]
 
 
 @dataclass
@@ -130,6 +133,19 @@ class PoissonProblem:
                 raise ProblemError(
                     f"robin[{tag!r}]: the heat transfer coefficient alpha = {alpha!r} must be "
                     "finite and >= 0 (a negative alpha makes the problem unstable)")
+        conditions = [(kind, tag, value)
+                      for kind, table in (("dirichlet", self.dirichlet),
+                                          ("neumann", self.neumann), ("robin", self.robin))
+                      for tag, value in table.items()]
+        clash = conflicting_conditions(mesh, conditions)
+        if clash is not None:
+            i, j, count = clash
+            (ka, ta, _), (kb, tb, _) = conditions[i], conditions[j]
+            raise ProblemError(
+                f"{ka}[{ta!r}] and {kb}[{tb!r}]: tags {ta!r} and {tb!r} share {count} "
+                "boundary facet(s) and the two conditions differ, so the result would "
+                "depend on which one is applied last. Give each facet one condition: tag "
+                "the facets of each condition separately (Mesh.tag_boundary) or drop one")
 
     def discretize(self, degree=1):
         return Discretization(self.mesh, degree)
@@ -191,6 +207,7 @@ class PoissonProblem:
         sec["assemble"] = time.perf_counter() - t0
         t0 = time.perf_counter()
         elim, Af, bf, fixed_vals, comps, notes = self.constrain(asm, A, b, robin_diagonal)
+        check_scales(Af, bf, fixed_vals)
         sec["constrain"] = time.perf_counter() - t0
         t0 = time.perf_counter()
         solver_options = _p_multigrid_options(disc, elim, Af.shape[0], method, solver_options)
@@ -356,6 +373,108 @@ class PoissonProblem:
         for sel in comps:
             u[sel] -= float(w[sel] @ u[sel]) / float(w[sel].sum())
         return u
+
+
+#: a solution estimated beyond this would overflow double precision (1.8e308)
+SOLUTION_LIMIT = 1e300
+
+
+def check_scales(Af, bf, fixed_values):
+    """Refuse data whose solution would over- or underflow double precision.
+
+    The reduced system ``Af u = bf`` of a stiffness matrix has a solution of
+    size at most about ``max|bf| / min diag(Af)`` times the number of
+    unknowns (a crude bound, exact in order for the discrete Laplacian:
+    ``f h**d / (kappa h**(d - 2))`` times ``(L / h)**2``), plus the Dirichlet
+    values.  Beyond :data:`SOLUTION_LIMIT` the solve would give infinities.
+
+    Raises
+    ------
+    ProblemError
+        A non-finite matrix or load (a coefficient, source, flux or Dirichlet
+        value so large that the assembly or the Dirichlet lifting overflowed),
+        a stiffness diagonal that underflows, or an estimated solution beyond
+        1e300; the message names the sizes and says to rescale the units.
+    """
+    todo = ("rescale the units of the source, fluxes, Dirichlet values or conductivity "
+            "(for example kW instead of W, or a reference temperature)")
+    big = float(np.abs(fixed_values).max()) if fixed_values.size else 0.0
+    if not np.isfinite(Af.data).all() or not np.isfinite(bf).all():
+        raise ProblemError(
+            "the assembled system overflows double precision (a matrix or load entry is "
+            "infinite) although every coefficient is finite: the data are too large "
+            f"(largest Dirichlet value {big:.3e}); " + todo)
+    if bf.size == 0:
+        return
+    diag = Af.diagonal()
+    dmin = float(diag.min())
+    bmax = float(np.abs(bf).max())
+    if not dmin >= np.finfo(np.float64).tiny:
+        raise ProblemError(
+            f"the smallest stiffness diagonal entry is {dmin:.3e}, below the smallest normal "
+            "double (2.2e-308): the conductivity is too small for this mesh; " + todo)
+    est = bmax / dmin * bf.size if bmax else 0.0
+    if not est <= SOLUTION_LIMIT:
+        raise ProblemError(
+            f"the solution would overflow double precision: max |load| {bmax:.3e} over the "
+            f"smallest stiffness diagonal {dmin:.3e}, times {bf.size} unknowns, estimates "
+            f"it at {est:.3e} (limit {SOLUTION_LIMIT:g}): the source, fluxes or Dirichlet "
+            f"values (largest {big:.3e}) are too large for the conductivity; " + todo)
+
+
+def _same_value(a, b):
+    if a is b:
+        return True
+    if isinstance(a, (tuple, list)) and isinstance(b, (tuple, list)):
+        return len(a) == len(b) and all(_same_value(x, y) for x, y in zip(a, b))
+    if callable(a) or callable(b):
+        return False
+    try:
+        a_arr, b_arr = np.asarray(a), np.asarray(b)
+        return a_arr.shape == b_arr.shape and bool(np.array_equal(a_arr, b_arr))
+    except Exception:  # noqa: BLE001 - values that cannot be compared are different
+        return False
+
+
+def conflicting_conditions(mesh, conditions, same=_same_value):
+    """The first pair of different conditions whose tags share boundary facets.
+
+    Parameters
+    ----------
+    mesh : Mesh
+    conditions : list of (kind, tag, value)
+        ``kind`` is for example ``"dirichlet"``; ``tag`` is a facet tag of
+        ``mesh``.
+    same : callable, optional
+        ``same(value_a, value_b)``: whether two values of one kind are the same
+        condition (default: the same object, or equal numbers or arrays).
+
+    Returns
+    -------
+    (i, j, shared_facet_count) or None
+        Positions in ``conditions``, ``i < j``.
+
+    Examples
+    --------
+    >>> from galerkit import structured_triangles
+    >>> m = structured_triangles(4, 4)
+    >>> conflicting_conditions(m, [("dirichlet", "left", 1.0),
+    ...                            ("dirichlet", "boundary", 0.0)])
+    (0, 1, 4)
+    >>> conflicting_conditions(m, [("dirichlet", "left", 0.0),
+    ...                            ("dirichlet", "boundary", 0.0)]) is None
+    True
+    """
+    ids = [mesh.tagged_facets(tag) for _, tag, _ in conditions]
+    for i in range(len(conditions)):
+        for j in range(i + 1, len(conditions)):
+            (ka, _, va), (kb, _, vb) = conditions[i], conditions[j]
+            if ka == kb and same(va, vb):
+                continue
+            count = int(np.intersect1d(ids[i], ids[j], assume_unique=True).size)
+            if count:
+                return i, j, count
+    return None
 
 
 def check_compatibility(total, accurate, scale, component, n_components):

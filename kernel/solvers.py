@@ -106,6 +106,7 @@ __all__ = [
     "unregister_solver",
     "prepare_solver",
     "solve",
+    "check_report",
     "choose_method",
     "AUTO_DIRECT_LIMITS",
     "MEMORY_LIMIT_VARIABLE",
@@ -580,7 +581,8 @@ class PreparedSolver:
     """
 
     def __init__(self, method: str, n: int, backend: Any, setup_seconds: float, options: dict,
-                 factory: Callable[..., Any] | None = None, pattern: tuple | None = None):
+                 factory: Callable[..., Any] | None = None, pattern: tuple | None = None,
+                 matrix: Any = None):
         self.method = method
         self.n = n
         self.setup_seconds = setup_seconds
@@ -588,6 +590,7 @@ class PreparedSolver:
         self._backend = backend
         self._factory = factory
         self._pattern = pattern
+        self._matrix = matrix  # for the check of every report (check_report)
 
     def __repr__(self) -> str:
         return (
@@ -631,7 +634,9 @@ class PreparedSolver:
             ``rtol``, ``maxiter`` or ``callback`` is invalid.
         SolverError
             If a registered solver returns something other than a
-            :class:`SolveReport`.
+            :class:`SolveReport`, or a report that fails :func:`check_report`
+            (an ``x`` of the wrong shape or not finite, a claimed residual
+            that ``||b - A x||`` contradicts).
 
         Examples
         --------
@@ -645,6 +650,13 @@ class PreparedSolver:
         """
         where = f"solve with {self.method!r}"
         b = _validate_vector(b, self.n, "b", where)
+        with np.errstate(over="ignore"):
+            bnorm = float(np.linalg.norm(b))
+        if not math.isfinite(bnorm):
+            raise InputError(
+                f"{where}: b has entries up to {float(np.abs(b).max()):.3e}, so its norm "
+                "overflows double precision and no residual can be measured; rescale the "
+                "system (another unit for the data)")
         if x0 is not None:
             x0 = _validate_vector(x0, self.n, "x0", where)
         rtol, maxiter = _validate_solve_args(rtol, maxiter, callback, where)
@@ -656,6 +668,8 @@ class PreparedSolver:
                 f"{where}: the registered solver returned {type(report).__name__}, "
                 "not a SolveReport; fix its solve() method"
             )
+        if self._matrix is not None:
+            check_report(report, self._matrix, b, where)
         return replace(
             report,
             method=self.method,
@@ -724,6 +738,8 @@ class PreparedSolver:
         if not numeric_only:
             self._backend = self._factory(A, **self.options)
         self._pattern = (A.indptr, A.indices)
+        if self._matrix is not None:
+            self._matrix = A
         self.setup_seconds = time.perf_counter() - t0
         return numeric_only
 
@@ -810,7 +826,66 @@ def prepare_solver(
             f"{type(backend).__name__}, which has no solve() method"
         )
     return PreparedSolver(name, n, backend, setup, options, factory=entry.factory,
-                          pattern=(A.indptr, A.indices))
+                          pattern=(A.indptr, A.indices), matrix=A)
+
+
+#: relative residuals below this are round-off for :func:`check_report`
+RESIDUAL_FLOOR = 1e-12
+
+
+def check_report(report: SolveReport, A: Any, b: np.ndarray, where: str) -> None:
+    """Refuse a solver's report that cannot be right.
+
+    Every report of every solver (built-in or registered) passes here:
+
+    * ``x`` is a real array of shape ``(n,)`` with finite entries;
+    * ``residuals`` is a non-empty 1D array whose last entry (the claimed
+      relative residual) is a finite number >= 0;
+    * the claimed relative residual and the true one, ``||b - A x|| / ||b||``,
+      agree within a factor 10 (both counted as at least ``RESIDUAL_FLOOR``,
+      1e-12, the round-off level of the residual itself); skipped when
+      ``b == 0``.
+
+    Raises
+    ------
+    SolverError
+        Naming the check that failed and the solver (``where``): its report
+        is wrong, not the input.
+    """
+    x = report.x
+    n = A.shape[0]
+    if not isinstance(x, np.ndarray) or x.shape != (n,) or x.dtype.kind not in "iuf":
+        raise SolverError(
+            f"{where}: the solver reported x of "
+            + (f"shape {x.shape}, dtype {x.dtype}" if isinstance(x, np.ndarray)
+               else f"type {type(x).__name__}")
+            + f"; it must be a real array of shape ({n},). Fix the solver's solve()")
+    bad = ~np.isfinite(x)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise SolverError(
+            f"{where}: the solver reported x with {int(bad.sum())} non-finite entries (first "
+            f"x[{i}] = {x[i]}) and converged={report.converged}; the solution cannot be "
+            "used. Try another method ('direct' or 'cg-amg'), or fix the solver")
+    res = np.asarray(report.residuals)
+    if res.ndim != 1 or res.size == 0 or res.dtype.kind not in "iuf" \
+            or not (np.isfinite(res[-1]) and res[-1] >= 0):
+        raise SolverError(
+            f"{where}: the solver reported residuals {res!r:.80}; it must be a non-empty "
+            "1D array ending with the relative residual (a finite number >= 0). Fix the "
+            "solver's solve()")
+    bnorm = float(np.linalg.norm(b))
+    if bnorm == 0.0:
+        return
+    true = float(np.linalg.norm(b - A @ x.astype(np.float64, copy=False))) / bnorm
+    claimed = float(res[-1])
+    t, c = max(true, RESIDUAL_FLOOR), max(claimed, RESIDUAL_FLOOR)
+    if t > 10.0 * c or c > 10.0 * t:
+        raise SolverError(
+            f"{where}: the solver claimed relative residual {claimed:.3e} "
+            f"(converged={report.converged}), but ||b - A x|| / ||b|| = {true:.3e} for its "
+            "x: more than a factor 10 apart, so the report cannot be trusted. Try another "
+            "method ('direct' or 'cg-amg'), or fix the solver's residual")
 
 
 def solve(

@@ -471,6 +471,32 @@ def _():
     asm().load(1.0, out=np.empty(3))
 
 
+@case("load out= the dof-vector source itself", A, "InputError")
+def _():
+    b = np.linspace(0.0, 1.0, asm(2, 2).n_dofs)
+    asm(2, 2).load(b, out=b)
+
+
+@case("mass coefficient read from the out= matrix's own data", A, "InputError")
+def _():
+    M = asm().mass()
+    M.data[:] = 1.0
+    asm().mass(M.data[:mesh2().n_cells], out=M)
+
+
+@case("boundary_load flux read from the out= vector", A, "InputError")
+def _():
+    b = np.zeros(asm().n_dofs)
+    asm().boundary_load("left", b[:len(mesh2().tagged_facets("left"))], out=b)
+
+
+@case("per-cell conductivity read from the out= matrix's own data", A, "InputError")
+def _():
+    K = asm().stiffness()
+    K.data[:] = 1.0  # a valid conductivity, read from the matrix being written
+    asm().stiffness(K.data[:mesh2().n_cells], out=K)
+
+
 @case("boundary_load on an unknown tag", A, "MeshError")
 def _():
     asm().boundary_load("inlet", 1.0)
@@ -641,6 +667,45 @@ def _():
     gk.solve(sp.csr_array(A), np.ones(20), method="cg-jacobi")
 
 
+def _lying_solver(make_x, residual):
+    """Solve with a registered solver whose report says "converged" with
+    ``make_x(n)`` as x and ``residual`` as the claimed relative residual."""
+    class Liar:
+        def __init__(self, A):
+            self.n = A.shape[0]
+
+        def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
+            return gk.SolveReport(x=make_x(self.n), converged=True, iterations=1,
+                                  residuals=np.array([1.0, residual]))
+    from galerkit.solvers import unregister_solver
+
+    gk.register_solver("claims-success", Liar, overwrite=True)
+    try:
+        gk.solve(_spd(), np.ones(20), method="claims-success")
+    finally:
+        unregister_solver("claims-success")
+
+
+@case("right-hand side whose norm overflows", S, "InputError")
+def _():
+    gk.solve(_spd(), np.full(20, 1e300), method="cg")
+
+
+@case("registered solver: converged with an all-NaN x", S, "SolverError")
+def _():
+    _lying_solver(lambda n: np.full(n, np.nan), 1e-12)
+
+
+@case("registered solver: converged with an x of the wrong length", S, "SolverError")
+def _():
+    _lying_solver(lambda n: np.zeros(n - 1), 1e-12)
+
+
+@case("registered solver: claimed residual contradicted by b - A x", S, "SolverError")
+def _():
+    _lying_solver(lambda n: np.zeros(n), 1e-12)
+
+
 # ----------------------------------------------------------------------------
 # the problem driver
 # ----------------------------------------------------------------------------
@@ -718,6 +783,45 @@ def _():
 @case("degree 7", P, "InputError")
 def _():
     gk.PoissonProblem(mesh2(), dirichlet={"boundary": 0.0}).solve(degree=7)
+
+
+@case("conductivity 1e-320 (subnormal)", P, "InputError")
+def _():
+    gk.PoissonProblem(mesh2(), conductivity=1e-320, source=1.0,
+                      dirichlet={"boundary": 0.0}).solve()
+
+
+@case("conductivity 1e-300 with source 1e300 (solution overflows)", P, "ProblemError")
+def _():
+    gk.PoissonProblem(mesh2(), conductivity=1e-300, source=1e300,
+                      dirichlet={"boundary": 0.0}).solve()
+
+
+@case("Dirichlet values near 1e308 (lifting overflows)", P, "ProblemError")
+def _():
+    gk.PoissonProblem(mesh2(), dirichlet={"left": 1e308, "right": -1e308}).solve()
+
+
+@case("coordinates near 1e-160 (cell volumes underflow)", P, "MeshError")
+def _():
+    m = gk.Mesh(mesh2().points * 1e-160, mesh2().cells)
+    m.tag_boundary("all", lambda x: np.ones(x.shape[1], dtype=bool))
+    gk.PoissonProblem(m, source=1.0, dirichlet={"all": 0.0}).solve()
+
+
+@case("coordinates near 1e150 (lengths overflow)", P, "MeshError")
+def _():
+    gk.Assembler(gk.Discretization(gk.Mesh(mesh2().points * 1e150, mesh2().cells), 1))
+
+
+@case("two fixed values on overlapping tags (left inside boundary)", P, "ProblemError")
+def _():
+    gk.PoissonProblem(mesh2(), dirichlet={"left": 1.0, "boundary": 0.0})
+
+
+@case("a flux on a tag inside a fixed tag", P, "ProblemError")
+def _():
+    gk.PoissonProblem(mesh2(), dirichlet={"boundary": 0.0}, neumann={"left": 2.0})
 
 
 # ----------------------------------------------------------------------------
@@ -872,6 +976,40 @@ def _plan():
     return _get("plan", lambda: embed.pattern(np.ascontiguousarray(mesh2().cells))[2])
 
 
+@case("embed.pattern: 1-based cells (a Fortran host)", E, "InputError")
+def _():
+    from galerkit.bindings import embed
+
+    embed.pattern(np.ascontiguousarray(mesh2().cells) + 1)
+
+
+@case("embed.pattern: 1-based cells with points (index n_vertices)", E, "InputError")
+def _():
+    from galerkit.bindings import embed
+
+    embed.pattern(np.ascontiguousarray(mesh2().cells) + 1, points=np.ascontiguousarray(
+        mesh2().points))
+
+
+@case("embed.l2_error: a P2 vector without cell_dofs", E, "InputError")
+def _():
+    from galerkit.bindings import embed
+
+    d2 = disc(2, 2)
+    embed.l2_error(np.ascontiguousarray(mesh2().points), np.ascontiguousarray(mesh2().cells),
+                   np.zeros(d2.n_dofs), lambda x: x[0])
+
+
+@case("embed.h1_seminorm_error: u longer than the dofs of cell_dofs", E, "InputError")
+def _():
+    from galerkit.bindings import embed
+
+    d2 = disc(2, 2)
+    embed.h1_seminorm_error(np.ascontiguousarray(mesh2().points),
+                            np.ascontiguousarray(d2.mesh.cells), np.zeros(d2.n_dofs + 5),
+                            lambda x: 0 * x, cell_dofs=np.ascontiguousarray(d2.cell_dofs))
+
+
 @case("embed.pattern: vertex index out of range", E, "InputError")
 def _():
     from galerkit.bindings import embed
@@ -966,6 +1104,27 @@ def _():
     from galerkit.bindings.petsc_engine import parse_petsc_options
 
     parse_petsc_options("ksp_type cg")
+
+
+# ----------------------------------------------------------------------------
+# problem files and the command line
+# ----------------------------------------------------------------------------
+C = "problem files and command line"
+
+
+def _problem(extra=""):
+    import tomllib
+
+    from galerkit.bindings.problemfile import parse_problem
+
+    text = '[mesh]\ngenerator = "square"\ncells = 3\n' + extra
+    return parse_problem(tomllib.loads(text), source="case.toml", text=text)
+
+
+@case("problem file: a fixed entry and a flux entry on overlapping tags", C, "InputError")
+def _():
+    _problem('[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n'
+             '[[boundary]]\ntag = "top"\nkind = "flux"\nflux = 1\n')
 
 
 # ----------------------------------------------------------------------------

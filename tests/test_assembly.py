@@ -717,3 +717,24 @@ def test_callable_with_wrong_output_rejected(asm2):
         asm2.boundary_mass("top", lambda x: x[0][:1])
     with pytest.raises(InputError, match="callable failed"):
         asm2.stiffness(lambda x: x[5])
+
+
+def test_out_aliasing_an_input_is_refused_and_a_separate_out_gives_the_fresh_result():
+    import galerkit as gk
+    from galerkit.errors import InputError
+
+    asm = gk.Assembler(gk.Discretization(gk.structured_triangles(3, 3), 2))
+    f = np.linspace(0.0, 1.0, asm.n_dofs)
+    fresh = asm.load(f)
+    with pytest.raises(InputError, match=r"Assembler\.load: out= shares memory with source"):
+        asm.load(f, out=f)
+    np.testing.assert_array_equal(f, np.linspace(0.0, 1.0, asm.n_dofs))  # untouched
+    out = np.empty(asm.n_dofs)
+    np.testing.assert_array_equal(asm.load(f, out=out), fresh)
+    K = asm.stiffness()
+    K.data[:] = 1.0  # a valid conductivity, read from the matrix being written
+    with pytest.raises(InputError, match=r"Assembler\.stiffness: out= shares memory with "
+                                         r"conductivity"):
+        asm.stiffness(K.data[:asm.mesh.n_cells], out=K)
+    with pytest.raises(InputError, match=r"Assembler\.boundary_mass: out= shares memory"):
+        asm.boundary_mass("left", K.data[:len(asm.mesh.tagged_facets("left"))], out=K)

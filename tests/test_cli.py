@@ -251,9 +251,9 @@ def test_bad_options_exit_2(tmp_path, capsys, square):
 
 
 def test_argparse_mistakes_exit_2(capsys):
-    with pytest.raises(SystemExit) as info:
-        main(["solve"])
-    assert info.value.code == 2
+    assert main(["solve"]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("galerkit: usage error: ") and err.count("\n") == 1
 
 
 def test_no_convergence_exits_1_and_writes_no_files(tmp_path, capsys, square):
@@ -300,3 +300,97 @@ def test_petsc_options_without_the_petsc_engine_are_refused(tmp_path):
                          "-ksp_type cg", "--output", tmp_path)
     assert code == 2
     assert "--petsc-options applies to --engine petsc only" in err
+
+
+# ----------------------------------------------------------------------------
+# one line on stderr, one JSON object on stdout: never a traceback
+# ----------------------------------------------------------------------------
+@pytest.mark.parametrize("argv,needle", [
+    (["--json", "solve"], "the following arguments are required: problem"),
+    (["solve", "p.toml", "--degree", "9", "--json"], "argument --degree: invalid choice: 9"),
+    (["--json", "frobnicate"], "invalid choice: 'frobnicate'"),
+])
+def test_usage_errors_under_json_give_one_json_object(argv, needle, capsys):
+    assert main(argv) == 2
+    cap = capsys.readouterr()
+    obj = json.loads(cap.out)
+    assert obj["error"] == "bad command line" and obj["exit_code"] == 2
+    assert needle in obj["message"]
+    assert cap.err.count("\n") == 1 and cap.err.startswith("galerkit: usage error: ")
+
+
+def test_the_json_error_object_names_the_kind_of_error(tmp_path, capsys):
+    assert main(["--json", "mesh-info", str(tmp_path / "none.msh")]) == 2
+    obj = json.loads(capsys.readouterr().out)
+    assert obj["error"] == "bad input" and obj["exception"] == "InputError"
+
+
+def test_memory_and_recursion_errors_exit_2_with_one_line(monkeypatch, capsys, tmp_path):
+    from galerkit.bindings import cli
+
+    def exhausted(args):
+        raise MemoryError
+
+    monkeypatch.setattr(cli, "_verify", exhausted)
+    assert main(["--json", "verify"]) == 2
+    cap = capsys.readouterr()
+    assert json.loads(cap.out)["error"] == "not enough memory"
+    assert cap.err.startswith("galerkit: not enough memory: galerkit verify: ran out of memory")
+    deep = tmp_path / "deep.toml"
+    deep.write_text('[mesh]\ngenerator = "square"\n[source]\nvalue = ' + "[" * 50000
+                    + "]" * 50000 + "\n")
+    fails_with_2(["solve", deep], capsys, "nested too deeply")
+
+
+def test_control_characters_of_the_input_are_echoed_escaped(tmp_path, capsys):
+    path = tmp_path / "esc.toml"
+    path.write_text('title = "\\u001b[2Jred\\u009b"\n[mesh]\ngenerator = "square"\ncells = 2\n'
+                    '[output]\nvtu = false\n[[boundary]]\ntag = "left"\nkind = "fixed"\n'
+                    'value = 0\n')
+    assert main(["solve", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "\x1b" not in out and "\x9b" not in out
+    assert "galerkit solve: \\x1b[2Jred\\x9b" in out
+    bad = tmp_path / "bad\x1b[2J.msh"
+    assert main(["mesh-info", str(bad)]) == 2
+    err = capsys.readouterr().err
+    assert "\x1b" not in err and "\\x1b[2J" in err
+
+
+def test_overlapping_tags_are_noted_by_mesh_info_and_by_solve(tmp_path, capsys):
+    # groups 11 (x = 0) and 12 (x = 0 and y = 0) share the 3 facets of x = 0
+    import galerkit as gk
+
+    mesh = gk.structured_triangles(3, 3)
+    f = np.asarray(mesh.boundary_facets)
+    x0 = [i for i, e in enumerate(f) if (mesh.points[e, 0] == 0).all()]
+    y0 = [i for i, e in enumerate(f) if (mesh.points[e, 1] == 0).all()]
+    lines = np.vstack([f[x0], f[x0], f[y0]])
+    ids = np.array([11] * len(x0) + [12] * (len(x0) + len(y0)))
+    pts = np.column_stack([mesh.points, np.zeros(mesh.n_vertices)])
+    meshio.write(tmp_path / "m.msh", meshio.Mesh(
+        pts, [("line", lines), ("triangle", np.asarray(mesh.cells))],
+        cell_data={"gmsh:physical": [ids, np.ones(mesh.n_cells, dtype=int)],
+                   "gmsh:geometrical": [ids, np.ones(mesh.n_cells, dtype=int)]}),
+        file_format="gmsh22", binary=False)
+    note = "tags '11' and '12' share 3 facet(s)"
+    assert main(["mesh-info", str(tmp_path / "m.msh")]) == 0
+    assert note in capsys.readouterr().out
+    problem = tmp_path / "p.toml"
+    problem.write_text('[mesh]\nfile = "m.msh"\n[output]\nvtu = false\n[[boundary]]\n'
+                       'tag = "11"\nkind = "fixed"\nvalue = 0\n')
+    assert main(["--json", "solve", str(problem)]) == 0
+    assert any(note in n for n in json.loads(capsys.readouterr().out)["notes"])
+
+
+def test_verify_on_tetrahedra_p1_starts_from_a_mesh_with_interior_unknowns(tmp_path, capsys):
+    # a priori orders 2 (L2) and 1 (H1) for P1 (Brenner & Scott 2008)
+    assert main(["--json", "verify", "--cell", "tetrahedron", "--degree", "1", "--levels", "4",
+                 "--output", str(tmp_path / "v.png")]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["pass_l2"] and out["pass_h1"] and out["rows"][0]["n_dofs"] == 27  # 3^3 vertices
+    fails_with_2(["verify", "--start-size", "1", "--degree", "1"], capsys,
+                 "--start-size 1 gives a first mesh without interior unknowns", "--start-size 2")
+    assert main(["--json", "verify", "--start-size", "3", "--levels", "2",
+                 "--output", str(tmp_path / "w.png")]) in (0, 1)
+    assert json.loads(capsys.readouterr().out)["rows"][0]["n_dofs"] == 16  # 4 x 4 vertices

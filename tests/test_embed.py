@@ -387,3 +387,33 @@ def test_matrix_free_bad_input():
     x = np.ones(30)
     with pytest.raises(InputError, match="out overlaps x"):
         op.apply(x, out=x)
+
+
+def test_a_p2_vector_without_cell_dofs_is_refused_and_with_them_gives_the_small_error():
+    # u = x^2 + y is in P2: its interpolant's L2 error is round-off (common practice)
+    from galerkit import structured_triangles
+
+    mesh = structured_triangles(6, 6)
+    disc = Discretization(mesh, 2)
+    exact = lambda x: x[0] ** 2 + x[1]  # noqa: E731
+    u = disc.interpolate(exact)
+    p, c = np.ascontiguousarray(mesh.points), np.ascontiguousarray(mesh.cells)
+    assert embed.l2_error(p, c, u, exact, cell_dofs=np.ascontiguousarray(disc.cell_dofs)) < 1e-13
+    with pytest.raises(InputError, match=rf"u has {disc.n_dofs} values but the mesh has "
+                                         rf"{mesh.n_vertices} vertices.*cell_dofs"):
+        embed.l2_error(p, c, u, exact)
+    with pytest.raises(InputError, match=r"dof \d+ belongs to no cell"):
+        embed.h1_seminorm_error(p, c, np.append(u, 0.0), lambda x: np.stack([2 * x[0], 1 + 0 * x[1]]),
+                                cell_dofs=np.ascontiguousarray(disc.cell_dofs))
+
+
+def test_one_based_cells_are_refused_with_the_numbering_hint():
+    cells = np.array([[0, 1, 2], [1, 3, 2]], dtype=np.int32)
+    with pytest.raises(InputError, match=r"vertex 0 belongs to no cell .*numbering from 1"):
+        embed.pattern(cells + 1)
+    points = np.array([[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [1.0, 1.0]])
+    with pytest.raises(InputError, match=r"outside 0\.\.3 .*numbering from 1"):
+        embed.pattern(cells + 1, points=points)
+    with pytest.raises(InputError, match=r"vertex 4 belongs to no cell"):
+        embed.pattern(cells, n_vertices=5)
+    assert embed.pattern(cells)[2]["n_dofs"] == 4

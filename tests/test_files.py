@@ -354,3 +354,102 @@ def test_writing_into_a_missing_folder_is_an_input_error_and_writes_nothing(tmp_
     with pytest.raises(InputError, match="cannot write"):
         write_solution(tmp_path / "nofolder" / "u.vtu", sol)
     assert os.listdir(tmp_path) == []
+
+
+# ----------------------------------------------------------------------------
+# names with XML-special characters
+# ----------------------------------------------------------------------------
+ODD_TAGS = ["a<b", "x&y", 'say "hi"', "it's", "1 > 0", "tab\there"]
+
+
+def _odd_tagged_solution():
+    mesh = gk.structured_triangles(4, 4)
+    for i, name in enumerate(ODD_TAGS):
+        mesh.set_facet_tag(name, [i])
+    return gk.PoissonProblem(mesh, source=1.0, dirichlet={"boundary": 0.0}).solve()
+
+
+def test_tag_and_field_names_with_xml_special_characters_read_back_with_meshio(tmp_path):
+    # read-back by meshio's VTU reader (an independent XML parser, ElementTree)
+    sol = _odd_tagged_solution()
+    path = write_solution(tmp_path / "odd.vtu", sol, name="T<&>",
+                          extra_cell_data={'w"x': lambda parent: parent * 1.0})
+    back = meshio.read(path)
+    np.testing.assert_array_equal(back.point_data["T<&>"], sol.u)
+    for i, name in enumerate(ODD_TAGS):
+        member = back.point_data[TAG_ARRAY_PREFIX + name]
+        expected = np.zeros(sol.mesh.n_vertices, dtype=np.uint8)
+        expected[sol.mesh.boundary_facets[i]] = 1
+        np.testing.assert_array_equal(member, expected)
+    assert "grad_T<&>" in back.cell_data and 'w"x' in back.cell_data
+
+
+def test_characters_xml_cannot_hold_become_question_marks():
+    from galerkit.bindings.files import xml_name
+
+    assert xml_name("a\x1b[31mb\x00") == "a?[31mb?"
+    assert xml_name("line\nnext") == "line&#10;next"
+
+
+def test_parallel_index_escapes_names_and_piece_paths(tmp_path):
+    import xml.etree.ElementTree as ET
+
+    from galerkit.bindings.files import write_parallel_index
+
+    sol = _odd_tagged_solution()
+    folder = tmp_path / "a&b<c>"
+    folder.mkdir()
+    piece = write_solution(folder / "p0.vtu", sol, name="u&v")
+    index = write_parallel_index(tmp_path / "all.pvtu", [piece])
+    root = ET.parse(index).getroot()  # Python's XML 1.0 parser
+    names = {a.get("Name") for a in root.iter("PDataArray")}
+    assert {"u&v", *(TAG_ARRAY_PREFIX + t for t in ODD_TAGS)} <= names
+    assert [p.get("Source") for p in root.iter("Piece")] == ["a&b<c>/p0.vtu"]
+
+
+# ----------------------------------------------------------------------------
+# what reading and writing must not do
+# ----------------------------------------------------------------------------
+@pytest.mark.parametrize("suffix", [".msh", ".vtu", ".stl", ".node", ".mesh"])  # .stl, .node: quoted it
+def test_a_reader_error_does_not_quote_the_file_content(tmp_path, suffix):
+    path = tmp_path / f"notes{suffix}"
+    path.write_text("password=hunter2 token-7f3a\nsecond line of a private file\n")
+    with pytest.raises(InputError) as info:
+        read_mesh(path)
+    msg = str(info.value)
+    assert "hunter2" not in msg and "token-7f3a" not in msg and "private" not in msg
+    assert str(path) in msg or path.name in msg
+
+
+def test_stale_temporary_files_of_the_same_target_are_removed_at_the_next_write(tmp_path):
+    import time
+
+    sol = solved(1)
+    old = tmp_path / ".u.abcd1234.vtu"      # left by a killed write two hours ago
+    young = tmp_path / ".u.young_12.vtu"    # maybe a write running right now
+    other = tmp_path / ".v.abcd1234.vtu"    # another target's
+    mine = tmp_path / ".u.notes.vtu"        # not a name the writer makes
+    for f in (old, young, other, mine):
+        f.write_text("partial")
+    two_hours_ago = time.time() - 7200
+    for f in (old, other, mine):
+        os.utime(f, (two_hours_ago, two_hours_ago))
+    write_solution(tmp_path / "u.vtu", sol)
+    assert sorted(os.listdir(tmp_path)) == sorted(["u.vtu", young.name, other.name, mine.name])
+
+
+@pytest.mark.parametrize("fmt", ["gmsh22"])  # meshio writes 4.1 only with entity data
+def test_a_gmsh_file_without_physical_groups_gets_only_the_boundary_tag(tmp_path, fmt):
+    # meshio writes gmsh:physical = 0 for elements outside every physical group
+    mesh = gk.structured_triangles(3, 3)
+    facets = mesh.boundary_facets
+    cells = [("line", np.asarray(facets)), ("triangle", np.asarray(mesh.cells))]
+    zeros = [np.zeros(len(facets), dtype=np.int32), np.zeros(mesh.n_cells, dtype=np.int32)]
+    path = tmp_path / "plain.msh"
+    meshio.write(path, meshio.Mesh(np.column_stack([mesh.points, np.zeros(mesh.n_vertices)]),
+                                   cells, cell_data={"gmsh:physical": zeros,
+                                                     "gmsh:geometrical": zeros}),
+                 file_format=fmt, binary=False)
+    back = read_mesh(path)
+    assert sorted(back.facet_tags) == ["boundary"]
+    assert len(back.facet_tags["boundary"]) == 12

@@ -47,6 +47,7 @@ from galerkit import (
 )
 from galerkit.errors import InputError, ProblemError
 from galerkit.evaluation import cell_gradients
+import galerkit as gk
 
 PI = np.pi
 
@@ -502,3 +503,61 @@ def test_table_markdown_and_csv_round_trip():
             else:
                 assert got == want[col]
     np.testing.assert_array_equal(table.column("n_dofs"), [9, 25, 81])
+
+
+# ----------------------------------------------------------------------------
+# conditions on tags that share facets
+# ----------------------------------------------------------------------------
+@pytest.mark.parametrize("order", [("left", "boundary"), ("boundary", "left")])
+def test_different_fixed_values_on_overlapping_tags_are_refused_in_either_order(order):
+    mesh = gk.structured_triangles(4, 4)
+    values = {"left": 1.0, "boundary": 0.0}
+    with pytest.raises(ProblemError, match=r"tags '(left|boundary)' and '(left|boundary)' "
+                                           r"share 4 boundary facet\(s\)"):
+        gk.PoissonProblem(mesh, dirichlet={t: values[t] for t in order})
+
+
+def test_a_flux_under_a_fixed_tag_is_refused_naming_both_conditions():
+    mesh = gk.structured_triangles(4, 4)
+    with pytest.raises(ProblemError, match=r"dirichlet\['boundary'\] and neumann\['top'\]: "
+                                           r"tags 'boundary' and 'top' share 4 "):
+        gk.PoissonProblem(mesh, dirichlet={"boundary": 0.0}, neumann={"top": 1.0})
+    with pytest.raises(ProblemError, match=r"dirichlet\['top'\] and robin\['top'\]"):
+        gk.PoissonProblem(mesh, dirichlet={"top": 0.0}, robin={"top": (1.0, 0.0)})
+
+
+def test_the_same_condition_on_overlapping_tags_and_tags_meeting_at_a_corner_are_accepted():
+    mesh = gk.structured_triangles(4, 4)
+    one = gk.PoissonProblem(mesh, source=1.0, dirichlet={"boundary": 0.0}).solve()
+    both = gk.PoissonProblem(mesh, source=1.0, dirichlet={"left": 0.0, "boundary": 0.0}).solve()
+    np.testing.assert_array_equal(one.u, both.u)
+    # left and bottom share the corner vertex only: no facet, no conflict
+    corner = gk.PoissonProblem(mesh, dirichlet={"left": 1.0, "bottom": 0.0}).solve()
+    assert corner.report.converged
+
+
+# ----------------------------------------------------------------------------
+# scales: extreme units are refused, moderate ones give the scaled answer
+# ----------------------------------------------------------------------------
+@pytest.mark.parametrize("s", [1e-40, 1e-6, 1e40])
+def test_a_rescaled_square_gives_the_rescaled_solution(s):
+    # -lap u = 1 on (0, s)^2 with u = 0 on the boundary: u_s(s x) = s^2 u_1(x)
+    # (change of variables, common practice); the scale checks must let it through
+    mesh = structured_triangles(6, 6)
+    ref = PoissonProblem(mesh, source=1.0, dirichlet={"boundary": 0.0}).solve(method="direct")
+    scaled = Mesh(mesh.points * s, mesh.cells)
+    scaled.tag_boundary("all", lambda x: np.ones(x.shape[1], dtype=bool))
+    sol = PoissonProblem(scaled, source=1.0, dirichlet={"all": 0.0}).solve(method="direct")
+    np.testing.assert_allclose(sol.u / s**2, ref.u, rtol=1e-12, atol=1e-15)
+
+
+def test_conductivity_and_source_at_extreme_but_representable_ratio_are_accepted():
+    # kappa 1e-150, f 1e-150: u equals the kappa = f = 1 solution (linearity)
+    mesh = structured_triangles(4, 4)
+    ref = PoissonProblem(mesh, source=1.0, dirichlet={"boundary": 0.0}).solve()
+    sol = PoissonProblem(mesh, conductivity=1e-150, source=1e-150,
+                         dirichlet={"boundary": 0.0}).solve()
+    np.testing.assert_allclose(sol.u, ref.u, rtol=1e-12, atol=1e-15)
+    with pytest.raises(ProblemError, match=r"the solution would overflow .*estimates it at"):
+        PoissonProblem(mesh, conductivity=1e-150, source=1e160,
+                       dirichlet={"boundary": 0.0}).solve()

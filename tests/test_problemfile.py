@@ -413,3 +413,15 @@ def test_the_example_mesh_is_what_its_script_writes():
     # the annulus between r = 0.05 and 0.10: area of the inscribed polygons (64 sides)
     polygon = 0.5 * 64 * np.sin(2 * np.pi / 64) * (0.10**2 - 0.05**2)
     assert float(mesh.cell_volumes.sum()) == pytest.approx(polygon, rel=1e-12)
+
+
+def test_entries_on_overlapping_tags_are_refused_naming_both_entries_and_the_count(tmp_path):
+    msg = error_of(tmp_path, BASE + '[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n'
+                   '[[boundary]]\ntag = "left"\nkind = "flux"\nflux = 1\n')
+    assert re.search(r"line 10: boundary\[2\]\.tag: tag 'left' \(flux\) shares 4 boundary "
+                     r"facet\(s\) with tag 'boundary' \(fixed, boundary entry 1\)", msg), msg
+    # the same fixed value twice is one condition
+    spec = load_problem(write(tmp_path, BASE + '[[boundary]]\ntag = "boundary"\nkind = "fixed"\n'
+                              'value = "0"\n[[boundary]]\ntag = "left"\nkind = "fixed"\n'
+                              'value = 0\n', name="same.toml"))
+    assert [e.tag for e in spec.boundary] == ["boundary", "left"]

@@ -14,7 +14,7 @@ import pytest
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from galerkit.errors import InputError, ResourceError
+from galerkit.errors import InputError, ResourceError, SolverError
 from galerkit.solvers import (
     AUTO_DIRECT_LIMITS,
     SolveReport,
@@ -473,3 +473,60 @@ def test_choose_method_refuses_out_of_range_arguments(kwargs):
     args = {"n": 100, **kwargs}
     with pytest.raises(InputError):
         choose_method(**args)
+
+
+# ---------------------------------------------------------------- every report is checked
+
+
+def _reporting(x_of, residual_of, converged=True):
+    """A solver whose report gives ``x_of(A, b)`` and claims ``residual_of(A, b, x)``."""
+    class Backend:
+        def __init__(self, A):
+            self.A = A
+
+        def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
+            x = x_of(self.A, b)
+            return SolveReport(x=x, converged=converged, iterations=1,
+                               residuals=np.array([1.0, residual_of(self.A, b, x)]))
+    return Backend
+
+
+def _true(A, b, x):
+    return float(np.linalg.norm(b - A @ x) / np.linalg.norm(b))
+
+
+def test_an_honest_registered_solver_passes_the_report_check(scratch_names):
+    # SciPy's spsolve as the reference solver, reporting its true residual
+    A, b = laplacian_2d(12), load_vector(144)
+    register_solver("honest", _reporting(lambda A, b: spla.spsolve(A.tocsc(), b), _true))
+    scratch_names.append("honest")
+    rep = solve(A, b, method="honest")
+    assert rep.converged and rep.final_residual < 1e-12
+
+
+@pytest.mark.parametrize("x_of,residual_of,match", [
+    (lambda A, b: np.full(b.size, np.nan), lambda A, b, x: 1e-12,
+     r"x with 144 non-finite entries \(first x\[0\] = nan\) and converged=True"),
+    (lambda A, b: np.zeros(b.size + 2), lambda A, b, x: 1e-12,
+     r"x of shape \(146,\), dtype float64; it must be a real array of shape \(144,\)"),
+    (lambda A, b: np.zeros(b.size), lambda A, b, x: 1e-12,
+     r"claimed relative residual 1\.000e-12 .* \|\|b - A x\|\| / \|\|b\|\| = 1\.000e\+00"),
+    # a factor 20 off: refused; the true residual of this x is 0.05
+    (lambda A, b: 0.95 * spla.spsolve(A.tocsc(), b), lambda A, b, x: 0.05 / 20,
+     r"claimed relative residual 2\.500e-03"),
+])
+def test_a_solver_report_that_cannot_be_right_is_a_solver_error(scratch_names, x_of,
+                                                                 residual_of, match):
+    register_solver("liar", _reporting(x_of, residual_of))
+    scratch_names.append("liar")
+    with pytest.raises(SolverError, match=match):
+        solve(laplacian_2d(12), load_vector(144), method="liar")
+
+
+def test_a_claimed_residual_within_a_factor_10_is_accepted(scratch_names):
+    x_of = lambda A, b: 0.95 * spla.spsolve(A.tocsc(), b)  # noqa: E731
+    register_solver("roughly", _reporting(x_of, lambda A, b, x: _true(A, b, x) / 5,
+                                          converged=False))
+    scratch_names.append("roughly")
+    rep = solve(laplacian_2d(12), load_vector(144), method="roughly")
+    assert np.isclose(rep.final_residual * 5, 0.05, rtol=1e-10)
