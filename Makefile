@@ -4,7 +4,7 @@ VENV   := .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: venv demo test bench clean clean-cache mpi test-mpi
+.PHONY: venv demo test test-slow mutants bench clean clean-cache mpi test-mpi
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -19,6 +19,15 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(PY) -m pytest -q
+
+# the convergence runs marked slow (tests/test_rates.py); `make test` leaves them out
+test-slow: $(STAMP)
+	$(PY) -m pytest -q -m slow
+
+# mutation check of the suite: small faults in a temporary copy of the kernel, one at
+# a time; a fast selection of tests must fail on each (tests/mutants.py)
+mutants: $(STAMP)
+	$(PY) tests/mutants.py
 
 # Optional distributed engine (galerkit[mpi]): MPICH and LAPACK from Debian,
 # PETSc and petsc4py built from their source distributions (no wheels exist;

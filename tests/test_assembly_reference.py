@@ -138,10 +138,11 @@ def test_two_cell_matrices_are_the_sums_of_the_element_matrices(dim, k):
     pts = disc.dof_points
     Kw, Mw = np.zeros((disc.n_dofs,) * 2), np.zeros((disc.n_dofs,) * 2)
     T = np.array(TENSOR[dim], dtype=float)
-    for verts in cells:
+    scale = (1.0, 3.0)  # one tensor per cell: T on the first, 3 T on the second
+    for verts, c in zip(cells, scale):
         nodes, K, M, _ = ref.element_matrices(rational(verts), k, tensor=TENSOR[dim])
         p = ref.match_nodes(pts, nodes)
-        Kw[np.ix_(p, p)] += K
+        Kw[np.ix_(p, p)] += c * K
         Mw[np.ix_(p, p)] += M
-    assert_close(asm.stiffness(T).toarray(), Kw)
+    assert_close(asm.stiffness(np.array([c * T for c in scale])).toarray(), Kw)
     assert_close(asm.mass().toarray(), Mw)
