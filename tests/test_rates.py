@@ -131,14 +131,14 @@ def test_variable_and_tensor_conductivity_rates(dim, degree, n0, levels, kind):
 
 
 # ------------------------------------------------------------------ pure Neumann, 3D
-@pytest.mark.parametrize("degree, n0, levels", [(1, 2, 4), (2, 1, 4)])
+@pytest.mark.parametrize("degree, n0, levels", [(1, 2, 5), (2, 1, 5)])
 def test_pure_neumann_rates_in_3d(degree, n0, levels):
     # u = cos(pi x) cos(pi y) cos(pi z): zero mean, du/dn = 0 on the cube's boundary,
     # -laplace u = 3 pi^2 u; unique up to a constant, fixed by the zero mean
     u = sp.cos(sp.pi * X[0]) * sp.cos(sp.pi * X[1]) * sp.cos(sp.pi * X[2])
     m = manufactured(u, 3)
     prob = PoissonProblem(cube(n0), 1.0, m["f"])
-    check(convergence_study(prob, levels, degree, m["u"], m["grad"], method="direct"), degree)
+    check(convergence_study(prob, levels, degree, m["u"], m["grad"], method="cg-amg"), degree)
 
 
 # ------------------------------------------------------------------ L-shaped domain
