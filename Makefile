@@ -4,7 +4,7 @@ VENV   := .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: venv warm-up demo test bench clean clean-cache mpi test-mpi
+.PHONY: venv warm-up demo test test-slow mutants bench clean clean-cache mpi test-mpi
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -28,6 +28,15 @@ demo: $(WARM)
 
 test: $(WARM)
 	$(PY) -m pytest -q
+
+# the convergence runs marked slow (tests/test_rates.py); `make test` leaves them out
+test-slow: $(WARM)
+	$(PY) -m pytest -q -m slow
+
+# mutation check of the suite: small faults in a temporary copy of the kernel, one at
+# a time; a fast selection of tests must fail on each (tests/mutants.py)
+mutants: $(WARM)
+	$(PY) tests/mutants.py
 
 # Optional distributed engine (galerkit[mpi]): MPICH and LAPACK from Debian,
 # PETSc and petsc4py built from their source distributions (no wheels exist;

@@ -147,3 +147,24 @@ def test_cg_amg_set_up_leaves_the_callers_random_state_alone():
     np.random.seed(123)
     gk.prepare_solver(A, "cg-amg")
     assert np.random.rand(4).tobytes() == expected.tobytes()
+
+
+@pytest.mark.parametrize("dim,k", CASES)
+def test_any_number_of_row_ranges_gives_identical_bits(dim, k):
+    # The property the 1-vs-2-thread tests check, on any machine: each thread owns
+    # one row range, so the bits must not depend on how the rows are split.  The
+    # split is forced here (1, 3 and 7 ranges) whatever the number of threads.
+    from galerkit.assembly import chunk_plan
+
+    disc = gk.Discretization(_mesh(dim), k)
+    tensor = np.diag(np.arange(1.0, dim + 1)) + 0.1
+    results = []
+    for n_ranges in (1, 3, 7):
+        asm = gk.Assembler(disc)
+        asm._chunks[numba.get_num_threads()] = chunk_plan(disc.cell_dofs, asm.order,
+                                                          asm.indptr, n_ranges)
+        assert asm._chunk_plan()[0].shape == (n_ranges + 1,)
+        results.append([asm.stiffness().data.tobytes(), asm.stiffness(_kappa).data.tobytes(),
+                        asm.stiffness(tensor).data.tobytes(), asm.mass(_kappa).data.tobytes(),
+                        asm.load(lambda x: np.exp(x[0]) * x[1]).tobytes()])
+    assert results[0] == results[1] == results[2]

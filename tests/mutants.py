@@ -1,0 +1,274 @@
+"""Mutation check of the test suite: ``make mutants``.
+
+Applies small deliberate faults to the kernel, one at a time, and requires a
+fast selection of tests (``SELECTION``) to fail on each.  Prints one line per
+fault (killed / SURVIVED, the first failing test, seconds) and exits 1 if any
+fault survives or if the selection fails on the unmodified code.
+
+How it stays safe:
+
+* the repository is never modified: the package (kernel/ as ``galerkit``,
+  bindings/ as ``galerkit.bindings``) and tests/ are copied into a temporary
+  folder that ``PYTHONPATH`` puts ahead of the editable install; each fault
+  is a text substitution in that copy, undone (file copied back) afterwards,
+  and the folder is removed at the end, also on Ctrl-C;
+* numba's on-disk cache cannot serve a stale compiled fault: every run gets
+  its own ``NUMBA_CACHE_DIR``, a copy of the cache that the unmodified run
+  filled, minus the entries of the mutated file *and of every module that
+  imports it, transitively* (numba keys a cache entry on its own file only,
+  so a kernel that inlines a helper of another file would otherwise keep
+  the old helper).  The mutated file itself gets a new modification time, so
+  numba would recompile it anyway; deleting is the belt to those braces.
+  ``NUMBA_DISABLE_JIT`` is refused: with it the kernels would run as Python
+  and a fault in a numba-only path (e.g. ``prange`` typing) would go unseen.
+
+A fault counts as killed only when a test of the selection fails (pytest exit
+1), not when the run crashes.  Each fault may name the test seen to kill it;
+that test runs first (then the rest of the selection), which saves time only.
+
+Usage: ``python tests/mutants.py [-k SUBSTRING] [--list]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import re
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+_F = "tests/test_functionals_exact.py::test_"
+_A = "tests/test_assembly_reference.py::test_"
+E21, E22 = (f"{_F}errors_of_an_interpolated_polynomial_equal_sympy_integrals[{c}]"
+            for c in ("2-1", "2-2"))
+N21 = f"{_F}norms_and_energy_of_an_interpolated_polynomial_equal_sympy_integrals[2-1]"
+A21, A22, A23, A24 = (
+    f"{_A}element_stiffness_mass_load_equal_exact_integrals_of_an_independent_basis[2-{k}]"
+    for k in (1, 2, 3, 4))
+B21, B31 = (f"{_A}facet_mass_and_load_equal_exact_surface_integrals[{c}]" for c in ("2-1", "3-1"))
+T23 = f"{_A}two_cell_matrices_are_the_sums_of_the_element_matrices[2-3]"
+
+# (name, file relative to kernel/, old text, new text[, test to run first]); old must
+# occur exactly once.  The test to run first is the one seen to kill the fault: it saves
+# running the selection up to it; the whole selection still runs if it passes.
+MUTANTS = [
+    ("l2_error scaled by 1.03", "functionals.py",
+     "t = _integrate(disc, u, _L2, exact=exact, quadrature_degree=quadrature_degree)\n"
+     "    return t if per_cell else float(np.sqrt(max(t.sum(), 0.0)))",
+     "t = _integrate(disc, u, _L2, exact=exact, quadrature_degree=quadrature_degree)\n"
+     "    return t if per_cell else 1.03 * float(np.sqrt(max(t.sum(), 0.0)))", E21),
+    ("h1_seminorm_error scaled by 1.03", "functionals.py",
+     "quadrature_degree=quadrature_degree)\n    return t if per_cell else float(np.sqrt(max("
+     "t.sum(), 0.0)))\n\n\ndef energy_error",
+     "quadrature_degree=quadrature_degree)\n    return t if per_cell else 1.03 * float(np.sqrt("
+     "max(t.sum(), 0.0)))\n\n\ndef energy_error", E21),
+    ("energy_error ignores a tensor conductivity", "functionals.py",
+     "if mode != _H1 and tensor.shape[0] > 0:",
+     "if mode == _FUNCTIONAL and tensor.shape[0] > 0:", E21),
+    ("energy_error samples a callable conductivity at one point", "functionals.py",
+     "kq = kappa[kci, q * kqs]", "kq = kappa[kci, 0]", E21),
+    ("per-cell conductivity of the functionals ignored", "functionals.py",
+     "        if kappa.shape[0] > 1:\n            kci = ib",
+     "        if kappa.shape[0] > 1:\n            kci = zero", E21),
+    ("energy functional: source term with the wrong sign", "functionals.py",
+     "acc += w[q] * (0.5 * kq * s - fq * uh)", "acc += w[q] * (0.5 * kq * s + fq * uh)", N21),
+    ("functionals' default quadrature one degree short for P2", "functionals.py",
+     "deg = 2 * disc.degree + 2 if quadrature_degree is None",
+     "deg = 2 * disc.degree + 2 - (disc.degree == 2) if quadrature_degree is None", E22),
+    ("physical gradient with the transposed inverse Jacobian (functionals)", "functionals.py",
+     "gr += Jinv[j, r] * dV[q, a, j]", "gr += Jinv[r, j] * dV[q, a, j]", E21),
+    ("h1_norm adds the norms instead of their squares", "functionals.py",
+     "return float(np.hypot(l2_norm(", "return float(np.add(l2_norm(", N21),
+    ("P1 stiffness ignores the conductivity", "assembly.py",
+     "scale = kappa[c if kappa.shape[0] > 1 else 0, 0] / (fact * abs(det))",
+     "scale = 1.0 / (fact * abs(det))", A21),
+    ("per-cell tensor conductivity: first cell's tensor everywhere", "assembly.py",
+     "                # C = |det J| J^-1 K J^-T\n                ti = c if tensor.shape[0] > 1 "
+     "else 0",
+     "                # C = |det J| J^-1 K J^-T\n                ti = 0", T23),
+    ("callable mass coefficient taken at the first point", "assembly.py",
+     "                w = coef[ci, q]\n", "                w = coef[ci, 0]\n", A21),
+    ("P3 stiffness quadrature one degree short", "assembly.py",
+     "R = stiffness_table(d, k, max(2 * k - 2, 0)).sum(axis=0, keepdims=True)",
+     "R = stiffness_table(d, k, max(2 * k - 2 - (k == 3), 0)).sum(axis=0, keepdims=True)", A23),
+    ("P4 mass quadrature one degree short", "assembly.py",
+     "mass_table(mesh.dim, k, 2 * k).sum(axis=0, keepdims=True)",
+     "mass_table(mesh.dim, k, 2 * k - (k == 4)).sum(axis=0, keepdims=True)", A24),
+    ("transposed local matrix: scatter reads the (unset) lower triangle", "assembly.py",
+     "data[base + posmap[p, a, b]] += Kloc[b, a]", "data[base + posmap[p, a, b]] += Kloc[a, b]"),
+    ("boundary load: sign flipped", "assembly.py",
+     "            out[dofs[c, a]] += s * v", "            out[dofs[c, a]] -= s * v", B21),
+    ("boundary mass ignores its coefficient", "assembly.py",
+     "v += coef[ci, q] * R[f, q, a, b]", "v += R[f, q, a, b]", B21),
+    ("3D facet area without the factor 1/2", "assembly.py",
+     "return 0.5 * np.sqrt(x * x + y * y + z * z)", "return np.sqrt(x * x + y * y + z * z)", B31),
+    ("Neumann flux enters with the wrong sign", "problem.py",
+     "            b += asm.boundary_load(tag, flux)\n",
+     "            b -= asm.boundary_load(tag, flux)\n"),
+    ("Dirichlet lifting with the wrong sign", "boundary.py",
+     "s -= data[j] * g_full[c]", "s += data[j] * g_full[c]"),
+    ("transposed Jacobian (geometry)", "geometry.py",
+     "            J[i, j] = points[vj, i] - points[v0, i]",
+     "            J[j, i] = points[vj, i] - points[v0, i]", A22),
+    ("physical quadrature points with a transposed map", "geometry.py",
+     "s += (points[cells[c, j + 1], i] - points[v0, i]) * ref[q, j]",
+     "s += (points[cells[c, j + 1], i] - points[v0, i]) * ref[q, d - 1 - j]", A21),
+    ("basis derivative factor off", "elements.py",
+     "R[:, :, m - 1] * (k / m)", "R[:, :, m - 1] * (k / (m + 1))"),
+    ("Radon's 7-point rule with its two orbit weights swapped", "quadrature.py",
+     "(w1, (a1, a1, 1 - 2 * a1)),", "(w2, (a1, a1, 1 - 2 * a1)),"),
+    ("CG update steps x by 0.9 alpha", "sparse.py",
+     "x[i] += alpha * p[i]", "x[i] += 0.9 * alpha * p[i]"),
+    ("multigrid Galerkin product scaled (coarse operator 1.5 P^T A P)", "multigrid.py",
+     "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n",
+     "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n        c_val = 1.5 * c_val\n"),
+]
+
+# the fast selection, cheapest first (-x stops at the first failure); the largest
+# cases (P4 on tetrahedra, P3-P4 functionals) are left to the full suite
+SELECTION = [
+    "tests/test_quadrature.py",
+    "tests/test_elements.py",
+    "tests/test_multigrid.py::test_dot_and_fused_cg_update_match_numpy",
+    "tests/test_multigrid.py::test_coarse_operators_are_galerkin_products",
+    *(f"{_A}element_stiffness_mass_load_equal_exact_integrals_of_an_independent_basis[{c}]"
+      for c in ("2-1", "2-2", "2-3", "2-4", "3-1", "3-2")),
+    *(f"{_A}facet_mass_and_load_equal_exact_surface_integrals[{c}]"
+      for c in ("2-1", "2-2", "3-1", "3-2")),
+    *(f"{_A}two_cell_matrices_are_the_sums_of_the_element_matrices[{c}]" for c in ("2-3", "3-2")),
+    *(f"{_F}errors_of_an_interpolated_polynomial_equal_sympy_integrals[{c}]"
+      for c in ("2-1", "2-2", "3-1", "3-2")),
+    *(f"{_F}norms_and_energy_of_an_interpolated_polynomial_equal_sympy_integrals[{c}]"
+      for c in ("2-1", "2-2", "3-2")),
+    *(f"{_F}zero_against_products_of_sines_gives_the_closed_forms[{c}]" for c in ("2-1", "3-1")),
+    "tests/test_boundary.py",
+    "tests/test_problem.py::test_neumann_manufactured_solution_rates[1-5]",
+    "tests/test_problem.py::test_square_dirichlet_rates_are_k_plus_1_in_l2_and_k_in_h1[1-5-4]",
+]
+
+
+def module_imports():
+    """module name -> set of galerkit modules it imports (kernel and bindings)."""
+    deps = {}
+    for folder, prefix in ((ROOT / "kernel", ""), (ROOT / "bindings", "bindings.")):
+        for f in folder.glob("*.py"):
+            text = f.read_text()
+            names = set(re.findall(r"from \.\.?(\w+) import", text))
+            names |= set(re.findall(r"from galerkit\.(\w+) import", text))
+            for group in re.findall(r"from \.\.? import ([\w, ]+)", text):
+                names |= {n.strip() for n in group.split(",")}
+            deps[prefix + f.stem] = names
+    return deps
+
+
+def dependents(module):
+    """``module`` and every module importing it, transitively (file stems)."""
+    deps = module_imports()
+    out, grew = {module}, True
+    while grew:
+        grew = False
+        for mod, names in deps.items():
+            stem = mod.split(".")[-1]
+            if stem not in out and names & out:
+                out.add(stem)
+                grew = True
+    return out
+
+
+def drop_cache(cache_dir, stems):
+    """Delete numba cache files of the given source files (``<stem>.<func>-<line>...``)."""
+    for p in Path(cache_dir).rglob("*"):
+        if p.suffix in (".nbi", ".nbc") and p.name.split(".")[0] in stems:
+            p.unlink()
+
+
+def run_selection(tree, cache_dir, stop_first=True, first=None):
+    env = dict(os.environ)
+    env["PYTHONPATH"] = str(tree) + os.pathsep + env.get("PYTHONPATH", "")
+    env["NUMBA_CACHE_DIR"] = str(cache_dir)
+    env.pop("NUMBA_DISABLE_JIT", None)
+    cmd = [sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", "-rf",
+           "-o", "addopts="] + (["-x"] if stop_first else []) + \
+        ([first] if first else []) + [t for t in SELECTION if t != first]
+    t0 = time.perf_counter()
+    run = subprocess.run(cmd, cwd=tree, env=env, capture_output=True, text=True)
+    failed = re.findall(r"^FAILED (\S+)", run.stdout, re.M)
+    return run.returncode, failed, time.perf_counter() - t0, run.stdout + run.stderr
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("-k", default="", help="only faults whose name contains this")
+    ap.add_argument("--list", action="store_true", help="list the faults and exit")
+    args = ap.parse_args(argv)
+    if os.environ.get("NUMBA_DISABLE_JIT", "0") not in ("", "0"):
+        sys.exit("mutants: NUMBA_DISABLE_JIT is set; the faults must run compiled")
+    chosen = [m for m in MUTANTS if args.k in m[0]]
+    if args.list:
+        for name, f, *_ in chosen:
+            print(f"{f:16s} {name}")
+        return 0
+    work = Path(tempfile.mkdtemp(prefix="galerkit-mutants-"))
+    try:
+        tree = work / "src"
+        shutil.copytree(ROOT / "kernel", tree / "galerkit",
+                        ignore=shutil.ignore_patterns("__pycache__", "*.nbi", "*.nbc"))
+        shutil.copytree(ROOT / "bindings", tree / "galerkit" / "bindings",
+                        ignore=shutil.ignore_patterns("__pycache__", "*.nbi", "*.nbc"))
+        shutil.copytree(ROOT / "tests", tree / "tests",
+                        ignore=shutil.ignore_patterns("__pycache__"))
+        probe = subprocess.run(
+            [sys.executable, "-c", "import galerkit; print(galerkit.__file__)"],
+            cwd=tree, capture_output=True, text=True,
+            env=dict(os.environ, PYTHONPATH=str(tree), NUMBA_CACHE_DIR=str(work / "probe")))
+        if not probe.stdout.strip().startswith(str(tree)):
+            sys.exit(f"mutants: the copy is not the galerkit that Python imports: {probe}")
+        for name, f, old, *_ in chosen:  # every fault must apply exactly once
+            n = (ROOT / "kernel" / f).read_text().count(old)
+            if n != 1:
+                sys.exit(f"mutants: {name!r}: the text to change occurs {n} times in kernel/{f}")
+        cache0 = work / "cache0"
+        rc, failed, secs, out = run_selection(tree, cache0, stop_first=False)
+        print(f"unmodified code: {'passes' if rc == 0 else 'FAILS'} ({secs:.0f} s)", flush=True)
+        if rc != 0:
+            print(out[-4000:])
+            return 1
+        survivors = []
+        total = time.perf_counter()
+        for i, (name, f, old, new, *first) in enumerate(chosen, 1):
+            target = tree / "galerkit" / f
+            pristine = target.read_text()
+            cache = work / f"cache{i}"
+            shutil.copytree(cache0, cache)
+            drop_cache(cache, dependents(Path(f).stem))
+            try:
+                target.write_text(pristine.replace(old, new))
+                rc, failed, secs, out = run_selection(tree, cache,
+                                                      first=first[0] if first else None)
+            finally:
+                target.write_text(pristine)
+                shutil.rmtree(cache, ignore_errors=True)
+            # killed = a test failed (exit 1); a crash or collection error (exit >= 2)
+            # is not counted as a kill: the fault must be seen by an assertion
+            killed = rc == 1 and bool(failed)
+            if not killed:
+                survivors.append(name)
+            what = failed[0] if failed else ("no test failed" if rc == 0 else
+                                             f"pytest exit {rc}: {out.strip()[-300:]}")
+            print(f"{i:2d}. {'killed  ' if killed else 'SURVIVED'} {name}  [{what}]  "
+                  f"{secs:.0f} s", flush=True)
+        print(f"{len(chosen) - len(survivors)} of {len(chosen)} faults killed "
+              f"({time.perf_counter() - total:.0f} s)")
+        return 1 if survivors else 0
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    sys.exit(main())
