@@ -1127,6 +1127,37 @@ def _():
              '[[boundary]]\ntag = "top"\nkind = "flux"\nflux = 1\n')
 
 
+def _job_folder():
+    """A problem file's folder ``job`` inside the temporary folder."""
+    job = os.path.join(_get("folder", tempfile.mkdtemp), "job")
+    os.makedirs(job, exist_ok=True)
+    return job
+
+
+def _confined(text):
+    import tomllib
+
+    from galerkit.bindings.problemfile import parse_problem
+
+    return parse_problem(tomllib.loads(text), source="job/case.toml", text=text,
+                         base=_job_folder(), stay_in_folder=True)
+
+
+@case("problem file under stay_in_folder (--stay-in-folder): output folder '../results'", C,
+      "InputError")
+def _():
+    _confined('[mesh]\ngenerator = "square"\ncells = 3\n[output]\nfolder = "../results"\n')
+
+
+@case("problem file under stay_in_folder: a mesh file that is a link to a file outside", C,
+      "InputError")
+def _():
+    link = os.path.join(_job_folder(), "linked.msh")
+    if not os.path.lexists(link):
+        os.symlink(_file("outside.msh", b""), link)
+    _confined('[mesh]\nfile = "linked.msh"\n')
+
+
 # ----------------------------------------------------------------------------
 # running
 # ----------------------------------------------------------------------------
