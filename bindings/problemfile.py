@@ -11,7 +11,7 @@ The schema is documented in the README section "Problem files"; in short::
     title = "..."                      # optional
     [constants]   name = number, ...   # usable in every formula
     [mesh]        file = "part.msh" | generator = "square" | "box" | "l-shape",
-                  cells, lower, upper, refine
+                  cells, lower, upper, refine, merge_duplicates (files only)
     [discretization]  degree = 1..4
     [material]    conductivity = number | "formula" | [[kxx, kxy], [kxy, kyy]]
     [source]      value = number | "formula"
@@ -85,7 +85,7 @@ __all__ = ["load_problem", "parse_problem", "ProblemSpec", "RunOptions", "Bounda
 SECTIONS = {
     "title": None,
     "constants": None,  # any names
-    "mesh": ("file", "generator", "cells", "lower", "upper", "refine"),
+    "mesh": ("file", "generator", "cells", "lower", "upper", "refine", "merge_duplicates"),
     "discretization": ("degree",),
     "material": ("conductivity",),
     "source": ("value",),
@@ -598,14 +598,22 @@ def _read_mesh_section(r: _Reader, t, base: Path):
             r.fail(("mesh", "file"), f"a {fpath.suffix} mesh names further files (its "
                    "heavy data), which --stay-in-folder cannot check",
                    "convert the mesh to .msh or .vtu")
-        from .files import read_mesh
+        merge = (r.boolean(t["merge_duplicates"], ("mesh", "merge_duplicates"))
+                 if "merge_duplicates" in t else False)
+        from .files import _read_mesh
 
         try:
-            mesh = read_mesh(fpath)
+            mesh, joined = _read_mesh(fpath, merge_duplicates=merge)
         except InputError as exc:
             r.fail(("mesh", "file"), str(exc))
         description = f"file {str(fpath)}"
+        if joined:
+            description += (f", {joined} coincident vert{'ices' if joined > 1 else 'ex'} "
+                            "joined (merge_duplicates)")
     else:
+        if "merge_duplicates" in t:
+            r.fail(("mesh", "merge_duplicates"), "applies to mesh files only; generated "
+                   "meshes have no coincident vertices", "remove it")
         gen = r.string(t["generator"], ("mesh", "generator"), tuple(GENERATORS))
         dim, default = GENERATORS[gen]
         if gen == "l-shape":

@@ -215,6 +215,11 @@ def _():
     gk.Mesh(SQUARE, np.array([[0, 1, 2], [1, 3, 2], [2, 3, 1]]))
 
 
+@case("two distinct vertices at one place (the domain cut apart there)", M, "MeshError")
+def _():
+    gk.Mesh([[0, 0], [1, 0], [0, 1], [1, 0], [1, 1], [0, 1]], [[0, 1, 2], [3, 4, 5]])
+
+
 @case("folded mesh (inverted cell)", M, "MeshError")
 def _():
     # vertex 3 pulled across the edge 1-2: the second cell overlaps the first
@@ -964,6 +969,17 @@ def _():
     _read(path)
 
 
+@case("mesh file with nodes repeated along an edge (read without merge_duplicates)", R,
+      "MeshError")
+def _():
+    import meshio
+
+    path = _file("repeated.vtu", b"")
+    pts = np.array([[0, 0], [1, 0], [0, 1], [1, 0], [1, 1], [0, 1]], dtype=float)
+    meshio.write(path, meshio.Mesh(pts, [("triangle", np.array([[0, 1, 2], [3, 4, 5]]))]))
+    _read(path)
+
+
 # ----------------------------------------------------------------------------
 # embedding entry points (galerkit.bindings.embed)
 # ----------------------------------------------------------------------------
@@ -1125,6 +1141,11 @@ def _problem(extra=""):
 def _():
     _problem('[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n'
              '[[boundary]]\ntag = "top"\nkind = "flux"\nflux = 1\n')
+
+
+@case("problem file: [mesh] merge_duplicates with a generator", C, "InputError")
+def _():
+    _problem("merge_duplicates = true\n")
 
 
 def _job_folder():

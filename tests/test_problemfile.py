@@ -281,6 +281,9 @@ def test_boundary_mistakes_are_named(tmp_path, text, expected):
     ('generator = "sphere"\n', "'sphere' is not one of the accepted values"),
     ('file = "missing.msh"\n', "mesh.file: mesh file"),
     ('file = "a.msh"\ncells = 2\n', "mesh.cells: applies to generated meshes only"),
+    ('generator = "square"\nmerge_duplicates = true\n',
+     "mesh.merge_duplicates: applies to mesh files only"),
+    ('file = "a.msh"\nmerge_duplicates = "yes"\n', "mesh.merge_duplicates: must be true or false"),
 ])
 def test_mesh_section_mistakes_are_named(tmp_path, mesh, expected):
     assert expected in error_of(tmp_path, "[mesh]\n" + mesh)
