@@ -446,7 +446,7 @@ def _solve(args) -> int:
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            spec = load_problem(args.problem)
+            spec = load_problem(args.problem, stay_in_folder=args.stay_in_folder)
         problem, opts = spec.build()
         opts = _apply_overrides(args, opts)
         notes = [str(w.message) for w in caught] + tag_overlaps(spec.mesh)
@@ -546,7 +546,7 @@ def _solve_distributed(args) -> int:
     def load():
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            spec = load_problem(args.problem)
+            spec = load_problem(args.problem, stay_in_folder=args.stay_in_folder)
         problem, opts = spec.build()
         opts = _apply_overrides(args, opts)
         held["problem"] = problem
@@ -751,7 +751,7 @@ def _bench(args) -> int:
         spec = _generated_problem(args.generate, size, args.degree)
         where = f"generated {args.generate}"
     else:
-        spec = load_problem(args.problem)
+        spec = load_problem(args.problem, stay_in_folder=args.stay_in_folder)
         where = str(args.problem)
     problem, opts = spec.build()
     opts = _apply_overrides(args, opts)
@@ -931,6 +931,12 @@ def _warm(args) -> int:
 
 
 # -- parser ------------------------------------------------------------------------
+STAY_IN_FOLDER_HELP = ("refuse a problem file whose [mesh] file or [output] folder lies "
+                       "outside the problem file's folder (after links and '..'): for "
+                       "services that run problem files they do not trust; --output given "
+                       "here is not checked")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="galerkit", description="Lagrange finite elements for "
                                 "Poisson and diffusion problems on triangles and tetrahedra.")
@@ -984,6 +990,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--petsc-options", metavar="OPTIONS",
                    help="PETSc options for --engine petsc, e.g. \"-ksp_type gmres -pc_type "
                    "jacobi\" (default: CG with PETSc's algebraic multigrid GAMG)")
+    s.add_argument("--stay-in-folder", action="store_true", help=STAY_IN_FOLDER_HELP)
     s.set_defaults(run=_solve)
     b = sub.add_parser("bench", parents=[common],
                        help="run every registered solver on one assembled system",
@@ -1000,6 +1007,7 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--rtol", type=float, help="relative residual tolerance")
     b.add_argument("--maxiter", type=int, help="iteration limit of iterative solvers")
     b.add_argument("--output", help="folder for the PNG (default galerkit-out)")
+    b.add_argument("--stay-in-folder", action="store_true", help=STAY_IN_FOLDER_HELP)
     b.set_defaults(run=_bench)
     w = sub.add_parser("warm-up", parents=[common],
                        help="compile the common kernels ahead of time (once per install)",

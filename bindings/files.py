@@ -51,7 +51,7 @@ import numpy as np
 
 from galerkit.elements import REFERENCE_FACETS
 from galerkit.errors import InputError, MeshError
-from galerkit.mesh import Mesh
+from galerkit.mesh import Mesh, merge_duplicate_vertices
 from galerkit.refinement import refine_uniform
 
 __all__ = ["read_mesh", "write_solution", "atomic_path", "write_atomically", "xml_name",
@@ -78,13 +78,20 @@ TAG_ARRAY_PREFIX = "tag_"
 # ----------------------------------------------------------------------------
 # reading
 # ----------------------------------------------------------------------------
-def read_mesh(path) -> Mesh:
+def read_mesh(path, *, merge_duplicates=False) -> Mesh:
     """Read a triangle or tetrahedron mesh with meshio (Gmsh .msh, VTU, XDMF, ...).
 
     Parameters
     ----------
     path : str or path-like
         The mesh file; the format follows from the suffix (meshio's rules).
+    merge_duplicates : bool, default False
+        Join distinct vertices that lie at the same place (a file with nodes
+        repeated along an interface) with
+        :func:`galerkit.mesh.merge_duplicate_vertices` before the mesh is
+        built; facet tags follow the joined vertices.  Without it such a file
+        is refused (``MeshError``), since its cells would not be connected
+        there.
 
     Returns
     -------
@@ -103,8 +110,9 @@ def read_mesh(path) -> Mesh:
         cells that are not facets of the mesh (mixed dimensions).  Every
         message starts with the file name.
     MeshError
-        The cells themselves are invalid (degenerate, non-manifold, ...); the
-        message starts with the file name.
+        The cells themselves are invalid (degenerate, non-manifold, distinct
+        vertices at one place without ``merge_duplicates``, ...); the message
+        starts with the file name.
 
     Warns
     -----
@@ -125,6 +133,11 @@ def read_mesh(path) -> Mesh:
     >>> sorted(mesh.facet_tags), len(mesh.facet_tags["floor"])
     (['boundary', 'floor'], 1)
     """
+    return _read_mesh(path, merge_duplicates)[0]
+
+
+def _read_mesh(path, merge_duplicates=False):
+    """:func:`read_mesh`, and the number of vertices joined by ``merge_duplicates``."""
     import meshio
 
     p = Path(path)
@@ -164,10 +177,11 @@ def read_mesh(path) -> Mesh:
             f"{where} could not be read; it looks damaged or is not in the format its "
             f"suffix {p.suffix!r} says (the reader raised {type(exc).__name__}). Export the "
             "mesh again from your mesher") from None
-    return _mesh_from_meshio(m, where)
+    return _mesh_from_meshio(m, where, merge_duplicates)
 
 
-def _mesh_from_meshio(m, where: str) -> Mesh:
+def _mesh_from_meshio(m, where: str, merge_duplicates=False):
+    """The Mesh of a meshio mesh, and the number of vertices joined."""
     types = [b.type for b in m.cells]
     refused = sorted({_REFUSED[t] for t in types if t in _REFUSED})
     if refused:
@@ -224,8 +238,14 @@ def _mesh_from_meshio(m, where: str) -> Mesh:
     used = np.unique(cells)
     old_to_new = np.full(pts.shape[0], -1, dtype=np.int64)
     old_to_new[used] = np.arange(used.size)
+    pts, cells = pts[used], old_to_new[cells]
+    joined = 0
     try:
-        mesh = Mesh(pts[used], old_to_new[cells])
+        if merge_duplicates:
+            pts, cells, merged = merge_duplicate_vertices(pts, cells)
+            joined = used.size - pts.shape[0]
+            old_to_new[used] = merged  # file point -> vertex of the joined mesh
+        mesh = Mesh(pts, cells)
     except MeshError as exc:
         raise MeshError(f"{where}: {exc} (cell and vertex numbers count the "
                         f"{_CELL_OF_DIM[dim]} cells of the file from 0, and the vertices "
@@ -233,7 +253,7 @@ def _mesh_from_meshio(m, where: str) -> Mesh:
     _read_tags(m, mesh, dim, old_to_new, where)
     if "boundary" not in mesh.facet_tags:
         mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
-    return mesh
+    return mesh, joined
 
 
 def _match_rows(rows, table):

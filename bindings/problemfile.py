@@ -11,7 +11,7 @@ The schema is documented in the README section "Problem files"; in short::
     title = "..."                      # optional
     [constants]   name = number, ...   # usable in every formula
     [mesh]        file = "part.msh" | generator = "square" | "box" | "l-shape",
-                  cells, lower, upper, refine
+                  cells, lower, upper, refine, merge_duplicates (files only)
     [discretization]  degree = 1..4
     [material]    conductivity = number | "formula" | [[kxx, kxy], [kxy, kyy]]
     [source]      value = number | "formula"
@@ -85,7 +85,7 @@ __all__ = ["load_problem", "parse_problem", "ProblemSpec", "RunOptions", "Bounda
 SECTIONS = {
     "title": None,
     "constants": None,  # any names
-    "mesh": ("file", "generator", "cells", "lower", "upper", "refine"),
+    "mesh": ("file", "generator", "cells", "lower", "upper", "refine", "merge_duplicates"),
     "discretization": ("degree",),
     "material": ("conductivity",),
     "source": ("value",),
@@ -105,6 +105,10 @@ BOUNDARY_KINDS = {
 
 #: the trade's names of the conditions, for hints
 _TRADE_WORDS = {"dirichlet": "fixed", "neumann": "flux", "robin": "convection"}
+
+#: mesh file suffixes whose files name other files (XDMF's HDF5 data): refused
+#: under ``stay_in_folder``, which cannot follow them
+_NAMES_OTHER_FILES = (".xdmf", ".xmf")
 
 #: ``generator -> (dimension, default cells)`` of the built-in meshes.
 GENERATORS = {"square": (2, 16), "box": (3, 8), "l-shape": (2, 8)}
@@ -240,13 +244,19 @@ def _kernel_value(v):
 # ----------------------------------------------------------------------------
 # reading
 # ----------------------------------------------------------------------------
-def load_problem(path) -> ProblemSpec:
+def load_problem(path, *, stay_in_folder=False) -> ProblemSpec:
     """Read, check and prepare a problem file.
 
     Parameters
     ----------
     path : str or path-like
         A TOML file in the schema of this module (the README section "Problem files").
+    stay_in_folder : bool, default False
+        Refuse a ``[mesh] file`` or ``[output] folder`` that resolves (after
+        symbolic links, ``..`` and absolute paths) outside the problem file's
+        folder, before the mesh is read, and refuse ``.xdmf`` meshes (they name
+        further files): for services that run problem files they do not trust
+        (the command-line flag ``--stay-in-folder``).
 
     Returns
     -------
@@ -259,7 +269,9 @@ def load_problem(path) -> ProblemSpec:
         column and a caret), an unknown section or key (with the valid ones),
         a value of the wrong type or out of range (with the key path), a bad
         formula (with the caret of the expression reader), an unreadable mesh
-        file, or a boundary tag the mesh does not have (with the tags it has).
+        file, a boundary tag the mesh does not have (with the tags it has), or,
+        with ``stay_in_folder``, a mesh file or output folder outside the
+        problem file's folder (with the key and the resolved path).
     """
     p = Path(path)
     if not p.exists():
@@ -287,7 +299,8 @@ def load_problem(path) -> ProblemSpec:
         raise InputError(f"problem file {str(p)!r}: arrays or tables are nested too deeply "
                          "to read; a problem file needs at most a few levels") from None
     try:
-        return parse_problem(data, source=str(p), base=p.parent, text=text, stem=p.stem)
+        return parse_problem(data, source=str(p), base=p.parent, text=text, stem=p.stem,
+                             stay_in_folder=stay_in_folder)
     except RecursionError:
         raise InputError(f"problem file {str(p)!r}: a value is nested too deeply to check; a "
                          "problem file needs at most a few levels") from None
@@ -317,6 +330,25 @@ class _Reader:
     def __init__(self, source: str, text: str | None):
         self.source = source
         self.lines = text.splitlines() if text is not None else None
+        self.confine_to = None  # the folder paths must stay in (stay_in_folder), or None
+
+    def inside(self, path: Path, key: tuple, what: str) -> None:
+        """With ``stay_in_folder``, refuse ``path`` unless it resolves inside the folder."""
+        if self.confine_to is None:
+            return
+        try:
+            folder = self.confine_to.resolve()
+            resolved = path.resolve()  # follows symbolic links, removes ".."
+        except (OSError, RuntimeError):  # a loop of symbolic links
+            self.fail(key, f"the {what} {str(path)!r} cannot be resolved (a loop of "
+                      "symbolic links?), so --stay-in-folder cannot tell where it leads",
+                      f"name a {what} inside the problem file's folder without links")
+        if resolved == folder or resolved.is_relative_to(folder):
+            return
+        self.fail(key, f"the {what} resolves to {str(resolved)!r}, outside the problem "
+                  f"file's folder {str(folder)!r} (refused under --stay-in-folder)",
+                  f"put the {what} in that folder or below it and name it by a relative "
+                  "path without '..' or links that lead out")
 
     # -- locations -----------------------------------------------------------
     def line_of(self, path: tuple) -> int | None:
@@ -463,7 +495,7 @@ def _type_word(v) -> str:
 
 
 def parse_problem(data: dict, *, source: str = "<problem>", base=".", text: str | None = None,
-                  stem: str = "solution") -> ProblemSpec:
+                  stem: str = "solution", stay_in_folder: bool = False) -> ProblemSpec:
     """Check a problem given as a dict (the parsed TOML) and prepare it.
 
     Parameters
@@ -478,6 +510,9 @@ def parse_problem(data: dict, *, source: str = "<problem>", base=".", text: str 
         The TOML text, used to give line numbers in messages.
     stem : str
         Base name of the output files.
+    stay_in_folder : bool, default False
+        Refuse a mesh file or output folder outside ``base``, as
+        :func:`load_problem`.
 
     Returns
     -------
@@ -490,6 +525,7 @@ def parse_problem(data: dict, *, source: str = "<problem>", base=".", text: str 
     """
     r = _Reader(source, text)
     base = Path(base)
+    r.confine_to = base if stay_in_folder else None
     r.table(data, (), tuple(SECTIONS))
     if "mesh" not in data:
         raise InputError(f"problem file {source!r}: the [mesh] section is missing; add one "
@@ -557,14 +593,27 @@ def _read_mesh_section(r: _Reader, t, base: Path):
         fpath = Path(name)
         if not fpath.is_absolute():
             fpath = base / fpath
-        from .files import read_mesh
+        r.inside(fpath, ("mesh", "file"), "mesh file")
+        if r.confine_to is not None and fpath.suffix.lower() in _NAMES_OTHER_FILES:
+            r.fail(("mesh", "file"), f"a {fpath.suffix} mesh names further files (its "
+                   "heavy data), which --stay-in-folder cannot check",
+                   "convert the mesh to .msh or .vtu")
+        merge = (r.boolean(t["merge_duplicates"], ("mesh", "merge_duplicates"))
+                 if "merge_duplicates" in t else False)
+        from .files import _read_mesh
 
         try:
-            mesh = read_mesh(fpath)
+            mesh, joined = _read_mesh(fpath, merge_duplicates=merge)
         except InputError as exc:
             r.fail(("mesh", "file"), str(exc))
         description = f"file {str(fpath)}"
+        if joined:
+            description += (f", {joined} coincident vert{'ices' if joined > 1 else 'ex'} "
+                            "joined (merge_duplicates)")
     else:
+        if "merge_duplicates" in t:
+            r.fail(("mesh", "merge_duplicates"), "applies to mesh files only; generated "
+                   "meshes have no coincident vertices", "remove it")
         gen = r.string(t["generator"], ("mesh", "generator"), tuple(GENERATORS))
         dim, default = GENERATORS[gen]
         if gen == "l-shape":
@@ -741,6 +790,7 @@ def _output_section(r: _Reader, t, opts: RunOptions, base: Path):
     if "folder" in t:
         f = Path(r.string(t["folder"], ("output", "folder")))
         opts.folder = f if f.is_absolute() else base / f
+        r.inside(opts.folder, ("output", "folder"), "output folder")
     if "name" in t:
         name = r.string(t["name"], ("output", "name"))
         if not re.fullmatch(r"[A-Za-z][A-Za-z0-9_\-]*", name):

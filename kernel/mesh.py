@@ -562,7 +562,8 @@ class Mesh:
         ``DEGENERACY_TOLERANCE * longest_edge**d``), a vertex no cell uses
         (remove them with :func:`remove_unreferenced_vertices`), two distinct
         vertices at one place (merge them with
-        :func:`merge_duplicate_vertices`), a facet
+        :func:`merge_duplicate_vertices`, or read a mesh file with
+        ``read_mesh(path, merge_duplicates=True)``), a facet
         shared by more than two cells, two cells on the same side of their
         shared facet (a folded mesh: an inverted cell overlapping its
         neighbour), or ``facet_tags`` that is not a dict of valid ids.  The
@@ -615,7 +616,9 @@ class Mesh:
                     f"closer than {COINCIDENCE_TOLERANCE:g} x the shortest edge there) but "
                     "are distinct vertices, which cuts the domain apart between their cells. "
                     "Merge them with galerkit.mesh.merge_duplicate_vertices(points, cells) "
-                    "and build the mesh from its result")
+                    "and build the mesh from its result; for a mesh file, read it with "
+                    "galerkit.bindings.files.read_mesh(path, merge_duplicates=True) (in a "
+                    "problem file: merge_duplicates = true under [mesh])")
         self.n_reoriented = int(n_negative)
         p.flags.writeable = False
         c.flags.writeable = False

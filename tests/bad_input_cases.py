@@ -215,6 +215,11 @@ def _():
     gk.Mesh(SQUARE, np.array([[0, 1, 2], [1, 3, 2], [2, 3, 1]]))
 
 
+@case("two distinct vertices at one place (the domain cut apart there)", M, "MeshError")
+def _():
+    gk.Mesh([[0, 0], [1, 0], [0, 1], [1, 0], [1, 1], [0, 1]], [[0, 1, 2], [3, 4, 5]])
+
+
 @case("folded mesh (inverted cell)", M, "MeshError")
 def _():
     # vertex 3 pulled across the edge 1-2: the second cell overlaps the first
@@ -964,6 +969,17 @@ def _():
     _read(path)
 
 
+@case("mesh file with nodes repeated along an edge (read without merge_duplicates)", R,
+      "MeshError")
+def _():
+    import meshio
+
+    path = _file("repeated.vtu", b"")
+    pts = np.array([[0, 0], [1, 0], [0, 1], [1, 0], [1, 1], [0, 1]], dtype=float)
+    meshio.write(path, meshio.Mesh(pts, [("triangle", np.array([[0, 1, 2], [3, 4, 5]]))]))
+    _read(path)
+
+
 # ----------------------------------------------------------------------------
 # embedding entry points (galerkit.bindings.embed)
 # ----------------------------------------------------------------------------
@@ -1125,6 +1141,42 @@ def _problem(extra=""):
 def _():
     _problem('[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n'
              '[[boundary]]\ntag = "top"\nkind = "flux"\nflux = 1\n')
+
+
+@case("problem file: [mesh] merge_duplicates with a generator", C, "InputError")
+def _():
+    _problem("merge_duplicates = true\n")
+
+
+def _job_folder():
+    """A problem file's folder ``job`` inside the temporary folder."""
+    job = os.path.join(_get("folder", tempfile.mkdtemp), "job")
+    os.makedirs(job, exist_ok=True)
+    return job
+
+
+def _confined(text):
+    import tomllib
+
+    from galerkit.bindings.problemfile import parse_problem
+
+    return parse_problem(tomllib.loads(text), source="job/case.toml", text=text,
+                         base=_job_folder(), stay_in_folder=True)
+
+
+@case("problem file under stay_in_folder (--stay-in-folder): output folder '../results'", C,
+      "InputError")
+def _():
+    _confined('[mesh]\ngenerator = "square"\ncells = 3\n[output]\nfolder = "../results"\n')
+
+
+@case("problem file under stay_in_folder: a mesh file that is a link to a file outside", C,
+      "InputError")
+def _():
+    link = os.path.join(_job_folder(), "linked.msh")
+    if not os.path.lexists(link):
+        os.symlink(_file("outside.msh", b""), link)
+    _confined('[mesh]\nfile = "linked.msh"\n')
 
 
 # ----------------------------------------------------------------------------

@@ -394,3 +394,31 @@ def test_verify_on_tetrahedra_p1_starts_from_a_mesh_with_interior_unknowns(tmp_p
     assert main(["--json", "verify", "--start-size", "3", "--levels", "2",
                  "--output", str(tmp_path / "w.png")]) in (0, 1)
     assert json.loads(capsys.readouterr().out)["rows"][0]["n_dofs"] == 16  # 4 x 4 vertices
+
+
+def test_stay_in_folder_refuses_outputs_and_meshes_outside_with_exit_2(tmp_path, capsys):
+    job = tmp_path / "job"
+    job.mkdir()
+    (job / "p.toml").write_text(SQUARE.replace('units = "K"', 'folder = "../elsewhere"'))
+    for command in ("solve", "bench"):
+        err = fails_with_2([command, job / "p.toml", "--stay-in-folder"], capsys,
+                           "p.toml', line 18: output.folder: the output folder resolves to "
+                           f"'{(tmp_path / 'elsewhere').resolve()}', outside the problem "
+                           f"file's folder '{job.resolve()}'", "--stay-in-folder")
+        assert len(err.strip().splitlines()) == 1, err
+    assert not (tmp_path / "elsewhere").exists()  # nothing was written
+    code = main(["--json", "solve", str(job / "p.toml"), "--stay-in-folder"])
+    out = json.loads(capsys.readouterr().out)
+    assert code == 2 and out["error"] == "bad input" and "output.folder" in out["message"]
+    # a mesh file outside (through a link that looks local) is refused before it is read
+    (job / "m.toml").write_text('[mesh]\nfile = "link.msh"\n')
+    (job / "link.msh").symlink_to(EXAMPLES / "pipe-wall.msh")
+    fails_with_2(["solve", job / "m.toml", "--stay-in-folder"], capsys,
+                 "line 2: mesh.file: the mesh file resolves to "
+                 f"'{(EXAMPLES / 'pipe-wall.msh').resolve()}'")
+
+
+def test_stay_in_folder_lets_a_problem_inside_its_folder_run(tmp_path, capsys):
+    (tmp_path / "p.toml").write_text(SQUARE.replace('units = "K"', 'folder = "results"'))
+    assert main(["--quiet", "solve", str(tmp_path / "p.toml"), "--stay-in-folder"]) == 0
+    assert (tmp_path / "results" / "p.vtu").exists()

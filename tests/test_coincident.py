@@ -92,3 +92,62 @@ def test_nearly_coincident_vertices_count_relative_to_the_local_edge_length():
     # the same offsets are real geometry on a mesh of edge 1e-15
     pts = np.array([[0, 0], [1e-15, 0], [0, 1e-15], [2e-15, 0], [2e-15, 1e-15]])
     gk.Mesh(pts, [[0, 1, 2], [1, 3, 4], [1, 4, 2]])
+
+
+def _write_cut_msh(path):
+    """The cut square as a Gmsh 2.2 file with line groups ``ends`` (x = 0 and x = 1)
+    and ``bottom`` (y = 0); the bottom lines right of x = 1/4 use the repeated ids."""
+    meshio = pytest.importorskip("meshio")
+    pts, cells, on_line = _cut_square()
+    edges = np.concatenate([cells[:, [0, 1]], cells[:, [1, 2]], cells[:, [2, 0]]])
+    edges = np.unique(np.sort(edges, axis=1), axis=0)
+    x, y = pts[edges, 0], pts[edges, 1]
+    ends = edges[((x < 1e-12) | (x > 1 - 1e-12)).all(axis=1)]
+    bottom = edges[(y < 1e-12).all(axis=1)]
+    assert np.isin(bottom, len(pts) - on_line.size + np.arange(on_line.size)).any()
+    lines = np.concatenate([ends, bottom])
+    groups = np.r_[np.full(len(ends), 1), np.full(len(bottom), 2)]
+    meshio.write(path, meshio.Mesh(
+        np.c_[pts, np.zeros(len(pts))], [("line", lines), ("triangle", cells)],
+        cell_data={"gmsh:physical": [groups, np.full(len(cells), 3)],
+                   "gmsh:geometrical": [groups, np.full(len(cells), 3)]},
+        field_data={"ends": np.array([1, 1]), "bottom": np.array([2, 1]),
+                    "plate": np.array([3, 2])}), file_format="gmsh22", binary=False)
+    return len(pts) - on_line.size, len(ends), len(bottom)
+
+
+def test_read_mesh_merge_duplicates_joins_the_file_and_its_tags_follow(tmp_path):
+    from galerkit.bindings.files import read_mesh
+
+    n_merged, n_ends, n_bottom = _write_cut_msh(tmp_path / "cut.msh")
+    with pytest.raises(MeshError, match=r"same place.*read_mesh\(path, merge_duplicates=True\)"
+                       r".*merge_duplicates = true under \[mesh\]"):
+        read_mesh(tmp_path / "cut.msh")
+    mesh = read_mesh(tmp_path / "cut.msh", merge_duplicates=True)
+    assert mesh.n_vertices == n_merged and mesh.connected_components()[0] == 1
+    assert len(mesh.facet_tags["ends"]) == n_ends
+    assert len(mesh.facet_tags["bottom"]) == n_bottom == N
+    facet_y = mesh.points[mesh.boundary_facets[mesh.facet_tags["bottom"]], 1]
+    assert np.all(facet_y == 0.0)
+    # -u'' = 1, u = 0 at the ends (the file's own tag): the maximum 1/8 (module docstring)
+    sol = gk.PoissonProblem(mesh, 1.0, 1.0, {"ends": 0.0}).solve(1)
+    assert float(sol.u.max()) == pytest.approx(0.125, abs=1e-12)
+
+
+def test_problem_file_key_merge_duplicates_joins_the_mesh_file(tmp_path):
+    from galerkit.bindings.problemfile import load_problem
+    from galerkit.errors import InputError
+
+    n_merged, _, _ = _write_cut_msh(tmp_path / "cut.msh")
+    text = ('[mesh]\nfile = "cut.msh"\n{}[source]\nvalue = 1\n'
+            '[[boundary]]\ntag = "ends"\nkind = "fixed"\nvalue = 0\n')
+    (tmp_path / "refused.toml").write_text(text.format(""))
+    with pytest.raises(InputError, match=r"line 2: mesh\.file: .*same place.*merge_duplicates"):
+        load_problem(tmp_path / "refused.toml")
+    (tmp_path / "joined.toml").write_text(text.format("merge_duplicates = true\n"))
+    spec = load_problem(tmp_path / "joined.toml")
+    assert spec.mesh.n_vertices == n_merged
+    assert spec.mesh_description.endswith(f", {N + 1} coincident vertices joined "
+                                          "(merge_duplicates)")
+    problem, opts = spec.build()
+    assert float(problem.solve(1).u.max()) == pytest.approx(0.125, abs=1e-12)

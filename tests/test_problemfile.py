@@ -281,6 +281,9 @@ def test_boundary_mistakes_are_named(tmp_path, text, expected):
     ('generator = "sphere"\n', "'sphere' is not one of the accepted values"),
     ('file = "missing.msh"\n', "mesh.file: mesh file"),
     ('file = "a.msh"\ncells = 2\n', "mesh.cells: applies to generated meshes only"),
+    ('generator = "square"\nmerge_duplicates = true\n',
+     "mesh.merge_duplicates: applies to mesh files only"),
+    ('file = "a.msh"\nmerge_duplicates = "yes"\n', "mesh.merge_duplicates: must be true or false"),
 ])
 def test_mesh_section_mistakes_are_named(tmp_path, mesh, expected):
     assert expected in error_of(tmp_path, "[mesh]\n" + mesh)
@@ -425,3 +428,79 @@ def test_entries_on_overlapping_tags_are_refused_naming_both_entries_and_the_cou
                               'value = "0"\n[[boundary]]\ntag = "left"\nkind = "fixed"\n'
                               'value = 0\n', name="same.toml"))
     assert [e.tag for e in spec.boundary] == ["boundary", "left"]
+
+
+# ----------------------------------------------------------------------------
+# stay_in_folder (--stay-in-folder): meshes and outputs inside the file's folder
+# ----------------------------------------------------------------------------
+def _sq_vtu(path):
+    import meshio
+
+    m = gk.structured_triangles(2, 2)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    meshio.write(str(path), meshio.Mesh(m.points, [("triangle", np.asarray(m.cells))]))
+
+
+@pytest.fixture
+def job(tmp_path):
+    """A problem folder ``job`` beside a folder ``other``; meshes in both."""
+    (tmp_path / "job").mkdir()
+    _sq_vtu(tmp_path / "job" / "meshes" / "in.vtu")
+    _sq_vtu(tmp_path / "other" / "out.vtu")
+    return tmp_path / "job"
+
+
+@pytest.mark.parametrize("mesh_file", ["../other/out.vtu", "{other}/out.vtu",
+                                       "meshes/../../other/out.vtu", "outlink/out.vtu",
+                                       "sneaky.vtu"])
+def test_stay_in_folder_refuses_a_mesh_file_outside_the_problem_folder(job, mesh_file):
+    other = (job.parent / "other").resolve()
+    (job / "outlink").symlink_to(other, target_is_directory=True)
+    (job / "sneaky.vtu").symlink_to(other / "out.vtu")
+    text = f'[mesh]\nfile = "{mesh_file.format(other=other)}"\n'
+    path = write(job, text)
+    assert load_problem(path).mesh.n_cells == 8  # accepted without the flag
+    with pytest.raises(InputError) as info:
+        load_problem(path, stay_in_folder=True)
+    msg = str(info.value)
+    assert "line 2: mesh.file: the mesh file resolves to " \
+        f"'{other / 'out.vtu'}', outside the problem file's folder '{job.resolve()}'" in msg
+    assert "--stay-in-folder" in msg and "put the mesh file in that folder" in msg
+
+
+@pytest.mark.parametrize("folder", ["..", "../other/res", "{other}", "outlink/res", "/tmp"])
+def test_stay_in_folder_refuses_an_output_folder_outside_the_problem_folder(job, folder):
+    other = (job.parent / "other").resolve()
+    (job / "outlink").symlink_to(other, target_is_directory=True)
+    text = BASE + f'[output]\nfolder = "{folder.format(other=other)}"\n'
+    path = write(job, text)
+    load_problem(path)  # accepted without the flag
+    with pytest.raises(InputError) as info:
+        load_problem(path, stay_in_folder=True)
+    msg = str(info.value)
+    assert "line 6: output.folder: the output folder resolves to '" in msg, msg
+    assert f"outside the problem file's folder '{job.resolve()}'" in msg
+
+
+def test_stay_in_folder_accepts_paths_inside_the_problem_folder(job):
+    (job / "inlink").symlink_to(job / "meshes", target_is_directory=True)
+    for mesh_file, folder in [("meshes/in.vtu", "."), ("inlink/in.vtu", "res/a/../b"),
+                              (f"{job.resolve()}/meshes/in.vtu", f"{job.resolve()}/res")]:
+        spec = load_problem(write(job, f'[mesh]\nfile = "{mesh_file}"\n[output]\n'
+                                       f'folder = "{folder}"\n'), stay_in_folder=True)
+        assert spec.mesh.n_cells == 8
+        assert spec.options.folder.resolve().is_relative_to(job.resolve())
+
+
+def test_stay_in_folder_refuses_xdmf_meshes_which_name_further_files(job):
+    path = write(job, '[mesh]\nfile = "meshes/in.xdmf"\n')
+    with pytest.raises(InputError, match=r"mesh\.file: a \.xdmf mesh names further files.*"
+                       r"convert the mesh to \.msh or \.vtu"):
+        load_problem(path, stay_in_folder=True)
+
+
+def test_stay_in_folder_names_a_loop_of_links(job):
+    (job / "loop").symlink_to(job / "loop")
+    with pytest.raises(InputError, match=r"mesh\.file: the mesh file '.*loop/x\.vtu' cannot be "
+                       r"resolved \(a loop of symbolic links\?\)"):
+        load_problem(write(job, '[mesh]\nfile = "loop/x.vtu"\n'), stay_in_folder=True)
