@@ -112,7 +112,7 @@ MUTANTS = [
      "            b += asm.boundary_load(tag, flux)\n",
      "            b -= asm.boundary_load(tag, flux)\n"),
     ("Dirichlet lifting with the wrong sign", "boundary.py",
-     "s -= data[j] * g_full[c]", "s += data[j] * g_full[c]"),
+     "s -= a * g_full[c]", "s += a * g_full[c]"),
     ("transposed Jacobian (geometry)", "geometry.py",
      "            J[i, j] = points[vj, i] - points[v0, i]",
      "            J[j, i] = points[vj, i] - points[v0, i]", A22),
