@@ -14,12 +14,15 @@ by side with ratios, each row in its own process.
 from __future__ import annotations
 
 import galerkit as gk
-from galerkit.multigrid import p1_coarse_space
 
 try:
     from .bench_assembly import CASES as _ASSEMBLY_CASES, scale
+    from .compare import cells_per_axis
+    from .compare_solvers import system
 except ImportError:  # run as a plain module
     from bench_assembly import CASES as _ASSEMBLY_CASES, scale
+    from compare import cells_per_axis
+    from compare_solvers import system
 
 CASES = dict(_ASSEMBLY_CASES, **{"tri-P3": (2, 3, 235)})
 RTOL = 1e-8
@@ -27,14 +30,7 @@ RTOL = 1e-8
 
 def reduced_system(case):
     dim, degree, full = CASES[case]
-    n = max(2, int(round((full + 1) * scale() ** (1.0 / dim))) - 1)
-    mesh = gk.structured_triangles(n, n) if dim == 2 else gk.structured_tetrahedra(n, n, n)
-    prob = gk.PoissonProblem(mesh, 1.0, 1.0, {"boundary": 0.0})
-    asm = gk.Assembler(prob.discretize(degree))
-    A, b, rd = prob.assemble(asm)
-    elim, Af, bf, *_ = prob.constrain(asm, A, b, rd)
-    coarse = p1_coarse_space(asm.disc, elim.free) if degree > 1 else None
-    return Af, bf, coarse
+    return system(dim, degree, cells_per_axis(full, dim, scale()))
 
 
 class Solvers:

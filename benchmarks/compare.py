@@ -48,6 +48,18 @@ def cells_per_axis(full, dim, scale):
     return max(2, int(round((full + 1) * scale ** (1.0 / dim))) - 1)
 
 
+def markdown_rows(rows, cols):
+    """A plain markdown table of ``rows`` (dicts): floats to 3 digits, a missing key blank."""
+    lines = ["| " + " | ".join(cols) + " |", "|" + "|".join("---" for _ in cols) + "|"]
+    for r in rows:
+        cells = []
+        for c in cols:
+            v = r.get(c, "")
+            cells.append(f"{v:.3g}" if isinstance(v, float) else str(v))
+        lines.append("| " + " | ".join(cells) + " |")
+    return "\n".join(lines)
+
+
 def peak_rss_bytes():
     # ru_maxrss is in KiB on Linux, bytes on macOS
     r = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss

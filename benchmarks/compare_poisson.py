@@ -31,7 +31,7 @@ import time
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
-from compare import cells_per_axis, peak_rss_bytes  # noqa: E402
+from compare import cells_per_axis, markdown_rows, peak_rss_bytes  # noqa: E402
 
 CASES = {"3D": (3, 99), "2D": (2, 999)}
 
@@ -140,14 +140,7 @@ def main(argv=None):
             out = subprocess.run([sys.executable, __file__, "--worker", f"{name}:{pipeline}:{n}"],
                                  capture_output=True, text=True, check=True)
             rows.append(json.loads(out.stdout.strip().splitlines()[-1]))
-    print("| " + " | ".join(COLS) + " |")
-    print("|" + "|".join("---" for _ in COLS) + "|")
-    for r in rows:
-        cells = []
-        for c in COLS:
-            v = r.get(c, "")
-            cells.append(f"{v:.3g}" if isinstance(v, float) else str(v))
-        print("| " + " | ".join(cells) + " |")
+    print(markdown_rows(rows, COLS))
     by = {(r["case"], r["pipeline"]): r for r in rows}
     for name in args.cases.split(","):
         if (name, "by hand") in by:

@@ -38,7 +38,7 @@ import time
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
-from compare import cells_per_axis  # noqa: E402
+from compare import cells_per_axis, markdown_rows  # noqa: E402
 
 #: name: (dim, degree, cells per axis at full size)
 CASES = {"tet-P1": (3, 1, 99), "tri-P1": (2, 1, 999), "tet-P2": (3, 2, 50),
@@ -184,11 +184,7 @@ def main(argv=None):
             rows.append(best)
             print(f"  {name} {solver}: total {best['total']:.3f} s, "
                   f"{best['iterations']} iterations", file=sys.stderr)
-    print("| " + " | ".join(COLS) + " |")
-    print("|" + "|".join("---" for _ in COLS) + "|")
-    for r in rows:
-        print("| " + " | ".join(f"{r[c]:.3g}" if isinstance(r[c], float) else str(r[c])
-                                for c in COLS) + " |")
+    print(markdown_rows(rows, COLS))
     by = {(r["case"], r["solver"]): r for r in rows}
     for name in args.cases.split(","):
         ours = by.get((name, "cg-amg"))

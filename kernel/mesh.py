@@ -28,41 +28,46 @@ DEGENERACY_TOLERANCE = 1e-12
 COINCIDENCE_TOLERANCE = 1e-10
 
 
+@nb.njit(cache=True, inline="always")
+def _cell_volume_and_longest(points, cells, c):
+    """Signed volume of cell ``c`` and the square of its longest edge."""
+    d = points.shape[1]
+    longest = 0.0
+    for i in range(d + 1):
+        for j in range(i + 1, d + 1):
+            s = 0.0
+            for r in range(d):
+                t = points[cells[c, j], r] - points[cells[c, i], r]
+                s += t * t
+            if s > longest:
+                longest = s
+    p0 = cells[c, 0]
+    if d == 2:
+        ax = points[cells[c, 1], 0] - points[p0, 0]
+        ay = points[cells[c, 1], 1] - points[p0, 1]
+        bx = points[cells[c, 2], 0] - points[p0, 0]
+        by = points[cells[c, 2], 1] - points[p0, 1]
+        return 0.5 * (ax * by - ay * bx), longest
+    a0 = points[cells[c, 1], 0] - points[p0, 0]
+    a1 = points[cells[c, 1], 1] - points[p0, 1]
+    a2 = points[cells[c, 1], 2] - points[p0, 2]
+    b0 = points[cells[c, 2], 0] - points[p0, 0]
+    b1 = points[cells[c, 2], 1] - points[p0, 1]
+    b2 = points[cells[c, 2], 2] - points[p0, 2]
+    c0 = points[cells[c, 3], 0] - points[p0, 0]
+    c1 = points[cells[c, 3], 1] - points[p0, 1]
+    c2 = points[cells[c, 3], 2] - points[p0, 2]
+    return (a0 * (b1 * c2 - b2 * c1) - a1 * (b0 * c2 - b2 * c0)
+            + a2 * (b0 * c1 - b1 * c0)) / 6.0, longest
+
+
 @nb.njit(cache=True, parallel=True)
 def _geometry(points, cells, volume, scale):
     """Signed volume and longest edge of every cell."""
-    m = cells.shape[0]
-    d = points.shape[1]
-    for c in nb.prange(m):
-        longest = 0.0
-        for i in range(d + 1):
-            for j in range(i + 1, d + 1):
-                s = 0.0
-                for r in range(d):
-                    t = points[cells[c, j], r] - points[cells[c, i], r]
-                    s += t * t
-                if s > longest:
-                    longest = s
+    for c in nb.prange(cells.shape[0]):
+        vol, longest = _cell_volume_and_longest(points, cells, c)
+        volume[c] = vol
         scale[c] = np.sqrt(longest)
-        p0 = cells[c, 0]
-        if d == 2:
-            ax = points[cells[c, 1], 0] - points[p0, 0]
-            ay = points[cells[c, 1], 1] - points[p0, 1]
-            bx = points[cells[c, 2], 0] - points[p0, 0]
-            by = points[cells[c, 2], 1] - points[p0, 1]
-            volume[c] = 0.5 * (ax * by - ay * bx)
-        else:
-            a0 = points[cells[c, 1], 0] - points[p0, 0]
-            a1 = points[cells[c, 1], 1] - points[p0, 1]
-            a2 = points[cells[c, 1], 2] - points[p0, 2]
-            b0 = points[cells[c, 2], 0] - points[p0, 0]
-            b1 = points[cells[c, 2], 1] - points[p0, 1]
-            b2 = points[cells[c, 2], 2] - points[p0, 2]
-            c0 = points[cells[c, 3], 0] - points[p0, 0]
-            c1 = points[cells[c, 3], 1] - points[p0, 1]
-            c2 = points[cells[c, 3], 2] - points[p0, 2]
-            volume[c] = (a0 * (b1 * c2 - b2 * c1) - a1 * (b0 * c2 - b2 * c0)
-                         + a2 * (b0 * c1 - b1 * c0)) / 6.0
 
 
 @nb.njit(cache=True, parallel=True)
@@ -154,34 +159,7 @@ def _orient_cells(points, cells, tol, volume, codes):
     n_degenerate = 0
     n_negative = 0
     for c in nb.prange(m):
-        longest = 0.0
-        for i in range(d + 1):
-            for j in range(i + 1, d + 1):
-                s = 0.0
-                for r in range(d):
-                    t = points[cells[c, j], r] - points[cells[c, i], r]
-                    s += t * t
-                if s > longest:
-                    longest = s
-        p0 = cells[c, 0]
-        if d == 2:
-            ax = points[cells[c, 1], 0] - points[p0, 0]
-            ay = points[cells[c, 1], 1] - points[p0, 1]
-            bx = points[cells[c, 2], 0] - points[p0, 0]
-            by = points[cells[c, 2], 1] - points[p0, 1]
-            vol = 0.5 * (ax * by - ay * bx)
-        else:
-            a0 = points[cells[c, 1], 0] - points[p0, 0]
-            a1 = points[cells[c, 1], 1] - points[p0, 1]
-            a2 = points[cells[c, 1], 2] - points[p0, 2]
-            b0 = points[cells[c, 2], 0] - points[p0, 0]
-            b1 = points[cells[c, 2], 1] - points[p0, 1]
-            b2 = points[cells[c, 2], 2] - points[p0, 2]
-            c0 = points[cells[c, 3], 0] - points[p0, 0]
-            c1 = points[cells[c, 3], 1] - points[p0, 1]
-            c2 = points[cells[c, 3], 2] - points[p0, 2]
-            vol = (a0 * (b1 * c2 - b2 * c1) - a1 * (b0 * c2 - b2 * c0)
-                   + a2 * (b0 * c1 - b1 * c0)) / 6.0
+        vol, longest = _cell_volume_and_longest(points, cells, c)
         scale = np.sqrt(longest)
         degenerate = abs(vol) <= tol * scale**d
         if degenerate:

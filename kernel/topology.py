@@ -118,24 +118,29 @@ def _bucket(cells, local, n_vertices, n_chunks, offsets, occ, keys):
                 counts[t, tup[0]] = pos + 1
 
 
+@nb.njit(cache=True, inline="always")
+def _sort_bucket(keys, occ, lo, hi):
+    """Stable insertion sort of ``keys[lo:hi]`` (with ``occ``) by key; buckets are
+    small: the entities whose smallest vertex is one vertex."""
+    for i in range(lo + 1, hi):
+        k = keys[i]
+        o = occ[i]
+        j = i - 1
+        while j >= lo and keys[j] > k:
+            keys[j + 1] = keys[j]
+            occ[j + 1] = occ[j]
+            j -= 1
+        keys[j + 1] = k
+        occ[j + 1] = o
+
+
 @nb.njit(cache=True, parallel=True)
 def _sort_and_count(offsets, occ, keys, n_unique):
     nv = offsets.shape[0] - 1
     for v in nb.prange(nv):
         lo = offsets[v]
         hi = offsets[v + 1]
-        # insertion sort of the bucket by key, stable (buckets are small: the
-        # entities whose smallest vertex is v)
-        for i in range(lo + 1, hi):
-            k = keys[i]
-            o = occ[i]
-            j = i - 1
-            while j >= lo and keys[j] > k:
-                keys[j + 1] = keys[j]
-                occ[j + 1] = occ[j]
-                j -= 1
-            keys[j + 1] = k
-            occ[j + 1] = o
+        _sort_bucket(keys, occ, lo, hi)
         count = 0
         for i in range(lo, hi):
             if i == lo or keys[i] != keys[i - 1]:
@@ -312,16 +317,7 @@ def _facet_scan(offsets, occ, keys, n_unique, n_boundary, first_shared, first_fo
     for v in nb.prange(nv):
         lo = offsets[v]
         hi = offsets[v + 1]
-        for i in range(lo + 1, hi):
-            kk = keys[i]
-            o = occ[i]
-            j = i - 1
-            while j >= lo and keys[j] > kk:
-                keys[j + 1] = keys[j]
-                occ[j + 1] = occ[j]
-                j -= 1
-            keys[j + 1] = kk
-            occ[j + 1] = o
+        _sort_bucket(keys, occ, lo, hi)
         uniq = 0
         bnd = 0
         shared_at = -1
