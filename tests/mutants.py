@@ -134,7 +134,7 @@ MUTANTS = [
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n        c_val = 1.5 * c_val\n"),
     ("consistent flux: residual with the load scaled by 0.97", "fluxes.py",
      "self.residual = A @ sol.u - b", "self.residual = A @ sol.u - 0.97 * b", FLUX_BAL),
-    ("facet measure off by the factor d", "fluxes.py",
+    ("flux: facet measure off by the factor d", "fluxes.py",
      "self.measure = d * vol * norm", "self.measure = vol * norm", FLUX_BAL),
     ("consistent flux: Robin facet flux with the wrong sign", "fluxes.py",
      "out[sel] = a * (g - uq[sel])", "out[sel] = a * (uq[sel] - g)", FLUX_BAL),
