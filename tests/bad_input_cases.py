@@ -981,27 +981,27 @@ def _():
 
 
 # ----------------------------------------------------------------------------
-# embedding entry points (galerkit.bindings.embed)
+# embedding entry points (galerkit.bindings.host.embed)
 # ----------------------------------------------------------------------------
-E = "embedding (bindings.embed)"
+E = "embedding (bindings.host.embed)"
 
 
 def _plan():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     return _get("plan", lambda: embed.pattern(np.ascontiguousarray(mesh2().cells))[2])
 
 
 @case("embed.pattern: 1-based cells (a Fortran host)", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     embed.pattern(np.ascontiguousarray(mesh2().cells) + 1)
 
 
 @case("embed.pattern: 1-based cells with points (index n_vertices)", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     embed.pattern(np.ascontiguousarray(mesh2().cells) + 1, points=np.ascontiguousarray(
         mesh2().points))
@@ -1009,7 +1009,7 @@ def _():
 
 @case("embed.l2_error: a P2 vector without cell_dofs", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     d2 = disc(2, 2)
     embed.l2_error(np.ascontiguousarray(mesh2().points), np.ascontiguousarray(mesh2().cells),
@@ -1018,7 +1018,7 @@ def _():
 
 @case("embed.h1_seminorm_error: u longer than the dofs of cell_dofs", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     d2 = disc(2, 2)
     embed.h1_seminorm_error(np.ascontiguousarray(mesh2().points),
@@ -1028,7 +1028,7 @@ def _():
 
 @case("embed.pattern: vertex index out of range", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     cells = np.array(mesh2().cells, dtype=np.int32)
     cells[3, 1] = 10**6
@@ -1037,21 +1037,21 @@ def _():
 
 @case("embed.stiffness: data array too short", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     embed.stiffness(np.ascontiguousarray(mesh2().points), _plan(), np.empty(5))
 
 
 @case("embed.stiffness: float32 points", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     embed.stiffness(mesh2().points.astype(np.float32), _plan(), np.empty(_plan()["nnz"]))
 
 
 @case("embed.stiffness: plan with a tampered position map", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     plan = dict(_plan())
     pm = plan["position_map"].copy()
@@ -1064,26 +1064,26 @@ def _():
 # ----------------------------------------------------------------------------
 # the distributed engine's set-up (no MPI needed)
 # ----------------------------------------------------------------------------
-X = "distributed set-up (bindings.partition, petsc_engine)"
+X = "distributed set-up (bindings.distributed.partition, petsc_engine)"
 
 
 @case("partition_cells: more parts than cells", X, "InputError")
 def _():
-    from galerkit.bindings.partition import partition_cells
+    from galerkit.bindings.distributed.partition import partition_cells
 
     partition_cells(mesh2(), mesh2().n_cells + 1)
 
 
 @case("dof_layout: parts of the wrong length", X, "InputError")
 def _():
-    from galerkit.bindings.partition import dof_layout
+    from galerkit.bindings.distributed.partition import dof_layout
 
     dof_layout(disc(), np.zeros(3, dtype=np.int32), 2)
 
 
 @case("dof_layout: part number out of range", X, "InputError")
 def _():
-    from galerkit.bindings.partition import dof_layout
+    from galerkit.bindings.distributed.partition import dof_layout
 
     parts = np.zeros(mesh2().n_cells, dtype=np.int32)
     parts[4] = 7
@@ -1092,14 +1092,14 @@ def _():
 
 @case("dof_layout: a part without cells", X, "InputError")
 def _():
-    from galerkit.bindings.partition import dof_layout
+    from galerkit.bindings.distributed.partition import dof_layout
 
     dof_layout(disc(), np.zeros(mesh2().n_cells, dtype=np.int32), 2)
 
 
 @case("petsc engine: incompatible pure Neumann data", X, "ProblemError")
 def _():
-    from galerkit.bindings.petsc_engine import assemble_part, constrain_part, neumann_sums, \
+    from galerkit.bindings.distributed.petsc_engine import assemble_part, constrain_part, neumann_sums, \
         prepare_parts
 
     header, payloads = prepare_parts(gk.PoissonProblem(mesh2(), source=1.0), 1, 1)
@@ -1109,7 +1109,7 @@ def _():
 
 @case("petsc engine: a lambda as coefficient (cannot be sent to ranks)", X, "InputError")
 def _():
-    from galerkit.bindings.petsc_engine import prepare_parts
+    from galerkit.bindings.distributed.petsc_engine import prepare_parts
 
     prepare_parts(gk.PoissonProblem(mesh2(), source=lambda x: x[0],
                                     dirichlet={"boundary": 0.0}), 1, 2)
@@ -1117,7 +1117,7 @@ def _():
 
 @case("petsc engine: PETSc options without a leading dash", X, "InputError")
 def _():
-    from galerkit.bindings.petsc_engine import parse_petsc_options
+    from galerkit.bindings.distributed.petsc_engine import parse_petsc_options
 
     parse_petsc_options("ksp_type cg")
 
@@ -1131,7 +1131,7 @@ C = "problem files and command line"
 def _problem(extra=""):
     import tomllib
 
-    from galerkit.bindings.problemfile import parse_problem
+    from galerkit.bindings.command.problemfile import parse_problem
 
     text = '[mesh]\ngenerator = "square"\ncells = 3\n' + extra
     return parse_problem(tomllib.loads(text), source="case.toml", text=text)
@@ -1158,7 +1158,7 @@ def _job_folder():
 def _confined(text):
     import tomllib
 
-    from galerkit.bindings.problemfile import parse_problem
+    from galerkit.bindings.command.problemfile import parse_problem
 
     return parse_problem(tomllib.loads(text), source="job/case.toml", text=text,
                          base=_job_folder(), stay_in_folder=True)

@@ -121,7 +121,7 @@ CASES = ("square-p1", "square-p2", "cube-p1", "cube-p2", "mixed-conditions", "pu
 def run_all(folder):
     from mpi4py import MPI
 
-    from galerkit.bindings.petsc_engine import solve_distributed, write_pieces
+    from galerkit.bindings.distributed.petsc_engine import solve_distributed, write_pieces
 
     comm = MPI.COMM_WORLD
     folder = Path(folder)

@@ -70,8 +70,8 @@ def _boundscheck_cache_dir():
     digest = hashlib.sha1(f"{numba.__version__} {sys.version} opt0".encode())
     root = HERE.parent
     for folder in ("kernel", "bindings"):
-        for f in sorted((root / folder).glob("*.py")):
-            digest.update(f.name.encode() + f.read_bytes())
+        for f in sorted((root / folder).rglob("*.py")):
+            digest.update(str(f.relative_to(root)).encode() + f.read_bytes())
     path = Path(tempfile.gettempdir()) / f"galerkit-boundscheck-cache-{digest.hexdigest()[:16]}"
     path.mkdir(exist_ok=True)
     for old in path.parent.glob("galerkit-boundscheck-cache-*"):  # caches of old sources

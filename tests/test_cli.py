@@ -1,4 +1,4 @@
-"""Specification of the command line (galerkit.bindings.cli).
+"""Specification of the command line (galerkit.bindings.command.cli).
 
 End-to-end runs of every subcommand in a subprocess on small problems, and
 the exit codes and messages of bad input (in-process through ``main``, which
@@ -18,8 +18,8 @@ import meshio
 import numpy as np
 import pytest
 
-from galerkit.bindings.cli import CAUTION, main
-from galerkit.bindings.plots import PNG_SIGNATURE
+from galerkit.bindings.command.cli import CAUTION, main
+from galerkit.bindings.files.plots import PNG_SIGNATURE
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 SCRIPT = Path(sys.executable).with_name("galerkit")
@@ -27,7 +27,7 @@ SCRIPT = Path(sys.executable).with_name("galerkit")
 
 def run(*args, cwd=None):
     """Run the command line in a subprocess; (exit code, stdout, stderr)."""
-    cmd = [str(SCRIPT)] if SCRIPT.exists() else [sys.executable, "-m", "galerkit.bindings.cli"]
+    cmd = [str(SCRIPT)] if SCRIPT.exists() else [sys.executable, "-m", "galerkit.bindings.command.cli"]
     p = subprocess.run(cmd + [str(a) for a in args], capture_output=True, text=True, cwd=cwd,
                        timeout=600)
     return p.returncode, p.stdout, p.stderr
@@ -285,7 +285,7 @@ def test_flags_after_the_subcommand_and_quiet_output(tmp_path, capsys, square):
 # -- the petsc engine's flags, without MPI ----------------------------------------
 def test_petsc_engine_without_petsc4py_says_how_to_install_it(tmp_path):
     code = ("import sys; sys.modules['petsc4py'] = None; sys.modules['mpi4py'] = None; "
-            "from galerkit.bindings.cli import main; "
+            "from galerkit.bindings.command.cli import main; "
             f"sys.exit(main(['solve', {str(EXAMPLES / 'block-3d.toml')!r}, '--engine', "
             f"'petsc', '--output', {str(tmp_path)!r}]))")
     p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
@@ -326,7 +326,7 @@ def test_the_json_error_object_names_the_kind_of_error(tmp_path, capsys):
 
 
 def test_memory_and_recursion_errors_exit_2_with_one_line(monkeypatch, capsys, tmp_path):
-    from galerkit.bindings import cli
+    from galerkit.bindings.command import cli
 
     def exhausted(args):
         raise MemoryError

@@ -135,7 +135,7 @@ def test_read_mesh_merge_duplicates_joins_the_file_and_its_tags_follow(tmp_path)
 
 
 def test_problem_file_key_merge_duplicates_joins_the_mesh_file(tmp_path):
-    from galerkit.bindings.problemfile import load_problem
+    from galerkit.bindings.command.problemfile import load_problem
     from galerkit.errors import InputError
 
     n_merged, _, _ = _write_cut_msh(tmp_path / "cut.msh")

@@ -16,9 +16,9 @@ import scipy.sparse as sp
 
 import galerkit as gk
 from galerkit.boundary import DirichletElimination
-from galerkit.bindings.partition import (coordinate_bisection, dof_layout, local_part,
+from galerkit.bindings.distributed.partition import (coordinate_bisection, dof_layout, local_part,
                                          partition_cells, partition_report)
-from galerkit.bindings.petsc_engine import (_local_mesh, _local_to_part, assemble_part,
+from galerkit.bindings.distributed.petsc_engine import (_local_mesh, _local_to_part, assemble_part,
                                             constrain_part, mean_sums, neumann_sums,
                                             parse_petsc_options, prepare_parts,
                                             shift_to_zero_mean)

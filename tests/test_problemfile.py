@@ -1,4 +1,4 @@
-"""Specification of problem files (galerkit.bindings.problemfile).
+"""Specification of problem files (galerkit.bindings.command.problemfile).
 
 A problem file in our own TOML schema becomes a PoissonProblem and run
 options; every mistake is an InputError naming the file, the line, the key
@@ -20,8 +20,8 @@ import numpy as np
 import pytest
 
 import galerkit as gk
-from galerkit.bindings.expressions import Expression
-from galerkit.bindings.problemfile import (BOUNDARY_KINDS, SECTIONS, load_problem,
+from galerkit.bindings.command.expressions import Expression
+from galerkit.bindings.command.problemfile import (BOUNDARY_KINDS, SECTIONS, load_problem,
                                            parse_problem)
 from galerkit.errors import InputError
 
@@ -332,7 +332,7 @@ def test_every_example_loads(name):
 def test_block_example_source_is_minus_div_kappa_grad_of_its_exact_solution():
     # source: SymPy differentiates the exact solution of the example
     import sympy as sp
-    from galerkit.bindings.problemfile import tomllib
+    from galerkit.bindings.command.problemfile import tomllib
 
     data = tomllib.loads((EXAMPLES / "block-3d.toml").read_text())
     u, (x, y, z) = sympy_of(data["exact"]["solution"])
@@ -360,7 +360,7 @@ def test_block_example_converges_at_the_a_priori_l2_rate():
 def test_pipe_wall_exact_solution_satisfies_its_conditions():
     # source: SymPy; radial conduction with a convective outer surface (Incropera & DeWitt)
     import sympy as sp
-    from galerkit.bindings.problemfile import tomllib
+    from galerkit.bindings.command.problemfile import tomllib
 
     data = tomllib.loads((EXAMPLES / "pipe-wall.toml").read_text())
     c = data["constants"]
@@ -390,7 +390,7 @@ def test_example_files_name_the_schema_document():
 
 
 def test_the_documented_example_is_a_valid_problem_file():
-    from galerkit.bindings.problemfile import tomllib
+    from galerkit.bindings.command.problemfile import tomllib
 
     doc = (EXAMPLES.parent / "README.md").read_text()
     section = doc[doc.index("## Problem files"):]

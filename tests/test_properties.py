@@ -277,7 +277,7 @@ def test_random_dirichlet_dofs_and_values_raise_only_galerkit_errors(dofs, value
 
 
 # ----------------------------------------------------------------------------
-# fuzzing the coefficient formulas (galerkit.bindings.expressions)
+# fuzzing the coefficient formulas (galerkit.bindings.command.expressions)
 # ----------------------------------------------------------------------------
 FORMULAS = [
     "1 + 0.5*sin(pi*x)*y^2",
@@ -313,7 +313,7 @@ def mutated_formula(draw):
 @settings(max_examples=100, deadline=None)
 @given(text=mutated_formula())
 def test_mutated_formulas_compile_or_raise_input_error(text):
-    from galerkit.bindings.expressions import compile_expression
+    from galerkit.bindings.command.expressions import compile_expression
 
     x = np.array([[0.1, 0.5, 0.9], [0.2, 0.4, 0.8]])
     try:
@@ -395,16 +395,16 @@ def test_damaged_mesh_files_give_input_error_or_a_valid_mesh(mesh_files, data):
 
 
 # ----------------------------------------------------------------------------
-# fuzzing problem files (galerkit.bindings.problemfile.load_problem)
+# fuzzing problem files (galerkit.bindings.command.problemfile.load_problem)
 # ----------------------------------------------------------------------------
 EXAMPLES = Path(__file__).parent.parent / "examples"
 
 
 @pytest.fixture(scope="module")
 def problem_files():
-    problemfile = pytest.importorskip("galerkit.bindings.problemfile")
+    problemfile = pytest.importorskip("galerkit.bindings.command.problemfile")
     if not hasattr(problemfile, "load_problem"):
-        pytest.skip("galerkit.bindings.problemfile has no load_problem")
+        pytest.skip("galerkit.bindings.command.problemfile has no load_problem")
     folder = Path(tempfile.mkdtemp(prefix="galerkit-toml-fuzz-"))
     texts = {}
     for p in sorted(EXAMPLES.glob("*.toml")):

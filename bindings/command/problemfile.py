@@ -5,7 +5,7 @@ element degree, the conductivity, the source, the boundary conditions by
 facet tag, the solver, the outputs and, optionally, an exact solution to
 measure the error against.  Coefficients are short formulas of the
 coordinates ``x``, ``y``, ``z`` read by
-:func:`galerkit.bindings.expressions.compile_expression` (never run as Python).
+:func:`galerkit.bindings.command.expressions.compile_expression` (never run as Python).
 The schema is documented in the README section "Problem files"; in short::
 
     title = "..."                      # optional
@@ -122,7 +122,7 @@ class BoundaryEntry:
     """One ``[[boundary]]`` entry, checked.
 
     ``values`` maps the kind's value keys to a float or a compiled
-    :class:`~galerkit.bindings.expressions.Expression`.
+    :class:`~galerkit.bindings.command.expressions.Expression`.
     """
 
     index: int  # counts from 1, as in messages
@@ -600,7 +600,7 @@ def _read_mesh_section(r: _Reader, t, base: Path):
                    "convert the mesh to .msh or .vtu")
         merge = (r.boolean(t["merge_duplicates"], ("mesh", "merge_duplicates"))
                  if "merge_duplicates" in t else False)
-        from .files import _read_mesh
+        from ..files.readwrite import _read_mesh
 
         try:
             mesh, joined = _read_mesh(fpath, merge_duplicates=merge)

@@ -10,8 +10,8 @@ Flow (every rank runs :func:`solve_distributed`; SPMD)
 ------------------------------------------------------
 1. Rank 0 holds the problem (its global mesh), numbers the global dofs
    (:class:`~galerkit.Discretization`), finds the Dirichlet dofs and values,
-   partitions the cells (:mod:`galerkit.bindings.partition`) and sends each
-   rank its :class:`~galerkit.bindings.partition.LocalPart` and the
+   partitions the cells (:mod:`galerkit.bindings.distributed.partition`) and sends each
+   rank its :class:`~galerkit.bindings.distributed.partition.LocalPart` and the
    problem's data (coefficients pickled; per-cell and per-dof arrays cut to
    the rank's cells and dofs), one part at a time.
 2. Each rank builds its own :class:`~galerkit.Mesh` and
@@ -841,7 +841,7 @@ def write_pieces(folder, stem, sol: DistributedSolution, *, name="u"):
 
     from galerkit.problem import Solution
 
-    from .files import write_parallel_index, write_solution
+    from ..files.readwrite import write_parallel_index, write_solution
 
     folder = Path(folder)
     comm = sol._comm

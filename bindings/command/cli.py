@@ -162,8 +162,8 @@ def _demo(args) -> int:
     """
     import galerkit as gk
     from galerkit.errors import InputError
-    from .files import write_solution
-    from .plots import plot_field
+    from ..files import write_solution
+    from ..files.plots import plot_field
 
     if args.size < 3:
         raise InputError(f"demo: --size must be at least 3, got {args.size}")
@@ -232,7 +232,7 @@ def _demo(args) -> int:
 def _verify(args) -> int:
     import galerkit as gk
     from galerkit.errors import InputError
-    from .plots import plot_convergence
+    from ..files.plots import plot_convergence
 
     if args.levels < 2:
         raise InputError(f"verify: --levels must be at least 2 (an order needs two meshes), "
@@ -315,7 +315,7 @@ def tag_overlaps(mesh) -> list:
 
 
 def _mesh_info(args) -> int:
-    from .files import read_mesh
+    from ..files import read_mesh
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -430,8 +430,8 @@ def _solve(args) -> int:
         raise InputError("--petsc-options applies to --engine petsc only; add --engine petsc "
                          "(under mpiexec) or remove it")
     from galerkit.errors import InputError
-    from .files import write_solution
-    from .plots import plot_field
+    from ..files import write_solution
+    from ..files.plots import plot_field
     from .problemfile import load_problem
 
     bar = _progress(args, 4, "solve")
@@ -532,7 +532,7 @@ def _solve_distributed(args) -> int:
     import os
 
     from galerkit.errors import InputError
-    from .petsc_engine import _modules, _on_root, solve_distributed, write_pieces
+    from ..distributed.petsc_engine import _modules, _on_root, solve_distributed, write_pieces
     from .problemfile import load_problem
 
     MPI, _ = _modules()
@@ -724,7 +724,7 @@ def _bench(args) -> int:
     from galerkit.errors import InputError
     from galerkit.solvers import available_solvers, prepare_solver, register_solver, \
         unregister_solver
-    from .plots import plot_residuals
+    from ..files.plots import plot_residuals
     from .problemfile import load_problem
 
     if (args.problem is None) == (args.generate is None):
@@ -886,7 +886,7 @@ def _warm(args) -> int:
 
     import galerkit as gk
     from galerkit.compilation import cache_folder, compile_count, compile_seconds
-    from .files import write_solution
+    from ..files import write_solution
 
     t0 = time.perf_counter()
     c0, n0 = compile_seconds(), compile_count()

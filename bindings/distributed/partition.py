@@ -1,7 +1,7 @@
 """Partitioning a discretization across ranks: cells, dof ownership, local maps.
 
 Everything here is plain NumPy and numba on one process: no MPI.  The
-distributed engine (:mod:`galerkit.bindings.petsc_engine`) calls it on rank 0
+distributed engine (:mod:`galerkit.bindings.distributed.petsc_engine`) calls it on rank 0
 and sends each rank its :class:`LocalPart`; the tests and the scaling report
 call it for any number of parts without running that many ranks.
 

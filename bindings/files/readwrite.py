@@ -29,7 +29,7 @@ Writing
 -------
 :func:`write_solution` writes a :class:`~galerkit.problem.Solution` as one
 VTU file; see its docstring for the arrays.  Both writers here and the PNG
-writers in :mod:`galerkit.bindings.plots` write a temporary file next to the
+writers in :mod:`galerkit.bindings.files.plots` write a temporary file next to the
 target and rename it (:func:`atomic_path` then :func:`os.replace`), so a
 reader never sees half a file.
 """
