@@ -523,7 +523,7 @@ class Mesh:
     cells : array_like, shape (n_cells, d + 1), integer
         Vertex indices of each cell.  Negatively oriented cells are
         re-oriented (two vertices swapped) and counted in ``n_reoriented``.
-    facet_tags : dict, optional
+    facet_groups : dict, optional
         ``name -> boundary facet ids`` to start with.
     check_coincident : bool, default True
         Refuse distinct vertices at one place (see
@@ -544,7 +544,7 @@ class Mesh:
         ``read_mesh(path, merge_duplicates=True)``), a facet
         shared by more than two cells, two cells on the same side of their
         shared facet (a folded mesh: an inverted cell overlapping its
-        neighbour), or ``facet_tags`` that is not a dict of valid ids.  The
+        neighbour), or ``facet_groups`` that is not a dict of valid ids.  The
         message names the first offending vertex or cell.
 
     Examples
@@ -556,14 +556,14 @@ class Mesh:
     (4, 2)
     """
 
-    def __init__(self, points, cells, *, facet_tags=None, check_coincident=True):
+    def __init__(self, points, cells, *, facet_groups=None, check_coincident=True):
         p = _as_points(points)
         n, d = p.shape
         c, used = _cells_and_use(cells, n, d)
-        if facet_tags is not None and not hasattr(facet_tags, "items"):
+        if facet_groups is not None and not hasattr(facet_groups, "items"):
             raise MeshError(
-                f"mesh facet_tags must be a dict of name -> boundary facet ids, got "
-                f"{type(facet_tags).__name__}")
+                f"mesh facet_groups must be a dict of name -> boundary facet ids, got "
+                f"{type(facet_groups).__name__}")
         if not used.all():
             unused = np.flatnonzero(used == 0)
             raise MeshError(
@@ -604,15 +604,15 @@ class Mesh:
         self.points = p
         self.cells = c
         self.cell_volumes = vol
-        self.facet_tags = {}
+        self.facet_groups = {}
         # hierarchy, filled in by refine_uniform
         self.parent = None
         self.parent_cells = None
         self.vertex_parents = None
         self.refinement_cells = None
         _ = self._facet_topology  # validates manifoldness
-        if facet_tags:
-            for name, ids in facet_tags.items():
+        if facet_groups:
+            for name, ids in facet_groups.items():
                 self.set_facet_tag(name, ids)
 
     # -- basic properties ----------------------------------------------------
@@ -634,7 +634,7 @@ class Mesh:
 
     def __repr__(self) -> str:
         return (f"Mesh({self.n_vertices} vertices, {self.n_cells} {self.cell_type}s, "
-                f"tags {sorted(self.facet_tags)})")
+                f"tags {sorted(self.facet_groups)})")
 
     # -- topology -------------------------------------------------------------
     @cached_property
@@ -720,7 +720,7 @@ class Mesh:
             )
         ids = np.unique(ids).astype(np.int64)
         ids.flags.writeable = False
-        self.facet_tags[name] = ids
+        self.facet_groups[name] = ids
         return ids
 
     def tag_boundary(self, name: str, predicate) -> np.ndarray:
@@ -773,11 +773,11 @@ class Mesh:
 
     def tagged_facets(self, tag: str) -> np.ndarray:
         """Facet ids of ``tag``; a clear error naming the known tags if missing."""
-        if not isinstance(tag, str) or tag not in self.facet_tags:
+        if not isinstance(tag, str) or tag not in self.facet_groups:
             raise MeshError(
-                f"mesh has no facet tag {tag!r}; known tags: {sorted(self.facet_tags)}"
+                f"mesh has no facet tag {tag!r}; known tags: {sorted(self.facet_groups)}"
             )
-        return self.facet_tags[tag]
+        return self.facet_groups[tag]
 
     # -- connectivity ----------------------------------------------------------
     def connected_components(self):

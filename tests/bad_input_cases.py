@@ -242,9 +242,9 @@ def _():
             [[0, 1, 2, 3], [0, 1, 2, 4], [0, 1, 2, 5]])
 
 
-@case("facet_tags not a dict", M, "MeshError")
+@case("facet_groups not a dict", M, "MeshError")
 def _():
-    gk.Mesh(SQUARE, SQUARE_CELLS, facet_tags=["left"])
+    gk.Mesh(SQUARE, SQUARE_CELLS, facet_groups=["xmin"])
 
 
 @case("facet tag with no facets", M, "MeshError")
@@ -279,7 +279,7 @@ def _():
 
 @case("tag_boundary predicate of the wrong shape", M, "MeshError")
 def _():
-    gk.structured_triangles(2, 2).tag_boundary("left", lambda x: x[0] < 0.1 + 0 * x)
+    gk.structured_triangles(2, 2).tag_boundary("xmin", lambda x: x[0] < 0.1 + 0 * x)
 
 
 @case("remove_unreferenced_vertices with an index out of range", M, "MeshError")
@@ -492,7 +492,7 @@ def _():
 @case("boundary_load flux read from the out= vector", A, "InputError")
 def _():
     b = np.zeros(asm().n_dofs)
-    asm().boundary_load("left", b[:len(mesh2().tagged_facets("left"))], out=b)
+    asm().boundary_load("xmin", b[:len(mesh2().tagged_facets("xmin"))], out=b)
 
 
 @case("per-cell conductivity read from the out= matrix's own data", A, "InputError")
@@ -509,17 +509,17 @@ def _():
 
 @case("NaN boundary flux", A, "InputError")
 def _():
-    asm().boundary_load("left", np.nan)
+    asm().boundary_load("xmin", np.nan)
 
 
 @case("boundary_mass per-facet array of the wrong length", A, "InputError")
 def _():
-    asm().boundary_mass("left", np.ones(99))
+    asm().boundary_mass("xmin", np.ones(99))
 
 
 @case("fractional quadrature degree", A, "InputError")
 def _():
-    asm().boundary_load("left", lambda x: x[0], quadrature_degree=2.5)
+    asm().boundary_load("xmin", lambda x: x[0], quadrature_degree=2.5)
 
 
 # ----------------------------------------------------------------------------
@@ -729,32 +729,32 @@ def _():
 
 @case("boundary conditions not a dict", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), dirichlet=[("left", 0.0)])
+    gk.PoissonProblem(mesh2(), dirichlet=[("xmin", 0.0)])
 
 
 @case("Robin data not a pair", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), robin={"left": 1.0})
+    gk.PoissonProblem(mesh2(), robin={"xmin": 1.0})
 
 
 @case("negative Robin coefficient", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), robin={"left": (-2.0, 0.0)})
+    gk.PoissonProblem(mesh2(), robin={"xmin": (-2.0, 0.0)})
 
 
 @case("Robin coefficient negative at a quadrature point", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), robin={"left": (lambda x: x[1] - 0.5, 0.0)}).solve()
+    gk.PoissonProblem(mesh2(), robin={"xmin": (lambda x: x[1] - 0.5, 0.0)}).solve()
 
 
 @case("NaN Robin coefficient", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), robin={"left": (np.nan, 0.0)})
+    gk.PoissonProblem(mesh2(), robin={"xmin": (np.nan, 0.0)})
 
 
 @case("pure Neumann with incompatible data", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), source=1.0, neumann={"left": 0.5}).solve()
+    gk.PoissonProblem(mesh2(), source=1.0, neumann={"xmin": 0.5}).solve()
 
 
 @case("Robin coefficient zero everywhere, incompatible data", P, "ProblemError")
@@ -804,7 +804,7 @@ def _():
 
 @case("Dirichlet values near 1e308 (lifting overflows)", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), dirichlet={"left": 1e308, "right": -1e308}).solve()
+    gk.PoissonProblem(mesh2(), dirichlet={"xmin": 1e308, "xmax": -1e308}).solve()
 
 
 @case("coordinates near 1e-160 (cell volumes underflow)", P, "MeshError")
@@ -819,14 +819,14 @@ def _():
     gk.Assembler(gk.Discretization(gk.Mesh(mesh2().points * 1e150, mesh2().cells), 1))
 
 
-@case("two fixed values on overlapping tags (left inside boundary)", P, "ProblemError")
+@case("two Dirichlet values on overlapping tags (xmin inside boundary)", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), dirichlet={"left": 1.0, "boundary": 0.0})
+    gk.PoissonProblem(mesh2(), dirichlet={"xmin": 1.0, "boundary": 0.0})
 
 
-@case("a flux on a tag inside a fixed tag", P, "ProblemError")
+@case("a Neumann condition on a tag inside a Dirichlet tag", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), dirichlet={"boundary": 0.0}, neumann={"left": 2.0})
+    gk.PoissonProblem(mesh2(), dirichlet={"boundary": 0.0}, neumann={"xmin": 2.0})
 
 
 # ----------------------------------------------------------------------------
@@ -1137,10 +1137,10 @@ def _problem(extra=""):
     return parse_problem(tomllib.loads(text), source="case.toml", text=text)
 
 
-@case("problem file: a fixed entry and a flux entry on overlapping tags", C, "InputError")
+@case("problem file: a dirichlet entry and a neumann entry on overlapping tags", C, "InputError")
 def _():
-    _problem('[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n'
-             '[[boundary]]\ntag = "top"\nkind = "flux"\nflux = 1\n')
+    _problem('[[boundary]]\ntag = "boundary"\nkind = "dirichlet"\nu = 0\n'
+             '[[boundary]]\ntag = "ymax"\nkind = "neumann"\ninflow = 1\n')
 
 
 @case("problem file: [mesh] merge_duplicates with a generator", C, "InputError")

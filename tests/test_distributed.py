@@ -212,8 +212,8 @@ def test_command_line_bad_problem_is_reported_once_and_exits_2(tmp_path):
 
 def test_command_line_pure_neumann_file_matches_the_serial_engine(tmp_path):
     f = tmp_path / "balanced.toml"
-    f.write_text('[mesh]\ngenerator = "square"\ncells = 6\n[[boundary]]\ntag = "left"\n'
-                 'kind = "flux"\nflux = 1\n[[boundary]]\ntag = "right"\nkind = "flux"\n'
+    f.write_text('[mesh]\ngenerator = "square"\ncells = 6\n[[boundary]]\ntag = "xmin"\n'
+                 'kind = "neumann"\ninflow = 1\n[[boundary]]\ntag = "xmax"\nkind = "neumann"\n'
                  'flux = -1\n')
     serial = subprocess.run([sys.executable, "-m", "galerkit.bindings.command.cli", "solve", f,
                              "--json", "--output", tmp_path / "s"], capture_output=True,
@@ -234,7 +234,7 @@ def test_an_error_on_one_rank_only_stops_every_rank(tmp_path):
     # holding them fails in its assembly, the other would not; both must stop
     f = tmp_path / "half.toml"
     f.write_text('[mesh]\ngenerator = "square"\ncells = 8\n[source]\nvalue = "sqrt(x - 0.5)"\n'
-                 '[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n')
+                 '[[boundary]]\ntag = "boundary"\nkind = "dirichlet"\nu = 0\n')
     code, out, err = _cli(2, "solve", f, "--engine", "petsc", "--output", tmp_path / "out")
     assert code == 2
     assert err.count("the value is not finite") == 1, err

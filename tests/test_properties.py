@@ -222,7 +222,7 @@ def test_random_arguments_to_public_entry_points_raise_only_galerkit_errors(sett
     mesh, disc, asm, K = setting
     fresh = gk.structured_triangles(2, 2)
     calls = [
-        lambda: gk.Mesh(mesh.points, mesh.cells, facet_tags=obj),
+        lambda: gk.Mesh(mesh.points, mesh.cells, facet_groups=obj),
         lambda: fresh.set_facet_tag("x", obj),
         lambda: fresh.set_facet_tag(obj, [0]),
         lambda: mesh.tagged_facets(obj),
@@ -236,8 +236,8 @@ def test_random_arguments_to_public_entry_points_raise_only_galerkit_errors(sett
         lambda: asm.mass(obj),
         lambda: asm.load(obj),
         lambda: asm.load(1.0, out=obj),
-        lambda: asm.boundary_load("left", obj),
-        lambda: asm.boundary_mass("left", obj),
+        lambda: asm.boundary_load("xmin", obj),
+        lambda: asm.boundary_mass("xmin", obj),
         lambda: asm.boundary_load(obj, 1.0),
         lambda: DirichletElimination(K, obj),
         lambda: DirichletElimination(obj, [0]),
@@ -257,7 +257,7 @@ def test_random_arguments_to_public_entry_points_raise_only_galerkit_errors(sett
         lambda: gk.PoissonProblem(mesh, source=obj, dirichlet={"boundary": 0.0}).solve(),
         lambda: gk.PoissonProblem(mesh, dirichlet={"boundary": obj}).solve(),
         lambda: gk.PoissonProblem(mesh, dirichlet=obj),
-        lambda: gk.PoissonProblem(mesh, robin={"left": (obj, 1.0)}).solve(),
+        lambda: gk.PoissonProblem(mesh, robin={"xmin": (obj, 1.0)}).solve(),
         lambda: gk.PoissonProblem(mesh, dirichlet={"boundary": 0.0}).solve(degree=obj),
     ]
     for call in calls:
@@ -391,7 +391,7 @@ def test_damaged_mesh_files_give_input_error_or_a_valid_mesh(mesh_files, data):
         except InputError:  # MeshError is an InputError too
             return
     assert isinstance(mesh, gk.Mesh)
-    assert (mesh.cell_volumes > 0).all() and "boundary" in mesh.facet_tags
+    assert (mesh.cell_volumes > 0).all() and "boundary" in mesh.facet_groups
 
 
 # ----------------------------------------------------------------------------
