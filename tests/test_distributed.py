@@ -214,7 +214,7 @@ def test_command_line_pure_neumann_file_matches_the_serial_engine(tmp_path):
     f = tmp_path / "balanced.toml"
     f.write_text('[mesh]\ngenerator = "square"\ncells = 6\n[[boundary]]\ntag = "xmin"\n'
                  'kind = "neumann"\ninflow = 1\n[[boundary]]\ntag = "xmax"\nkind = "neumann"\n'
-                 'flux = -1\n')
+                 'inflow = -1\n')
     serial = subprocess.run([sys.executable, "-m", "galerkit.bindings.command.cli", "solve", f,
                              "--json", "--output", tmp_path / "s"], capture_output=True,
                             text=True, cwd=ROOT)
