@@ -83,6 +83,13 @@ def _tag_box(mesh, lower, upper, spacing):
     return mesh
 
 
+def _regions(mesh, regions, names):
+    if regions is not None:
+        mesh.set_regions(regions, names)
+    elif names is not None:
+        raise InputError("region_names given without regions; pass regions= as well")
+
+
 def _grid_points(counts, lower, upper):
     axes = [np.linspace(lower[a], upper[a], counts[a] + 1) for a in range(len(counts))]
     grids = np.meshgrid(*axes, indexing="ij")
@@ -90,7 +97,8 @@ def _grid_points(counts, lower, upper):
     return np.ascontiguousarray(np.stack([g.T.ravel() for g in grids], axis=1))
 
 
-def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0)) -> Mesh:
+def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0), *, regions=None,
+                         region_names=None) -> Mesh:
     """Rectangle split into ``nx * ny`` squares, two triangles each.
 
     Every square is cut by its diagonal from the lower-left to the
@@ -102,6 +110,9 @@ def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0)) -> Mesh:
         Number of squares along x and y.
     lower, upper : sequence of 2 floats
         Opposite corners of the rectangle.
+    regions, region_names : optional
+        Cell regions, as in :meth:`Mesh.set_regions` (ids, a callable of the
+        cell centroids, or ``{name: predicate}``).
 
     Returns
     -------
@@ -126,10 +137,12 @@ def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0)) -> Mesh:
     cells[0::2] = np.stack([v00, v10, v11], axis=1)
     cells[1::2] = np.stack([v00, v11, v01], axis=1)
     mesh = Mesh(pts, cells, check_coincident=False)  # grid points are distinct
+    _regions(mesh, regions, region_names)
     return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny))
 
 
-def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.0)) -> Mesh:
+def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.0), *,
+                          regions=None, region_names=None) -> Mesh:
     """Box split into ``nx * ny * nz`` boxes, six conforming tetrahedra each.
 
     Each box is cut into the six tetrahedra around its main diagonal (Kuhn's
@@ -140,6 +153,8 @@ def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.
     ----------
     nx, ny, nz : int
     lower, upper : sequence of 3 floats
+    regions, region_names : optional
+        Cell regions, as in :meth:`Mesh.set_regions`.
 
     Returns
     -------
@@ -178,13 +193,15 @@ def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.
             cells[:, t, j] = col
     cells = cells.reshape(-1, 4)
     mesh = Mesh(pts, cells, check_coincident=False)  # grid points are distinct
+    _regions(mesh, regions, region_names)
     return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny, nz))
 
 
-def l_shaped_triangles(n) -> Mesh:
+def l_shaped_triangles(n, *, regions=None, region_names=None) -> Mesh:
     """The L-shaped domain (-1, 1)^2 without the quadrant x > 0, y < 0.
 
     Structured triangles of size ``1/n`` on each of the three unit squares.
+    ``regions``/``region_names`` as in :meth:`Mesh.set_regions`.
     Tags: ``"xmin"`` (x = -1), ``"xmax"`` (x = 1), ``"ymin"`` (y = -1),
     ``"ymax"`` (y = 1), ``"reentrant"`` (the two edges meeting at the
     re-entrant corner (0, 0)) and ``"boundary"``.
@@ -215,4 +232,5 @@ def l_shaped_triangles(n) -> Mesh:
     for name, mask in sides.items():
         mesh.set_facet_tag(name, np.flatnonzero(mask))
     mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
+    _regions(mesh, regions, region_names)
     return mesh

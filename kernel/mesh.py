@@ -17,6 +17,7 @@ import numba as nb
 import numpy as np
 
 from .errors import MeshError
+from .regions import DEFAULT_REGION, as_region_ids, interfaces as _interfaces
 from .topology import facet_topology, index_dtype
 
 __all__ = ["Mesh", "MeshQuality", "remove_unreferenced_vertices", "merge_duplicate_vertices",
@@ -525,6 +526,11 @@ class Mesh:
         re-oriented (two vertices swapped) and counted in ``n_reoriented``.
     facet_groups : dict, optional
         ``name -> boundary facet ids`` to start with.
+    regions : array_like (n_cells,), callable or dict, optional
+        Cell regions (materials); see :meth:`set_regions`.  Without them the
+        mesh has the one region ``"domain"`` (id 0).
+    region_names : dict name -> id or list of names, optional
+        Names of the region ids (see :meth:`set_regions`).
     check_coincident : bool, default True
         Refuse distinct vertices at one place (see
         :func:`merge_duplicate_vertices`).  The generators and
@@ -556,7 +562,8 @@ class Mesh:
     (4, 2)
     """
 
-    def __init__(self, points, cells, *, facet_groups=None, check_coincident=True):
+    def __init__(self, points, cells, *, facet_groups=None, check_coincident=True, regions=None,
+                 region_names=None):
         p = _as_points(points)
         n, d = p.shape
         c, used = _cells_and_use(cells, n, d)
@@ -605,6 +612,8 @@ class Mesh:
         self.cells = c
         self.cell_volumes = vol
         self.facet_groups = {}
+        self.set_regions(np.zeros(c.shape[0], dtype=np.int32) if regions is None else regions,
+                         {DEFAULT_REGION: 0} if regions is None else region_names)
         # hierarchy, filled in by refine_uniform
         self.parent = None
         self.parent_cells = None
@@ -633,8 +642,9 @@ class Mesh:
         return self.points.shape[0]
 
     def __repr__(self) -> str:
+        reg = "" if len(self.region_names) == 1 else f", regions {list(self.region_names)}"
         return (f"Mesh({self.n_vertices} vertices, {self.n_cells} {self.cell_type}s, "
-                f"tags {sorted(self.facet_groups)})")
+                f"tags {sorted(self.facet_groups)}{reg})")
 
     # -- topology -------------------------------------------------------------
     @cached_property
@@ -778,6 +788,41 @@ class Mesh:
                 f"mesh has no facet tag {tag!r}; known tags: {sorted(self.facet_groups)}"
             )
         return self.facet_groups[tag]
+
+    # -- regions -----------------------------------------------------------------
+    def set_regions(self, regions, names=None):
+        """Give every cell a region (material) id, with names.
+
+        Parameters
+        ----------
+        regions : array_like (n_cells,) of integers >= 0, callable, or dict
+            The ids; or ``regions(x)`` of the cell centroids ``x`` (dim,
+            n_cells) returning them; or ``{name: predicate(x) -> bool mask}``
+            (cells selected by no predicate form the region ``"domain"``).
+        names : dict name -> id, or list of names (name i for id i), optional
+            An id without a name is named by its number (``"3"``).
+
+        Sets ``regions`` (int32, read-only) and ``region_names`` (``name ->
+        id`` of the ids in use); see :mod:`galerkit.regions`.
+
+        Examples
+        --------
+        >>> from galerkit import structured_triangles
+        >>> m = structured_triangles(4, 1)
+        >>> m.set_regions(lambda x: (x[0] > 0.5).astype(int), ["steel", "foam"])
+        >>> m.regions.tolist(), m.region_names
+        ([0, 0, 0, 0, 1, 1, 1, 1], {'steel': 0, 'foam': 1})
+        """
+        ids, table = as_region_ids(self, regions, names)
+        self.regions = ids
+        self.region_names = table
+        self.__dict__.pop("interfaces", None)
+
+    @cached_property
+    def interfaces(self):
+        """Interior facets between regions: ``"a/b" -> Interface`` (see
+        :func:`galerkit.regions.interfaces`), usable for flux output."""
+        return _interfaces(self)
 
     # -- connectivity ----------------------------------------------------------
     def connected_components(self):

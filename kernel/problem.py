@@ -38,6 +38,7 @@ from .errors import InputError, ProblemError
 from .evaluation import cell_gradients, evaluate
 from .mesh import Mesh
 from .multigrid import p1_coarse_space
+from .regions import RegionCoefficient, region_coefficient
 from .solvers import SolveReport, choose_method, prepare_solver
 
 __all__ = ["PoissonProblem", "Solution", "conflicting_conditions"]
@@ -87,8 +88,11 @@ class PoissonProblem:
     Parameters
     ----------
     mesh : Mesh
-    conductivity : float, ndarray (n_cells,), callable, or SPD tensor (d, d) / (n_cells, d, d)
-    source : float, callable or dof array
+    conductivity : float, ndarray (n_cells,), callable, SPD tensor (d, d) / (n_cells, d, d),
+        or a dict ``{region: value}`` of those per cell region (key a region
+        name or id of ``mesh.region_names``; ``"default"`` covers the regions
+        not named; a region without a value is an error naming it)
+    source : float, callable, dof array, or a dict ``{region: number or callable}``
     dirichlet : dict, ``tag -> value`` (number, callable, or dof array)
     neumann : dict, ``tag -> flux`` (number or callable; flux into the domain)
     robin : dict, ``tag -> (alpha, u_ext)``
@@ -107,8 +111,9 @@ class PoissonProblem:
         if not isinstance(mesh, Mesh):
             raise InputError(f"PoissonProblem: mesh must be a galerkit Mesh, got {type(mesh).__name__}")
         self.mesh = mesh
-        self.conductivity = conductivity
-        self.source = source
+        # per-region dicts are checked here (every region covered) and bound to the mesh
+        self.conductivity = region_coefficient(mesh, conductivity, "conductivity")
+        self.source = region_coefficient(mesh, source, "source", allow_tensor=False)
         for kind, table in (("dirichlet", dirichlet), ("neumann", neumann), ("robin", robin)):
             if table is not None and not hasattr(table, "items"):
                 raise ProblemError(
@@ -358,7 +363,9 @@ class PoissonProblem:
     def _accurate_load(self, asm):
         """Load of the data with 4 more quadrature degrees; None when all data are
         constants or arrays (then the assembled load is already exact)."""
-        if not callable(self.source) and not any(callable(q) for q in self.neumann.values()):
+        varying = callable(self.source) or (isinstance(self.source, RegionCoefficient)
+                                            and self.source.has_callable)
+        if not varying and not any(callable(q) for q in self.neumann.values()):
             return None
         k = asm.disc.degree
         b = asm.load(self.source, quadrature_degree=asm.quadrature_degree + 4)

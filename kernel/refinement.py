@@ -54,7 +54,8 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     Returns
     -------
     Mesh
-        The refined mesh, with facet tags carried over to child facets and
+        The refined mesh, with facet tags carried over to child facets, each
+        child in its parent's region (``regions``, ``region_names``), and
         the hierarchy attached: ``parent`` (the coarse mesh), ``parent_cells``
         (child cell -> parent cell, shape (m_fine,)), and ``vertex_parents``
         (shape (n_fine, 2): the two coarse vertices whose midpoint a vertex
@@ -95,7 +96,8 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     parents = np.ascontiguousarray(parents[order])
     children = new_id[children].astype(cells.dtype)
     # midpoints of distinct edges of a valid (unfolded) mesh are distinct points
-    fine = Mesh(points, children, check_coincident=False)
+    fine = Mesh(points, children, check_coincident=False,
+                regions=np.repeat(mesh.regions, n_children), region_names=mesh.region_names)
     fine.parent = mesh
     fine.parent_cells = np.repeat(np.arange(mesh.n_cells), n_children)
     fine.vertex_parents = parents
