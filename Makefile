@@ -17,7 +17,7 @@ venv: $(STAMP)
 # Compile the common kernels once, ahead of the first run (`galerkit warm-up`);
 # redone when a kernel source changes (numba recompiles only what changed).
 WARM := $(VENV)/.warm
-$(WARM): $(STAMP) $(wildcard kernel/*.py bindings/*.py)
+$(WARM): $(STAMP) $(wildcard kernel/*.py bindings/*.py bindings/*/*.py)
 	$(VENV)/bin/galerkit --quiet warm-up
 	touch $(WARM)
 

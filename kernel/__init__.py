@@ -31,4 +31,4 @@ from .assembly import Assembler
 from .functionals import (l2_error, h1_seminorm_error, energy_error, l2_norm, h1_norm,
                           h1_seminorm, energy, nested_error)
 from .problem import PoissonProblem, Solution
-from .convergence import convergence_study, ConvergenceTable
+from .convergence import convergence_study, RateTable

@@ -553,7 +553,7 @@ def _check_quadrature_degree(value, where):
 
 
 # ----------------------------------------------------------------------------
-# symbolic phase, as plain functions (the Assembler and bindings.embed use them)
+# symbolic phase, as plain functions (the Assembler and bindings.host.embed use them)
 # ----------------------------------------------------------------------------
 def symbolic_phase(dofs, n_dofs):
     """CSR pattern, cell order and position map of a validated cell -> dof table.
@@ -605,7 +605,7 @@ def chunk_plan(dofs, order, indptr, n_chunks):
 
 
 # ----------------------------------------------------------------------------
-# reference tables (cached, read-only; shared with bindings.embed)
+# reference tables (cached, read-only; shared with bindings.host.embed)
 # ----------------------------------------------------------------------------
 def _frozen(a):
     a = np.ascontiguousarray(a)

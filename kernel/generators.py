@@ -1,7 +1,7 @@
 """Structured mesh generators for tests, studies and demos.
 
-Every generator tags its boundary facets: ``"left"``/``"right"`` (x = lower /
-upper), ``"bottom"``/``"top"`` (y), in 3D ``"front"``/``"back"`` (z), and
+Every generator tags its boundary facets: ``"xmin"``/``"xmax"`` (x = lower /
+upper), ``"ymin"``/``"ymax"`` (y), in 3D ``"zmin"``/``"zmax"`` (z), and
 ``"boundary"`` for all of them.  Vertices are numbered lexicographically
 (x fastest), so cells come out sorted by their smallest vertex.
 """
@@ -72,7 +72,7 @@ def _check_box(name, lower, upper, dim):
 
 def _tag_box(mesh, lower, upper, spacing):
     tol = 1e-8 * float(np.min(spacing))
-    names = [("left", "right"), ("bottom", "top"), ("front", "back")]
+    names = [("xmin", "xmax"), ("ymin", "ymax"), ("zmin", "zmax")]
     x = mesh.facet_midpoints()
     for axis in range(mesh.dim):
         for side, value in zip(names[axis], (lower[axis], upper[axis])):
@@ -122,7 +122,7 @@ def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0), *, regions=
     Examples
     --------
     >>> m = structured_triangles(2, 3)
-    >>> m.n_vertices, m.n_cells, len(m.facet_tags["boundary"])
+    >>> m.n_vertices, m.n_cells, len(m.facet_groups["boundary"])
     (12, 12, 10)
     """
     _check_counts("structured_triangles", (nx, ny))
@@ -202,8 +202,8 @@ def l_shaped_triangles(n, *, regions=None, region_names=None) -> Mesh:
 
     Structured triangles of size ``1/n`` on each of the three unit squares.
     ``regions``/``region_names`` as in :meth:`Mesh.set_regions`.
-    Tags: ``"left"`` (x = -1), ``"right"`` (x = 1), ``"bottom"`` (y = -1),
-    ``"top"`` (y = 1), ``"reentrant"`` (the two edges meeting at the
+    Tags: ``"xmin"`` (x = -1), ``"xmax"`` (x = 1), ``"ymin"`` (y = -1),
+    ``"ymax"`` (y = 1), ``"reentrant"`` (the two edges meeting at the
     re-entrant corner (0, 0)) and ``"boundary"``.
 
     Examples
@@ -223,12 +223,12 @@ def l_shaped_triangles(n, *, regions=None, region_names=None) -> Mesh:
     x = mesh.facet_midpoints()
     tol = 1e-8 / n
     sides = {
-        "left": np.abs(x[0] + 1) <= tol,
-        "right": np.abs(x[0] - 1) <= tol,
-        "bottom": np.abs(x[1] + 1) <= tol,
-        "top": np.abs(x[1] - 1) <= tol,
+        "xmin": np.abs(x[0] + 1) <= tol,
+        "xmax": np.abs(x[0] - 1) <= tol,
+        "ymin": np.abs(x[1] + 1) <= tol,
+        "ymax": np.abs(x[1] - 1) <= tol,
     }
-    sides["reentrant"] = ~(sides["left"] | sides["right"] | sides["bottom"] | sides["top"])
+    sides["reentrant"] = ~(sides["xmin"] | sides["xmax"] | sides["ymin"] | sides["ymax"])
     for name, mask in sides.items():
         mesh.set_facet_tag(name, np.flatnonzero(mask))
     mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))

@@ -524,7 +524,7 @@ class Mesh:
     cells : array_like, shape (n_cells, d + 1), integer
         Vertex indices of each cell.  Negatively oriented cells are
         re-oriented (two vertices swapped) and counted in ``n_reoriented``.
-    facet_tags : dict, optional
+    facet_groups : dict, optional
         ``name -> boundary facet ids`` to start with.
     regions : array_like (n_cells,), callable or dict, optional
         Cell regions (materials); see :meth:`set_regions`.  Without them the
@@ -550,7 +550,7 @@ class Mesh:
         ``read_mesh(path, merge_duplicates=True)``), a facet
         shared by more than two cells, two cells on the same side of their
         shared facet (a folded mesh: an inverted cell overlapping its
-        neighbour), or ``facet_tags`` that is not a dict of valid ids.  The
+        neighbour), or ``facet_groups`` that is not a dict of valid ids.  The
         message names the first offending vertex or cell.
 
     Examples
@@ -562,15 +562,15 @@ class Mesh:
     (4, 2)
     """
 
-    def __init__(self, points, cells, *, facet_tags=None, check_coincident=True, regions=None,
+    def __init__(self, points, cells, *, facet_groups=None, check_coincident=True, regions=None,
                  region_names=None):
         p = _as_points(points)
         n, d = p.shape
         c, used = _cells_and_use(cells, n, d)
-        if facet_tags is not None and not hasattr(facet_tags, "items"):
+        if facet_groups is not None and not hasattr(facet_groups, "items"):
             raise MeshError(
-                f"mesh facet_tags must be a dict of name -> boundary facet ids, got "
-                f"{type(facet_tags).__name__}")
+                f"mesh facet_groups must be a dict of name -> boundary facet ids, got "
+                f"{type(facet_groups).__name__}")
         if not used.all():
             unused = np.flatnonzero(used == 0)
             raise MeshError(
@@ -611,7 +611,7 @@ class Mesh:
         self.points = p
         self.cells = c
         self.cell_volumes = vol
-        self.facet_tags = {}
+        self.facet_groups = {}
         self.set_regions(np.zeros(c.shape[0], dtype=np.int32) if regions is None else regions,
                          {DEFAULT_REGION: 0} if regions is None else region_names)
         # hierarchy, filled in by refine_uniform
@@ -620,8 +620,8 @@ class Mesh:
         self.vertex_parents = None
         self.refinement_cells = None
         _ = self._facet_topology  # validates manifoldness
-        if facet_tags:
-            for name, ids in facet_tags.items():
+        if facet_groups:
+            for name, ids in facet_groups.items():
                 self.set_facet_tag(name, ids)
 
     # -- basic properties ----------------------------------------------------
@@ -644,7 +644,7 @@ class Mesh:
     def __repr__(self) -> str:
         reg = "" if len(self.region_names) == 1 else f", regions {list(self.region_names)}"
         return (f"Mesh({self.n_vertices} vertices, {self.n_cells} {self.cell_type}s, "
-                f"tags {sorted(self.facet_tags)}{reg})")
+                f"tags {sorted(self.facet_groups)}{reg})")
 
     # -- topology -------------------------------------------------------------
     @cached_property
@@ -730,7 +730,7 @@ class Mesh:
             )
         ids = np.unique(ids).astype(np.int64)
         ids.flags.writeable = False
-        self.facet_tags[name] = ids
+        self.facet_groups[name] = ids
         return ids
 
     def tag_boundary(self, name: str, predicate) -> np.ndarray:
@@ -783,11 +783,11 @@ class Mesh:
 
     def tagged_facets(self, tag: str) -> np.ndarray:
         """Facet ids of ``tag``; a clear error naming the known tags if missing."""
-        if not isinstance(tag, str) or tag not in self.facet_tags:
+        if not isinstance(tag, str) or tag not in self.facet_groups:
             raise MeshError(
-                f"mesh has no facet tag {tag!r}; known tags: {sorted(self.facet_tags)}"
+                f"mesh has no facet tag {tag!r}; known tags: {sorted(self.facet_groups)}"
             )
-        return self.facet_tags[tag]
+        return self.facet_groups[tag]
 
     # -- regions -----------------------------------------------------------------
     def set_regions(self, regions, names=None):

@@ -10,8 +10,8 @@ Solves ``-div(kappa grad u) = f`` in the domain with, per facet tag,
   ``alpha u_ext`` to the load) -- for example convective cooling with heat
   transfer coefficient alpha and ambient temperature u_ext.
 
-Untagged boundary is insulated (zero Neumann).  Two conditions on tags that
-share facets are refused (:func:`conflicting_conditions`) unless they are the
+Untagged boundary gets the homogeneous Neumann condition (no flux).  Two
+conditions on tags that share facets are refused (:func:`conflicting_conditions`) unless they are the
 same condition (same kind, same value); tags that meet only at a vertex or an
 edge of a facet are fine, and where Dirichlet tags share such dofs the tag
 given later wins.  A connected component of the mesh without
@@ -146,10 +146,10 @@ class PoissonProblem:
         for kind, table in (("dirichlet", self.dirichlet), ("neumann", self.neumann),
                             ("robin", self.robin)):
             for tag in table:
-                if not isinstance(tag, str) or tag not in mesh.facet_tags:
+                if not isinstance(tag, str) or tag not in mesh.facet_groups:
                     raise ProblemError(
                         f"{kind} condition on tag {tag!r}, but the mesh has no such facet tag; "
-                        f"known tags: {sorted(mesh.facet_tags)}")
+                        f"known tags: {sorted(mesh.facet_groups)}")
         for tag, value in self.robin.items():
             if not (isinstance(value, (tuple, list)) and len(value) == 2):
                 raise ProblemError(f"robin[{tag!r}] must be a pair (alpha, u_ext), got {value!r}")
@@ -486,10 +486,10 @@ def conflicting_conditions(mesh, conditions, same=_same_value):
     --------
     >>> from galerkit import structured_triangles
     >>> m = structured_triangles(4, 4)
-    >>> conflicting_conditions(m, [("dirichlet", "left", 1.0),
+    >>> conflicting_conditions(m, [("dirichlet", "xmin", 1.0),
     ...                            ("dirichlet", "boundary", 0.0)])
     (0, 1, 4)
-    >>> conflicting_conditions(m, [("dirichlet", "left", 0.0),
+    >>> conflicting_conditions(m, [("dirichlet", "xmin", 0.0),
     ...                            ("dirichlet", "boundary", 0.0)]) is None
     True
     """

@@ -65,7 +65,7 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     --------
     >>> from galerkit import structured_triangles
     >>> fine = refine_uniform(structured_triangles(2, 2))
-    >>> fine.n_cells, fine.n_vertices, len(fine.facet_tags["left"])
+    >>> fine.n_cells, fine.n_vertices, len(fine.facet_groups["xmin"])
     (32, 25, 4)
     """
     if not isinstance(mesh, Mesh):
@@ -104,7 +104,7 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     fine.refinement_cells = children
     for a in (fine.parent_cells, fine.vertex_parents, fine.refinement_cells):
         a.flags.writeable = False
-    if mesh.facet_tags:
+    if mesh.facet_groups:
         _carry_tags(mesh, fine, parents, n_children)
     return fine
 
@@ -144,7 +144,7 @@ def _carry_tags(coarse: Mesh, fine: Mesh, vertex_parents, n_children):
         raise RuntimeError("refine_uniform: a child boundary facet has no parent boundary "
                            "facet (internal error; please report with the mesh)")
     in_tag = np.zeros(coarse.boundary_facets.shape[0], dtype=bool)
-    for name, ids in coarse.facet_tags.items():
+    for name, ids in coarse.facet_groups.items():
         in_tag[:] = False
         in_tag[ids] = True
         sel = np.flatnonzero(in_tag[coarse_facet])

@@ -181,7 +181,7 @@ def module_imports():
     """module name -> set of galerkit modules it imports (kernel and bindings)."""
     deps = {}
     for folder, prefix in ((ROOT / "kernel", ""), (ROOT / "bindings", "bindings.")):
-        for f in folder.glob("*.py"):
+        for f in folder.rglob("*.py"):
             text = f.read_text()
             names = set(re.findall(r"from \.\.?(\w+) import", text))
             names |= set(re.findall(r"from galerkit\.(\w+) import", text))

@@ -121,10 +121,10 @@ def test_boundary_facets_are_the_facets_of_their_cells_opposite_the_local_vertex
 def _box_tag_sizes(counts):
     if len(counts) == 2:
         nx, ny = counts
-        return {"left": ny, "right": ny, "bottom": nx, "top": nx}
+        return {"xmin": ny, "xmax": ny, "ymin": nx, "ymax": nx}
     nx, ny, nz = counts
-    return {"left": 2 * ny * nz, "right": 2 * ny * nz, "bottom": 2 * nx * nz,
-            "top": 2 * nx * nz, "front": 2 * nx * ny, "back": 2 * nx * ny}
+    return {"xmin": 2 * ny * nz, "xmax": 2 * ny * nz, "ymin": 2 * nx * nz,
+            "ymax": 2 * nx * nz, "zmin": 2 * nx * ny, "zmax": 2 * nx * ny}
 
 
 @pytest.mark.parametrize("counts", [(3, 2), (2, 3, 1)])
@@ -136,10 +136,10 @@ def test_side_tags_have_the_right_sizes_and_lie_on_their_side(counts):
     else:
         mesh = structured_tetrahedra(*counts, lower, upper)
     sizes = _box_tag_sizes(counts)
-    sides = [("left", "right"), ("bottom", "top"), ("front", "back")]
+    sides = [("xmin", "xmax"), ("ymin", "ymax"), ("zmin", "zmax")]
     for axis in range(mesh.dim):
         for name, value in zip(sides[axis], (lower[axis], upper[axis])):
-            ids = mesh.facet_tags[name]
+            ids = mesh.facet_groups[name]
             assert len(ids) == sizes[name], name
             x = mesh.points[mesh.boundary_facets[ids]]  # (k, d, dim)
             np.testing.assert_allclose(x[..., axis], value, rtol=0, atol=1e-14)
@@ -149,9 +149,9 @@ def test_side_tags_have_the_right_sizes_and_lie_on_their_side(counts):
 def test_side_tags_partition_the_boundary_and_boundary_tag_covers_it(name):
     mesh = MESHES[name][0]()
     k = mesh.boundary_facets.shape[0]
-    np.testing.assert_array_equal(mesh.facet_tags["boundary"], np.arange(k))
-    sides = [t for t in mesh.facet_tags if t != "boundary"]
-    ids = np.concatenate([mesh.facet_tags[t] for t in sides])
+    np.testing.assert_array_equal(mesh.facet_groups["boundary"], np.arange(k))
+    sides = [t for t in mesh.facet_groups if t != "boundary"]
+    ids = np.concatenate([mesh.facet_groups[t] for t in sides])
     assert len(ids) == k, "side tags overlap or miss facets"
     np.testing.assert_array_equal(np.sort(ids), np.arange(k))
 
@@ -159,9 +159,9 @@ def test_side_tags_partition_the_boundary_and_boundary_tag_covers_it(name):
 def test_l_shape_tags_include_the_two_reentrant_edges_meeting_at_the_origin():
     n = 3
     mesh = l_shaped_triangles(n)
-    sizes = {"left": 2 * n, "right": n, "bottom": n, "top": 2 * n, "reentrant": 2 * n}
-    assert {t: len(mesh.facet_tags[t]) for t in sizes} == sizes
-    x = mesh.points[mesh.boundary_facets[mesh.facet_tags["reentrant"]]]
+    sizes = {"xmin": 2 * n, "xmax": n, "ymin": n, "ymax": 2 * n, "reentrant": 2 * n}
+    assert {t: len(mesh.facet_groups[t]) for t in sizes} == sizes
+    x = mesh.points[mesh.boundary_facets[mesh.facet_groups["reentrant"]]]
     on_x0 = np.all(np.abs(x[..., 0]) < 1e-14, axis=1) & np.all(x[..., 1] <= 1e-14, axis=1)
     on_y0 = np.all(np.abs(x[..., 1]) < 1e-14, axis=1) & np.all(x[..., 0] >= -1e-14, axis=1)
     assert np.all(on_x0 | on_y0)
@@ -172,9 +172,9 @@ def test_tag_boundary_selects_facets_whose_midpoints_satisfy_the_predicate():
     mesh = structured_triangles(4, 3)
     ids = mesh.tag_boundary("outlet", lambda x: x[0] > 1 - 1e-12)
     assert len(ids) == 3
-    np.testing.assert_array_equal(mesh.facet_tags["outlet"], ids)
+    np.testing.assert_array_equal(mesh.facet_groups["outlet"], ids)
     np.testing.assert_allclose(mesh.facet_midpoints(ids)[0], 1.0)
-    np.testing.assert_array_equal(ids, mesh.facet_tags["right"])
+    np.testing.assert_array_equal(ids, mesh.facet_groups["xmax"])
     # replacing a tag of the same name
     ids2 = mesh.tag_boundary("outlet", lambda x: (x[0] > 1 - 1e-12) & (x[1] < 0.6))
     assert len(ids2) == 2 and len(mesh.tagged_facets("outlet")) == 2

@@ -122,7 +122,7 @@ def test_region_source_equals_the_same_field_by_formula():
 def test_uncovered_or_unknown_regions_are_named(table, match):
     m = structured_triangles(4, 2, regions={"steel": left_half})
     with pytest.raises(InputError, match=match):
-        PoissonProblem(m, conductivity=table, dirichlet={"left": 0.0})
+        PoissonProblem(m, conductivity=table, dirichlet={"xmin": 0.0})
 
 
 def test_region_values_are_validated_per_cell():
