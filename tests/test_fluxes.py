@@ -24,7 +24,7 @@ def wall_exact(x):
 
 def wall_problem(mesh):
     return PoissonProblem(mesh, conductivity={"steel": K1, "foam": K2},
-                          dirichlet={"left": T1, "right": T2})
+                          dirichlet={"xmin": T1, "xmax": T2})
 
 
 def regions_wall(mesh):
@@ -41,20 +41,20 @@ def test_composite_wall_flux_equals_the_series_resistance_formula(dim):
     assert np.abs(sol.u - wall_exact(mesh.points.T)).max() <= 1e-11 * T1
     area = 1.0
     for method in ("consistent", "gradient"):
-        q_in = sol.boundary_flux("left", method)
-        q_out = sol.boundary_flux("right", method)
+        q_in = sol.boundary_flux("xmin", method)
+        q_out = sol.boundary_flux("xmax", method)
         assert q_in == pytest.approx(Q_WALL * area, rel=1e-12)
         assert q_out == pytest.approx(-Q_WALL * area, rel=1e-12)
         assert sol.interface_flux("steel/foam", method) == pytest.approx(Q_WALL, rel=1e-12)
         assert sol.interface_flux("foam/steel", method) == pytest.approx(-Q_WALL, rel=1e-12)
-    assert sol.boundary_flux("top") == 0.0
+    assert sol.boundary_flux("ymax") == 0.0
 
 
 def test_region_statistics_of_the_composite_wall():
     mesh = regions_wall(structured_triangles(10, 3))
     sol = PoissonProblem(mesh, conductivity={"steel": K1, "foam": K2},
                          source={"steel": 0.0, "foam": 0.0},
-                         dirichlet={"left": T1, "right": T2}).solve(method="direct")
+                         dirichlet={"xmin": T1, "xmax": T2}).solve(method="direct")
     steel, foam = sol.region_statistics()
     assert (steel.name, steel.n_cells, foam.name, foam.n_cells) == ("steel", 24, "foam", 36)
     assert steel.volume == pytest.approx(L1, rel=1e-14) and foam.volume == pytest.approx(L2)
@@ -71,7 +71,7 @@ def test_region_source_integrals():
     # integrals 3 * 0.4 = 1.2 and 0.6 * (2 + 1/2) = 1.5 (exact arithmetic)
     mesh = regions_wall(structured_triangles(10, 4))
     sol = PoissonProblem(mesh, source={"steel": 3.0, "foam": lambda x: 2 + x[1]},
-                         dirichlet={"left": 0.0}).solve(degree=2, method="direct")
+                         dirichlet={"xmin": 0.0}).solve(degree=2, method="direct")
     steel, foam = sol.region_statistics()
     assert steel.source == pytest.approx(1.2, rel=1e-13)
     assert foam.source == pytest.approx(1.5, rel=1e-13)
@@ -116,26 +116,26 @@ def test_consistent_fluxes_of_all_tags_sum_to_minus_the_source(degree):
     mesh = structured_triangles(8, 6)
     sol = PoissonProblem(
         mesh, conductivity=lambda x: 1 + x[0] ** 2, source=lambda x: 1 + x[0] * x[1],
-        dirichlet={"left": lambda x: x[1]}, neumann={"top": lambda x: np.sin(x[0])},
-        robin={"right": (3.0, lambda x: 2 + x[1])}).solve(degree=degree, method="direct")
-    total = sum(sol.boundary_flux(t) for t in ("left", "top", "right", "bottom"))
+        dirichlet={"xmin": lambda x: x[1]}, neumann={"ymax": lambda x: np.sin(x[0])},
+        robin={"xmax": (3.0, lambda x: 2 + x[1])}).solve(degree=degree, method="direct")
+    total = sum(sol.boundary_flux(t) for t in ("xmin", "ymax", "xmax", "ymin"))
     assert abs(total + 1.25) <= 1e-12
     hb = sol.heat_balance()
     assert hb.source == pytest.approx(1.25, rel=1e-14)
     assert abs(hb.imbalance) <= 1e-12 and hb.relative <= 1e-13
-    assert set(hb.flows) == {"left", "top", "right"}
+    assert set(hb.flows) == {"xmin", "ymax", "xmax"}
     # the Neumann flux is the given one: integral of sin x over (0, 1) = 1 - cos 1,
     # by the facet rule of degree 2k + 1
-    assert sol.boundary_flux("top") == pytest.approx(1 - np.cos(1.0), rel=1e-6)
-    assert sol.boundary_flux("bottom") == 0.0
+    assert sol.boundary_flux("ymax") == pytest.approx(1 - np.cos(1.0), rel=1e-6)
+    assert sol.boundary_flux("ymin") == 0.0
 
 
 def test_balance_with_regions_and_two_dirichlet_tags_in_3d():
     mesh = structured_tetrahedra(2, 2, 4, regions={"core": lambda x: x[2] < 0.5})
     sol = PoissonProblem(mesh, conductivity={"core": 5.0, "domain": np.diag([1.0, 2.0, 3.0])},
                          source={"core": lambda x: 1 + x[0], "domain": 2.0},
-                         dirichlet={"front": 0.0, "back": 1.0},
-                         robin={"left": (2.0, 0.5)}).solve(degree=2, method="direct")
+                         dirichlet={"zmin": 0.0, "zmax": 1.0},
+                         robin={"xmin": (2.0, 0.5)}).solve(degree=2, method="direct")
     # integral of the source: (1 + 1/2) / 2 + 2 / 2 = 1.75 (exact)
     hb = sol.heat_balance()
     assert hb.source == pytest.approx(1.75, rel=1e-13)
@@ -157,11 +157,11 @@ def test_balance_with_regions_and_two_dirichlet_tags_in_3d():
 
 
 def test_flux_errors_name_the_cause():
-    sol = PoissonProblem(structured_triangles(2, 2), dirichlet={"left": 0.0}).solve()
+    sol = PoissonProblem(structured_triangles(2, 2), dirichlet={"xmin": 0.0}).solve()
     with pytest.raises(MeshError, match="no facet tag 'inlet'"):
         sol.boundary_flux("inlet")
     with pytest.raises(InputError, match="flux method"):
-        sol.boundary_flux("left", "average")
+        sol.boundary_flux("xmin", "average")
     with pytest.raises(InputError, match="no interface 'a/b'.*none"):
         sol.interface_flux("a/b")
 
