@@ -331,6 +331,8 @@ def worst_cells(mesh, quality, n) -> list:
 
 
 def _mesh_info(args) -> int:
+    from galerkit.regions import region_summary
+
     from ..files import read_mesh
 
     with warnings.catch_warnings(record=True) as caught:
@@ -347,6 +349,9 @@ def _mesh_info(args) -> int:
             "vertices": mesh.n_vertices, "boundary_facets": int(mesh.boundary_facets.shape[0]),
             "reoriented_cells": mesh.n_reoriented,
             "tags": {k: int(len(v)) for k, v in mesh.facet_groups.items()},
+            "regions": {name: {"id": i, "cells": n, "volume": vol}
+                        for name, i, n, vol in region_summary(mesh)},
+            "interfaces": {k: len(v) for k, v in mesh.interfaces.items()},
             "volume": float(mesh.cell_volumes.sum()),
             "min_shape_quality": q.min_shape_quality, "mean_shape_quality": q.mean_shape_quality,
             "quality_quantiles": quantiles, "worst_cells": worst, "warnings": notes}
@@ -360,6 +365,10 @@ def _mesh_info(args) -> int:
         say.result(f"  {mesh.n_reoriented} cells were negatively oriented and re-oriented")
     for k, v in info["tags"].items():
         say.result(f"  tag {k!r}: {v} facets")
+    for k, v in info["regions"].items():
+        say.result(f"  region {k!r} (id {v['id']}): {v['cells']} cells, volume {v['volume']:.6g}")
+    for k, v in info["interfaces"].items():
+        say.result(f"  interface {k!r}: {v} interior facets")
     for n in notes:
         say.result(f"  warning: {n}")
     say.result(f"  shape quality min {q.min_shape_quality:.3f}, mean {q.mean_shape_quality:.3f}")
@@ -403,6 +412,14 @@ def _apply_overrides(args, opts):
         changes["plot"] = True
     if getattr(args, "mesh_overlay", False):
         changes["mesh_overlay"] = True
+    if getattr(args, "slice", None):
+        from galerkit.sections import parse_plane
+
+        changes["slices"] = [parse_plane(t) for t in args.slice]
+    if getattr(args, "isolines", None) is not None:
+        if not 0 <= args.isolines <= 100:
+            raise InputError(f"--isolines must be 0 to 100, got {args.isolines}")
+        changes["isolines"] = args.isolines
     return replace(opts, **changes)
 
 
@@ -454,8 +471,9 @@ def _solve(args) -> int:
                          "(under mpiexec) or remove it")
     from galerkit.errors import InputError
     from ..files import write_solution
-    from ..files.plots import plot_field
+    from ..files.plots import plot_field, plot_slices
     from .problemfile import load_problem
+    from .quantities import quantity_lines, solution_quantities, write_probes_csv
 
     bar = _progress(args, 4, "solve")
 
@@ -487,9 +505,10 @@ def _solve(args) -> int:
         step("write")
         rep = sol.report
         outputs = []
+        quantities = None
         t1 = time.perf_counter()
         if not rep.converged:
-            notes.append("no files written: the solver did not converge")
+            notes.append("no files written and no fluxes: the solver did not converge")
         else:
             if opts.vtu or opts.plot:
                 folder = _folder(opts.folder)
@@ -500,10 +519,16 @@ def _solve(args) -> int:
                 outputs.append(plot_field(folder / f"{opts.stem}.png", sol,
                                           title=opts.title or opts.stem, units=label,
                                           show_mesh=opts.mesh_overlay,
-                                          length_unit=opts.length_unit))
+                                          length_unit=opts.length_unit,
+                                          isolines=opts.isolines))
             elif opts.plot:
-                notes.append("plot skipped: PNG pictures are drawn for 2D solutions only; "
-                             "open the VTU file in a viewer such as ParaView")
+                outputs += plot_slices(folder / f"{opts.stem}.png", sol, opts.slices,
+                                       title=opts.title or opts.stem, units=opts.units,
+                                       name=opts.name, length_unit=opts.length_unit)
+            quantities = solution_quantities(sol, opts)
+            if quantities["probes"]:
+                outputs.append(write_probes_csv(_folder(opts.folder) / f"{opts.stem}-probes.csv",
+                                                quantities, opts))
         write_seconds = time.perf_counter() - t1
         step("done")
     finally:
@@ -530,7 +555,10 @@ def _solve(args) -> int:
         "field": {"name": opts.name, "min": float(sol.u.min()), "max": float(sol.u.max()),
                   "units": opts.units},
         "errors": errors, "outputs": [str(p) for p in outputs], "notes": notes,
+        "regions": {n: i for n, i in mesh.region_names.items()},
     }
+    if quantities is not None:
+        info.update(quantities)
     code = 0 if rep.converged else 1
     if args.json:
         _print_json({**info, "caution": CAUTION})
@@ -545,6 +573,9 @@ def _solve(args) -> int:
                f"{rep.final_residual:.2e} (rtol {opts.rtol:g}), {status}")
     _seconds_lines(say, seconds)
     say.result(f"  peak memory {info['peak_rss_mb']:.0f} MB (peak resident set size)")
+    if quantities is not None:
+        for line in quantity_lines(quantities, opts):
+            say.result(line)
     _report_tail(say, opts, info["field"]["min"], info["field"]["max"], errors,
                  [str(p) for p in outputs], notes)
     return code
@@ -1007,7 +1038,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--maxiter", type=int, help="iteration limit of iterative solvers")
     s.add_argument("--output", help="output folder (default: [output] folder, else "
                    "galerkit-out)")
-    s.add_argument("--plot", action="store_true", help="also write a PNG (2D only)")
+    s.add_argument("--plot", action="store_true",
+                   help="also write PNG pictures (2D: the field; 3D: slices)")
+    s.add_argument("--slice", action="append", metavar="AXIS=VALUE",
+                   help="a slice plane of the 3D pictures, e.g. x=0.5 (repeatable; default "
+                        "the three mid-planes)")
+    s.add_argument("--isolines", type=int, metavar="N", help="contour lines on the 2D picture")
     s.add_argument("--mesh-overlay", action="store_true", help="draw the mesh on the PNG")
     s.add_argument("--engine", choices=["serial", "petsc"], default="serial",
                    help="serial (default), or petsc: the distributed engine, run under "

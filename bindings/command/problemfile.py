@@ -11,15 +11,20 @@ The schema is documented in the README section "Problem files"; in short::
     title = "..."                      # optional
     [constants]   name = number, ...   # usable in every formula
     [mesh]        file = "part.msh" | generator = "square" | "box" | "l-shape",
-                  cells, lower, upper, refine, merge_duplicates (files only)
+                  cells, lower, upper, refine, merge_duplicates (files only),
+                  regions = { name = "condition", ... } (generators only; a file
+                  brings its cell groups as regions)
     [discretization]  degree = 1..4
     [material]    conductivity = number | "formula" | [[kxx, kxy], [kxy, kyy]]
-    [source]      value = number | "formula"
+                  | { region = one of those, ..., default = ... }
+    [source]      value = number | "formula" | { region = number | "formula", ... }
     [[boundary]]  tag = "name", kind = "dirichlet" (u) | "neumann" (inflow)
                   | "robin" (exchange, u_outside); untagged facets:
                   homogeneous Neumann
     [solver]      method = "auto" | registered name, rtol, maxiter
-    [output]      folder, name, vtu, plot, mesh_overlay, units, length_unit
+    [output]      folder, name, vtu, plot, mesh_overlay, units, length_unit,
+                  fluxes = ["group" | "a/b", ...], gradient_flux, probes = [[x, y], ...],
+                  slices = ["x=0.5", ...] (3D), isolines = N (2D)
     [exact]       solution = "formula", gradient = ["d/dx", "d/dy", ...]
 
 :func:`load_problem` reads and checks the whole file -- including reading the
@@ -86,13 +91,15 @@ __all__ = ["load_problem", "parse_problem", "ProblemSpec", "RunOptions", "Bounda
 SECTIONS = {
     "title": None,
     "constants": None,  # any names
-    "mesh": ("file", "generator", "cells", "lower", "upper", "refine", "merge_duplicates"),
+    "mesh": ("file", "generator", "cells", "lower", "upper", "refine", "merge_duplicates",
+             "regions"),
     "discretization": ("degree",),
     "material": ("conductivity",),
     "source": ("value",),
     "boundary": ("tag", "kind", "u", "inflow", "exchange", "u_outside"),
     "solver": ("method", "rtol", "maxiter"),
-    "output": ("folder", "name", "vtu", "plot", "mesh_overlay", "units", "length_unit"),
+    "output": ("folder", "name", "vtu", "plot", "mesh_overlay", "units", "length_unit",
+               "fluxes", "gradient_flux", "probes", "slices", "isolines"),
     "exact": ("solution", "gradient"),
 }
 
@@ -158,6 +165,17 @@ class RunOptions:
         Exact solution, ``exact(x)`` with ``x`` (dim, n) -> (n,).
     exact_gradient : callable or None
         ``exact_gradient(x)`` -> (dim, n).
+    fluxes : list of str or None
+        Facet groups and region interfaces (``"a/b"``) whose heat flow the
+        report gives; None: every group with a condition.
+    gradient_flux : bool
+        Also report the gradient flux beside the consistent one.
+    probes : ndarray (n, dim) or None
+        Points whose values the report and ``<stem>-probes.csv`` give.
+    slices : list of (axis, value) or None
+        Planes of the 3D pictures (default: the three mid-planes).
+    isolines : int
+        Contour lines on the 2D picture (0: none).
     """
 
     degree: int = 1
@@ -175,6 +193,11 @@ class RunOptions:
     title: str = ""
     exact: Any = None
     exact_gradient: Any = None
+    fluxes: Any = None
+    gradient_flux: bool = False
+    probes: Any = None
+    slices: Any = None
+    isolines: int = 0
 
 
 @dataclass
@@ -237,7 +260,10 @@ class ProblemSpec:
 
 
 def _kernel_value(v):
-    """Constants go to the kernel as floats (cheaper paths), formulas as callables."""
+    """Constants go to the kernel as floats (cheaper paths), formulas as callables;
+    a per-region table value by value."""
+    if isinstance(v, dict):
+        return {k: _kernel_value(x) for k, x in v.items()}
     if isinstance(v, Expression) and v.is_constant:
         return v.value
     return v
@@ -539,7 +565,7 @@ def parse_problem(data: dict, *, source: str = "<problem>", base=".", text: str 
         for k, v in data["constants"].items():
             constants[k] = r.number(v, ("constants", k))
     title = r.string(data["title"], ("title",)) if "title" in data else ""
-    mesh, description = _read_mesh_section(r, data["mesh"], base)
+    mesh, description = _read_mesh_section(r, data["mesh"], base, constants)
     dim = mesh.dim
     if constants:
         try:  # the expression reader checks the names (no x, y, z, pi, functions)
@@ -555,17 +581,20 @@ def parse_problem(data: dict, *, source: str = "<problem>", base=".", text: str 
     if "material" in data:
         t = r.table(data["material"], ("material",), SECTIONS["material"])
         if "conductivity" in t:
-            conductivity = _conductivity(r, t["conductivity"], dim, constants)
+            conductivity = _per_region(
+                r, t["conductivity"], ("material", "conductivity"), mesh,
+                lambda v, path: _conductivity(r, v, dim, constants, path))
     source_term = 0.0
     if "source" in data:
         t = r.table(data["source"], ("source",), SECTIONS["source"])
         if "value" in t:
-            source_term = r.formula(t["value"], ("source", "value"), dim, constants)
+            source_term = _per_region(r, t["value"], ("source", "value"), mesh,
+                                      lambda v, path: r.formula(v, path, dim, constants))
     boundary = _boundary_entries(r, data.get("boundary", []), mesh, dim, constants)
     if "solver" in data:
         _solver_section(r, data["solver"], opts)
     if "output" in data:
-        _output_section(r, data["output"], opts, base)
+        _output_section(r, data["output"], opts, base, mesh)
     if "exact" in data:
         _exact_section(r, data["exact"], opts, dim, constants)
     return ProblemSpec(source=source, data=data, mesh=mesh, mesh_description=description,
@@ -573,13 +602,16 @@ def parse_problem(data: dict, *, source: str = "<problem>", base=".", text: str 
                        options=opts, constants=constants)
 
 
-def _read_mesh_section(r: _Reader, t, base: Path):
+def _read_mesh_section(r: _Reader, t, base: Path, constants=None):
     from galerkit import refine_uniform
     from galerkit.generators import l_shaped_triangles, structured_tetrahedra, \
         structured_triangles
 
     t = r.table(t, ("mesh",), SECTIONS["mesh"])
     has_file, has_gen = "file" in t, "generator" in t
+    if has_file and "regions" in t:
+        r.fail(("mesh", "regions"), "applies to generated meshes only; a mesh file brings "
+               "its own regions (its cell groups)", "remove it, or use generator = ...")
     if has_file == has_gen:
         r.fail(("mesh",), "give exactly one of file and generator" if has_file else
                "neither file nor generator is given",
@@ -641,6 +673,15 @@ def _read_mesh_section(r: _Reader, t, base: Path):
                 mesh = structured_tetrahedra(*counts, lower, upper)
             description = (f"generator {gen}, {' x '.join(map(str, counts))} cells on "
                            f"{list(lower)}..{list(upper)}")
+    if "regions" in t:
+        preds = _region_predicates(r, t["regions"], mesh.dim, constants)
+        from galerkit.errors import MeshError
+
+        try:
+            mesh.set_regions(preds)
+        except MeshError as exc:
+            r.fail(("mesh", "regions"), str(exc))
+        description += f", regions {', '.join(mesh.region_names)}"
     for _ in range(refine):
         mesh = refine_uniform(mesh)
     if refine:
@@ -670,8 +711,63 @@ def _point(r: _Reader, t, key, dim, default):
     return [r.number(c, path) for c in v]
 
 
-def _conductivity(r: _Reader, v, dim, constants):
-    path = ("material", "conductivity")
+def _per_region(r: _Reader, v, path, mesh, read):
+    """A value, or a table ``{region: value}`` checked against the mesh's regions."""
+    if not isinstance(v, dict):
+        return read(v, path)
+    from galerkit.regions import DEFAULT_KEY
+
+    known = mesh.region_names
+    listing = ", ".join(repr(n) for n in known)
+    out = {}
+    for key, value in v.items():
+        if key != DEFAULT_KEY and key not in known:
+            near = difflib.get_close_matches(key, list(known), n=1)
+            r.fail(path + (key,), f"the mesh has no region {key!r}",
+                   (f"did you mean {near[0]!r}? " if near else "")
+                   + f"its regions are {listing} (or write {DEFAULT_KEY} = ... for the rest)")
+        out[key] = read(value, path + (key,))
+    missing = [n for n in known if n not in out]
+    if missing and DEFAULT_KEY not in out:
+        r.fail(path, f"no value for region(s) {', '.join(repr(n) for n in missing)} of the "
+               f"mesh (regions: {listing})",
+               f"give each a value, or {DEFAULT_KEY} = ... for the rest")
+    return out
+
+
+def _region_predicates(r: _Reader, t, dim, constants):
+    """``[mesh] regions = {name = "condition"}`` -> ``{name: predicate}``."""
+    path = ("mesh", "regions")
+    t = r.table(t, path, None)
+    if not t:
+        r.fail(path, "is empty", "write for example regions = { core = \"x < 0.5\" }")
+    out = {}
+    for name, cond in t.items():
+        if name in ("default", "domain"):
+            r.fail(path + (name,), f"{name!r} is reserved (the cells no condition selects "
+                   "form the region 'domain')", "choose another name")
+        if not isinstance(cond, str):
+            r.fail(path + (name,), f"must be a condition in double quotes, got "
+                   f"{_type_word(cond)}", "for example \"x < 0.5\"")
+        expr = r.formula(cond, path + (name,), dim, constants)
+        out[name] = _Condition(expr)
+    return out
+
+
+class _Condition:
+    """``x -> bool mask``: where a compiled formula is non-zero."""
+
+    def __init__(self, expr):
+        self.expr = expr
+
+    def __call__(self, x):
+        return np.asarray(self.expr(x)) != 0
+
+    def __repr__(self):
+        return f"condition({self.expr.text})"
+
+
+def _conductivity(r: _Reader, v, dim, constants, path=("material", "conductivity")):
     if isinstance(v, list):
         if len(v) != dim or not all(isinstance(row, list) and len(row) == dim for row in v):
             r.fail(path, f"as a tensor it needs {dim} rows of {dim} numbers",
@@ -782,8 +878,10 @@ def _solver_section(r: _Reader, t, opts: RunOptions):
         opts.maxiter = r.integer(t["maxiter"], ("solver", "maxiter"), 1)
 
 
-def _output_section(r: _Reader, t, opts: RunOptions, base: Path):
+def _output_section(r: _Reader, t, opts: RunOptions, base: Path, mesh=None):
     t = r.table(t, ("output",), SECTIONS["output"])
+    if mesh is not None:
+        _output_quantities(r, t, opts, mesh)
     if "folder" in t:
         f = Path(r.string(t["folder"], ("output", "folder")))
         opts.folder = f if f.is_absolute() else base / f
@@ -800,6 +898,76 @@ def _output_section(r: _Reader, t, opts: RunOptions, base: Path):
     for k in ("units", "length_unit"):
         if k in t:
             setattr(opts, k, r.string(t[k], ("output", k)))
+
+
+def _output_quantities(r: _Reader, t, opts: RunOptions, mesh):
+    """fluxes, gradient_flux, probes, slices, isolines of ``[output]``."""
+    dim = mesh.dim
+    if "fluxes" in t:
+        path = ("output", "fluxes")
+        v = t["fluxes"]
+        if not isinstance(v, list) or not v:
+            r.fail(path, f"must be a non-empty list of facet group or interface names, got "
+                   f"{_type_word(v)}", "for example fluxes = [\"xmin\", \"steel/foam\"]")
+        names = []
+        for name in v:
+            name = r.string(name, path)
+            if name not in mesh.facet_groups and not _is_interface(mesh, name):
+                groups = ", ".join(repr(g) for g in mesh.facet_groups)
+                itf = ", ".join(repr(i) for i in mesh.interfaces) or "none"
+                r.fail(path, f"{name!r} is neither a facet group nor an interface of the mesh",
+                       f"facet groups: {groups}; interfaces (either order): {itf}")
+            names.append(name)
+        opts.fluxes = names
+    if "gradient_flux" in t:
+        opts.gradient_flux = r.boolean(t["gradient_flux"], ("output", "gradient_flux"))
+    if "probes" in t:
+        path = ("output", "probes")
+        v = t["probes"]
+        if not isinstance(v, list) or not v or not all(
+                isinstance(p, list) and len(p) == dim for p in v):
+            r.fail(path, f"must be a list of points of {dim} coordinates",
+                   "for example probes = [" + ", ".join(["[0.5" + ", 0.5" * (dim - 1) + "]"])
+                   + "]")
+        pts = np.array([[r.number(c, path) for c in p] for p in v])
+        from galerkit.evaluation import locate_points
+
+        cells, _ = locate_points(mesh, np.ascontiguousarray(pts.T))
+        if (cells < 0).any():
+            i = int(np.flatnonzero(cells < 0)[0])
+            lo, hi = mesh.points.min(axis=0), mesh.points.max(axis=0)
+            r.fail(path, f"probe {i + 1} at {pts[i].tolist()} lies outside the mesh "
+                   f"(which spans {lo.tolist()} .. {hi.tolist()})",
+                   "move it inside, or remove it")
+        opts.probes = pts
+    if "slices" in t:
+        path = ("output", "slices")
+        if dim != 3:
+            r.fail(path, "applies to 3D meshes only", "remove it (2D pictures show the "
+                   "whole field)")
+        v = t["slices"]
+        if not isinstance(v, list) or not v:
+            r.fail(path, f"must be a non-empty list of planes, got {_type_word(v)}",
+                   "for example slices = [\"x=0.5\", \"z=0.1\"]")
+        from galerkit.sections import parse_plane
+
+        planes = []
+        for p in v:
+            try:
+                planes.append(parse_plane(r.string(p, path)))
+            except InputError as exc:
+                r.fail(path, str(exc))
+        opts.slices = planes
+    if "isolines" in t:
+        if dim != 2:
+            r.fail(("output", "isolines"), "applies to 2D meshes only", "remove it")
+        opts.isolines = r.integer(t["isolines"], ("output", "isolines"), 0, 100)
+
+
+def _is_interface(mesh, name):
+    parts = name.split("/")
+    return name in mesh.interfaces or (
+        len(parts) == 2 and f"{parts[1]}/{parts[0]}" in mesh.interfaces)
 
 
 def _exact_section(r: _Reader, t, opts: RunOptions, dim, constants):

@@ -297,6 +297,10 @@ class LocalPart:
     facet_groups : dict
         ``tag -> (local cell, local facet)`` pairs of the rank's tagged
         boundary facets, shape (k, 2).
+    regions : ndarray (n_local_cells,), int32
+        The cells' region ids (as in the global mesh).
+    region_names : dict
+        ``name -> id`` of the regions the rank's cells belong to.
     """
 
     rank: int
@@ -313,6 +317,8 @@ class LocalPart:
     row_range: tuple
     n_global: int
     facet_groups: dict
+    regions: np.ndarray = None
+    region_names: dict = None
 
     @property
     def n_ghosts(self) -> int:
@@ -359,7 +365,10 @@ def local_part(disc, layout: DofLayout, rank: int, fixed_values=None) -> LocalPa
         owned=layout.owner[dofs] == rank, fixed=layout.fixed[dofs].copy(),
         fixed_values=values, global_index=layout.global_index[dofs],
         row_range=(int(layout.offsets[rank]), int(layout.offsets[rank + 1])),
-        n_global=layout.n_global, facet_groups=tags)
+        n_global=layout.n_global, facet_groups=tags,
+        regions=np.ascontiguousarray(mesh.regions[cells]),
+        region_names={n: i for n, i in mesh.region_names.items()
+                      if i in set(np.unique(mesh.regions[cells]).tolist())})
 
 
 # ----------------------------------------------------------------------------

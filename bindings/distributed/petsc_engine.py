@@ -283,7 +283,13 @@ class DistributedSolution:
 # the problem's data, cut per rank
 # ----------------------------------------------------------------------------
 def _cut(value, n_cells, n_dofs, cells, dofs, name):
-    """Per-cell and per-dof arrays restricted to a rank; other values unchanged."""
+    """Per-cell and per-dof arrays restricted to a rank; per-region values to the
+    rank's regions (``{id: value}``); other values unchanged."""
+    from galerkit.regions import RegionCoefficient
+
+    if isinstance(value, RegionCoefficient):
+        present = set(np.unique(value.regions[cells]).tolist())
+        return {i: v for i, v in value.by_id.items() if i in present}
     if callable(value) or value is None:
         return value
     a = np.asarray(value)
@@ -309,7 +315,7 @@ def _check_problem_data(problem, n_dofs):
         value = getattr(problem, name)
         _cut(value, m, n_dofs, none, none, name)  # shape check only
         if not isinstance(value, np.ndarray):
-            sendable[name] = value
+            sendable[name] = getattr(value, "by_id", value)  # per region: the values only
     for kind in ("neumann", "robin"):
         for t, v in getattr(problem, kind).items():
             for x in (v if kind == "robin" else (v,)):
@@ -387,7 +393,8 @@ def _local_mesh(part, dim):
     from galerkit import Mesh
     from galerkit.elements import REFERENCE_FACETS
 
-    mesh = Mesh(part.points, part.local_cells)
+    mesh = Mesh(part.points, part.local_cells, regions=part.regions,
+                region_names=part.region_names if part.regions is not None else None)
     if part.points.shape[1] != dim:
         raise SolverError("local mesh of another dimension")
     nf = len(REFERENCE_FACETS[dim])

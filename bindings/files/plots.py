@@ -1,4 +1,4 @@
-"""PNG pictures: 2D fields, convergence plots, residual histories.
+"""PNG pictures: 2D fields (optional isolines), 3D slices, convergence plots, residual histories.
 
 matplotlib with the Agg backend (no screen needed).  Every picture is
 written atomically (a temporary sibling, then a rename).
@@ -17,7 +17,8 @@ from galerkit.errors import InputError  # noqa: E402
 
 from .readwrite import sample_solution, write_atomically  # noqa: E402
 
-__all__ = ["plot_field", "plot_convergence", "plot_residuals", "PNG_SIGNATURE"]
+__all__ = ["plot_field", "plot_slices", "plot_convergence", "plot_residuals", "PNG_SIGNATURE",
+           "default_slices", "slice_path"]
 
 #: The first eight bytes of every PNG file (PNG specification, section 5.2).
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
@@ -32,7 +33,7 @@ def _save(fig, path):
 
 
 def plot_field(path, solution, *, title="", units="", show_mesh=False, length_unit="",
-               refinements=None):
+               refinements=None, isolines=0):
     """Colour picture (tripcolor) of a 2D solution with a colour bar.
 
     Parameters
@@ -52,6 +53,8 @@ def plot_field(path, solution, *, title="", units="", show_mesh=False, length_un
         Unit of the axes, for example ``"m"``.
     refinements : int, optional
         Override the refinements of the drawing mesh.
+    isolines : int
+        Number of contour lines drawn on top (0: none).
 
     Returns
     -------
@@ -74,6 +77,9 @@ def plot_field(path, solution, *, title="", units="", show_mesh=False, length_un
     if show_mesh:
         ax.triplot(mesh.points[:, 0], mesh.points[:, 1], mesh.cells, lw=0.3, color="w",
                    alpha=0.6)
+    if isolines and float(np.ptp(s.values)) > 0:
+        ax.tricontour(fine.points[:, 0], fine.points[:, 1], fine.cells, s.values,
+                      levels=int(isolines), colors="k", linewidths=0.6)
     cb = fig.colorbar(tpc, ax=ax)
     if units:
         cb.set_label(units)
@@ -143,3 +149,87 @@ def plot_residuals(path, histories, *, title="", rtol=None):
     ax.legend(fontsize=8)
     ax.set_title(title or "residual histories")
     return _save(fig, path)
+
+
+def default_slices(mesh):
+    """The three mid-planes of the mesh's bounding box: ``[(axis, value), ...]``."""
+    lo, hi = mesh.points.min(axis=0), mesh.points.max(axis=0)
+    return [(a, float(0.5 * (lo[a] + hi[a]))) for a in range(3)]
+
+
+def slice_path(path, axis, value):
+    """``<stem>-slice-x0.5.png`` beside ``path`` for the plane x = 0.5."""
+    from pathlib import Path
+
+    p = Path(path)
+    return p.with_name(f"{p.stem}-slice-{'xyz'[axis]}{value:g}{p.suffix or '.png'}")
+
+
+def plot_slices(path, solution, planes=None, *, title="", units="", name="u",
+                length_unit=""):
+    """PNG pictures of a 3D solution on plane sections, one file per plane.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Base name: the plane x = 0.5 goes to ``<stem>-slice-x0.5.png``.
+    solution : Solution
+        A 3D solution.
+    planes : list of (axis, value) or "x=0.5" texts, optional
+        Default: the three mid-planes of the bounding box.
+    title : str
+    units : str
+        Units of the field, on the colour bar beside ``name``.
+    name : str
+        The field's name, on the colour bar.
+    length_unit : str
+
+    Returns
+    -------
+    list of pathlib.Path
+
+    Raises
+    ------
+    InputError
+        A 2D solution, a plane text that is not AXIS=VALUE, a plane that misses
+        the mesh (the message gives the mesh's extent along that axis).
+    """
+    from galerkit.sections import AXES, parse_plane, plane_section
+
+    mesh = solution.disc.mesh
+    if mesh.dim != 3:
+        raise InputError("plot_slices draws 3D solutions; use plot_field in 2D")
+    planes = default_slices(mesh) if not planes else [
+        parse_plane(p) if isinstance(p, str) else (int(p[0]), float(p[1])) for p in planes]
+    sections = []
+    for axis, value in planes:
+        sec = plane_section(solution.disc, solution.u, axis, value)
+        if sec.triangles.shape[0] == 0:
+            lo, hi = mesh.points[:, axis].min(), mesh.points[:, axis].max()
+            raise InputError(f"slice {AXES[axis]}={value:g} misses the mesh, which spans "
+                             f"{AXES[axis]} = {lo:g} .. {hi:g}; choose a plane inside")
+        sections.append(sec)
+    # one colour scale for every slice: the field's range over all of them
+    vmin = min(float(s.values.min()) for s in sections)
+    vmax = max(float(s.values.max()) for s in sections)
+    if vmax <= vmin:
+        vmax = vmin + (abs(vmin) or 1.0) * 1e-12
+    label = name + (f" [{units}]" if units else "")
+    unit = f" [{length_unit}]" if length_unit else ""
+    out = []
+    for sec in sections:
+        fig, ax = plt.subplots(figsize=(7, 5))
+        tpc = ax.tripcolor(sec.points[:, 0], sec.points[:, 1], sec.triangles, sec.values,
+                           shading="gouraud", cmap="inferno", vmin=vmin, vmax=vmax)
+        if sec.outline.size:
+            from matplotlib.collections import LineCollection
+            ax.add_collection(LineCollection(sec.outline, colors="k", linewidths=0.8))
+        cb = fig.colorbar(tpc, ax=ax)
+        cb.set_label(label)
+        a, b = sec.in_plane_axes
+        ax.set_aspect("equal")
+        ax.set_xlabel(a + unit)
+        ax.set_ylabel(b + unit)
+        ax.set_title((title + ": " if title else "") + f"slice {sec.label}")
+        out.append(_save(fig, slice_path(path, sec.axis, sec.value)))
+    return out

@@ -19,10 +19,14 @@ in 2D, tetrahedra in 3D) become the mesh; cells one dimension lower (lines in
   boundary facet.  A file with tags also gets ``"boundary"`` (the whole
   boundary), unless one of its groups already has that name.
 
-Points, vertices (0-dimensional cells) and, in 3D, lines are ignored, as are
-the physical groups of the cells themselves.  A tagged facet that lies inside
-the domain (an interface between two regions) cannot carry a boundary
-condition: it is left out of its tag, with a warning.  Unused points are
+The physical groups of the cells themselves (surfaces in 2D, volumes in 3D)
+become the mesh's cell regions (``mesh.regions``, ``mesh.region_names``), by
+name where the file names them, by number otherwise; a file without them
+gives the one region ``"domain"``.  Points, vertices (0-dimensional cells)
+and, in 3D, lines are ignored.  A tagged facet that lies inside the domain
+(an interface between two regions) cannot carry a boundary condition: it is
+left out of its tag, with a warning; the interfaces between regions are
+``mesh.interfaces`` (usable for flux output).  Unused points are
 dropped.  2D meshes stored with a zero z column are accepted.
 
 Writing
@@ -245,7 +249,8 @@ def _mesh_from_meshio(m, where: str, merge_duplicates=False):
             pts, cells, merged = merge_duplicate_vertices(pts, cells)
             joined = used.size - pts.shape[0]
             old_to_new[used] = merged  # file point -> vertex of the joined mesh
-        mesh = Mesh(pts, cells)
+        regions, region_names = _cell_regions(m, dim, where)
+        mesh = Mesh(pts, cells, regions=regions, region_names=region_names)
     except MeshError as exc:
         raise MeshError(f"{where}: {exc} (cell and vertex numbers count the "
                         f"{_CELL_OF_DIM[dim]} cells of the file from 0, and the vertices "
@@ -254,6 +259,54 @@ def _mesh_from_meshio(m, where: str, merge_duplicates=False):
     if "boundary" not in mesh.facet_groups:
         mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
     return mesh, joined
+
+
+def _tag_key(data):
+    return "gmsh:physical" if "gmsh:physical" in data else next(
+        (k for k in _OTHER_TAG_KEYS if k in data), None)
+
+
+def _group_names(m):
+    """``(dimension, id) -> name`` of the file's named physical groups."""
+    names = {}
+    for name, value in (m.field_data or {}).items():
+        v = np.asarray(value).ravel()
+        if v.size >= 2:
+            names[(int(v[1]), int(v[0]))] = str(name)
+    return names
+
+
+def _cell_regions(m, dim, where):
+    """Region ids of the cells (in file order) and their names, from the physical
+    groups of full dimension; ``(None, None)`` when the file has none."""
+    data = m.cell_data or {}
+    key = _tag_key(data)
+    if key is None:
+        return None, None
+    ids = []
+    for block, block_ids in zip(m.cells, data[key]):
+        if block.type != _CELL_OF_DIM[dim]:
+            continue
+        t = np.asarray(block_ids).ravel()
+        if t.shape[0] != len(block.data) or t.dtype.kind not in "iuf":
+            raise InputError(f"{where}: the {key!r} data of a {block.type} block does not "
+                             "hold one integer per cell; the file is damaged")
+        ids.append(t.astype(np.int64))
+    ids = np.concatenate(ids)
+    if not ids.any():  # no groups of cells (meshio gives 0 then)
+        return None, None
+    if ids.min() < 0:
+        raise InputError(f"{where}: a cell has the negative group id {int(ids.min())}; "
+                         "region ids must be >= 0")
+    names = _group_names(m)
+    table = {}
+    for i in np.unique(ids).tolist():
+        name = names.get((dim, i), str(i))
+        if name == "default":
+            raise InputError(f"{where}: the cell group {i} is named 'default', which "
+                             "problem files reserve for the regions not named; rename it")
+        table[name] = i
+    return ids, table
 
 
 def _match_rows(rows, table):
@@ -270,15 +323,10 @@ def _match_rows(rows, table):
 
 def _read_tags(m, mesh: Mesh, dim: int, old_to_new, where: str) -> None:
     data = m.cell_data or {}
-    key = "gmsh:physical" if "gmsh:physical" in data else next(
-        (k for k in _OTHER_TAG_KEYS if k in data), None)
+    key = _tag_key(data)
     if key is None:
         return
-    names = {}
-    for name, value in (m.field_data or {}).items():
-        v = np.asarray(value).ravel()
-        if v.size >= 2:
-            names[(int(v[1]), int(v[0]))] = str(name)
+    names = _group_names(m)
     facet_type = _FACET_OF_DIM[dim]
     verts, ids = [], []
     for block, block_ids in zip(m.cells, data[key]):
@@ -603,6 +651,8 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
     ``conductivity_tensor``       cells      9 components, row by row (tensors)
     ``parent_cell``               cells      the computational cell each output
                                              cell lies in
+    ``region``                    cells      int32, the cell region id (names:
+                                             ``mesh.region_names``)
     ============================  =========  ====================================
 
     For P2 and higher the solution is sub-sampled onto the refined P1 mesh
@@ -638,7 +688,9 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
     f3 = np.zeros((mesh.n_cells, 3))
     f3[:, :d] = flux
     cell_data = {xml_name(f"grad_{name}"): [g3], "flux": [f3],
-                 "parent_cell": [np.asarray(s.parent_cells, dtype=np.int64)]}
+                 "parent_cell": [np.asarray(s.parent_cells, dtype=np.int64)],
+                 "region": [np.asarray(solution.disc.mesh.regions[s.parent_cells],
+                                       dtype=np.int32)]}
     if tensor is not None:
         t9 = np.zeros((mesh.n_cells, 3, 3))
         t9[:, :d, :d] = tensor
@@ -660,8 +712,26 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
 
 def _cell_conductivity(kappa, mesh, parent_cells, n_parent):
     """(scalar (m,), None) or (None, tensor (m, d, d)) at the output cells."""
+    from galerkit.regions import RegionCoefficient
+
     d = mesh.dim
     m = mesh.n_cells
+    if isinstance(kappa, dict):
+        raise InputError("write_solution: give a per-region conductivity through the "
+                         "problem (PoissonProblem binds it to the mesh's regions)")
+    if isinstance(kappa, RegionCoefficient):
+        if kappa.has_tensor:
+            return None, kappa.tensors(d)[parent_cells]
+        reg = kappa.regions[parent_cells]
+        out = np.empty(m)
+        c = np.ascontiguousarray(mesh.points[mesh.cells].mean(axis=1).T)
+        for i, v in kappa.by_id.items():
+            sel = reg == i
+            if not sel.any():
+                continue
+            out[sel] = np.asarray(v(np.ascontiguousarray(c[:, sel])), dtype=np.float64) \
+                if callable(v) else float(v)
+        return out, None
     if callable(kappa):
         c = np.ascontiguousarray(mesh.points[mesh.cells].mean(axis=1).T)
         v = np.asarray(kappa(c), dtype=np.float64)
