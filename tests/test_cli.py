@@ -113,7 +113,7 @@ def test_solve_2d_example_writes_vtu_and_png_and_reports_the_error(tmp_path):
     assert (back.point_data["tag_pipe"] == 1).sum() == 64 * 2  # P2: 64 edges, refined
 
 
-def test_solve_3d_example_json_has_errors_and_skips_the_plot(tmp_path):
+def test_solve_3d_example_json_has_errors_and_draws_slices(tmp_path):
     code, out, err = run("--json", "solve", EXAMPLES / "block-3d.toml", "--output", tmp_path,
                          "--plot")
     assert code == 0, err
@@ -121,8 +121,10 @@ def test_solve_3d_example_json_has_errors_and_skips_the_plot(tmp_path):
     assert info["solver"]["converged"] and info["solver"]["method"] == "cg-amg"
     assert info["degree"] == 2 and info["dofs"] == 9 ** 3
     assert 0 < info["errors"]["l2"] < 0.02 and info["errors"]["energy"] > 0
-    assert any("2D solutions only" in n for n in info["notes"])
-    assert [Path(p).name for p in info["outputs"]] == ["block-3d.vtu"]
+    assert [Path(p).name for p in info["outputs"]] == [
+        "block-3d.vtu", "block-3d-slice-x0.5.png", "block-3d-slice-y0.5.png",
+        "block-3d-slice-z0.5.png"]
+    assert all(is_png(p) for p in info["outputs"][1:])
     assert set(info["seconds"]) >= {"load", "assemble", "solver_setup", "solve", "write"}
 
 
