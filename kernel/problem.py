@@ -35,6 +35,7 @@ from .boundary import DirichletElimination, dirichlet_values
 from .compilation import PhaseSeconds
 from .dofs import Discretization
 from .errors import InputError, ProblemError
+from . import fluxes
 from .evaluation import cell_gradients, evaluate
 from .mesh import Mesh
 from .multigrid import p1_coarse_space
@@ -80,6 +81,26 @@ class Solution:
     def cell_gradients(self):
         """Gradient of the solution at each cell centroid, (n_cells, dim)."""
         return cell_gradients(self.disc, self.u)
+
+    def boundary_flux(self, tag, method="consistent"):
+        """Flux ``integral kappa grad u . n ds`` through a facet tag (positive
+        in); ``method`` "consistent" (residual-based) or "gradient".  See
+        :func:`galerkit.fluxes.boundary_flux`."""
+        return fluxes.boundary_flux(self, tag, method)
+
+    def interface_flux(self, name, method="consistent"):
+        """Heat flowing from region a into region b through ``mesh.interfaces``
+        entry ``"a/b"``; see :func:`galerkit.fluxes.interface_flux`."""
+        return fluxes.interface_flux(self, name, method)
+
+    def heat_balance(self):
+        """Sources, boundary flows and the imbalance (:class:`galerkit.fluxes.HeatBalance`)."""
+        return fluxes.heat_balance(self)
+
+    def region_statistics(self):
+        """Min, max, mean of u and the source integral per cell region
+        (:class:`galerkit.fluxes.RegionStatistics` list)."""
+        return fluxes.region_statistics(self)
 
 
 class PoissonProblem:
