@@ -40,7 +40,7 @@ mutants: $(WARM)
 
 # Optional distributed engine (galerkit[mpi]): MPICH and LAPACK from Debian,
 # PETSc and petsc4py built from their source distributions (no wheels exist;
-# 11-20 minutes on 2 cores the first time, then pip's wheel cache makes it
+# about 25 minutes on 2 cores the first time, then pip's wheel cache makes it
 # quick), mpi4py built against the same MPICH.
 SUDO      := $(shell [ "$$(id -u)" = 0 ] || echo sudo)
 MPI_DEBS  := libmpich-dev mpich liblapack-dev libblas-dev patchelf

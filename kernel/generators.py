@@ -79,8 +79,7 @@ def _tag_box(mesh, lower, upper, spacing):
             mask = np.abs(x[axis] - value) <= tol
             if mask.any():
                 mesh.set_facet_tag(side, np.flatnonzero(mask))
-    mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
-    return mesh
+    return mesh  # "boundary" (all of it) comes with every Mesh
 
 
 def _regions(mesh, regions, names):
@@ -231,6 +230,5 @@ def l_shaped_triangles(n, *, regions=None, region_names=None) -> Mesh:
     sides["reentrant"] = ~(sides["xmin"] | sides["xmax"] | sides["ymin"] | sides["ymax"])
     for name, mask in sides.items():
         mesh.set_facet_tag(name, np.flatnonzero(mask))
-    mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
     _regions(mesh, regions, region_names)
     return mesh

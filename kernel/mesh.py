@@ -301,6 +301,32 @@ def _as_points(points):
     return p
 
 
+def _planar(points, cells):
+    """Triangles given with a third coordinate that is zero everywhere (as mesh files
+    store 2D meshes) become 2D points; a non-zero z is refused (no surface meshes)."""
+    if points.shape[1] != 3:
+        return points
+    try:
+        shape = np.shape(cells)
+    except Exception:  # ragged: _cells_and_use names it
+        return points
+    if len(shape) != 2 or shape[1] != 3:
+        return points
+    extent = float(np.ptp(points[:, :2], axis=0).max()) if points.shape[0] > 1 else 1.0
+    z = np.abs(points[:, 2])
+    if z.size and z.max() > 1e-12 * max(extent, np.finfo(float).tiny):
+        i = int(np.argmax(z))
+        raise MeshError(
+            f"mesh points: triangles with z != 0 (vertex {i} has z = {float(points[i, 2])!r}); "
+            "galerkit solves 2D problems in the plane z = 0 and does not solve on surfaces "
+            "in 3D. Give the points a zero z column, or drop the z coordinate")
+    return np.ascontiguousarray(points[:, :2])
+
+
+#: plural of each cell type, for messages
+CELL_TYPE_PLURAL = {"triangle": "triangles", "tetrahedron": "tetrahedra"}
+
+
 def _as_cells(cells, n_vertices, dim):
     return _cells_and_use(cells, n_vertices, dim)[0]
 
@@ -520,12 +546,15 @@ class Mesh:
     Parameters
     ----------
     points : array_like, shape (n_vertices, d), d in {2, 3}
-        Vertex coordinates (converted to float64).
+        Vertex coordinates (converted to float64).  Triangles given with a z
+        column that is zero everywhere (as mesh files store 2D meshes) are 2D.
     cells : array_like, shape (n_cells, d + 1), integer
         Vertex indices of each cell.  Negatively oriented cells are
         re-oriented (two vertices swapped) and counted in ``n_reoriented``.
     facet_groups : dict, optional
-        ``name -> boundary facet ids`` to start with.
+        ``name -> boundary facet ids`` to start with.  Every mesh has the group
+        ``"boundary"`` (all boundary facets) unless this dict gives its own
+        ``"boundary"``, as a mesh read from a file has.
     regions : array_like (n_cells,), callable or dict, optional
         Cell regions (materials); see :meth:`set_regions`.  Without them the
         mesh has the one region ``"domain"`` (id 0).
@@ -560,11 +589,13 @@ class Mesh:
     (2, 'triangle', 2, 1.0)
     >>> m.boundary_facets.shape
     (4, 2)
+    >>> sorted(m.facet_groups), len(m.facet_groups["boundary"])
+    (['boundary'], 4)
     """
 
     def __init__(self, points, cells, *, facet_groups=None, check_coincident=True, regions=None,
                  region_names=None):
-        p = _as_points(points)
+        p = _planar(_as_points(points), cells)
         n, d = p.shape
         c, used = _cells_and_use(cells, n, d)
         if facet_groups is not None and not hasattr(facet_groups, "items"):
@@ -623,6 +654,8 @@ class Mesh:
         if facet_groups:
             for name, ids in facet_groups.items():
                 self.set_facet_tag(name, ids)
+        if "boundary" not in self.facet_groups:
+            self.set_facet_tag("boundary", np.arange(self.boundary_facets.shape[0]))
 
     # -- basic properties ----------------------------------------------------
     @property
@@ -643,7 +676,8 @@ class Mesh:
 
     def __repr__(self) -> str:
         reg = "" if len(self.region_names) == 1 else f", regions {list(self.region_names)}"
-        return (f"Mesh({self.n_vertices} vertices, {self.n_cells} {self.cell_type}s, "
+        return (f"Mesh({self.n_vertices} vertices, {self.n_cells} "
+                f"{CELL_TYPE_PLURAL[self.cell_type]}, "
                 f"tags {sorted(self.facet_groups)}{reg})")
 
     # -- topology -------------------------------------------------------------

@@ -19,7 +19,7 @@ without it.
 
     python tests/bad_input_cases.py              # JSON list on stdout
     python tests/bad_input_cases.py --messages   # JSON with the messages too
-    python tests/bad_input_cases.py --markdown   # the table in README.md
+    python tests/bad_input_cases.py --markdown   # the table in docs/bad-input.md
 
 The name of the case being run is written to stderr first, so a crash names it.
 """
@@ -1202,7 +1202,7 @@ def run_all(echo=False):
 
 
 def markdown(results):
-    """The table in README.md: one row per case."""
+    """The table in docs/bad-input.md: one row per case."""
     rows = ["| input class | bad input | you get | example message |",
             "|---|---|---|---|"]
     for name, category, _, cls, msg in results:

@@ -449,6 +449,6 @@ def test_failed_first_write_leaves_no_file_at_all(tmp_path, monkeypatch, small_s
 
 
 def test_the_documented_table_lists_every_case():
-    doc = (HERE.parent / "README.md").read_text(encoding="utf-8")
+    doc = (HERE.parent / "docs" / "bad-input.md").read_text(encoding="utf-8")
     missing = [c[0] for c in bad_input_cases.CASES if f"| {c[0]} | `{c[2]}` |" not in doc]
     assert missing == [], "regenerate with: python tests/bad_input_cases.py --markdown"

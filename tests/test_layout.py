@@ -59,11 +59,32 @@ def test_the_four_subpackages_exist():
     assert flat == [], f"modules left at the top of bindings/: {flat}"
 
 
+#: the one documented exception (kernel/__init__.py): ``galerkit.read_mesh`` and
+#: ``galerkit.write_solution`` are lazy attributes taken from galerkit.bindings.files
+KERNEL_EXCEPTION = {"__init__.py": {"galerkit.bindings", "galerkit.bindings.files"}}
+
+
 @pytest.mark.parametrize("path", sorted((ROOT / "kernel").rglob("*.py")), ids=lambda p: p.name)
 def test_kernel_never_imports_bindings(path):
+    allowed = KERNEL_EXCEPTION.get(path.name, set())
     bad = [(n, line) for n, line in imported_modules(path, _package_of(path))
-           if n == "galerkit.bindings" or n.startswith("galerkit.bindings.")]
+           if (n == "galerkit.bindings" or n.startswith("galerkit.bindings.")) and n not in allowed]
     assert not bad, f"{path.relative_to(ROOT)} imports bindings: {bad}"
+
+
+def test_importing_the_kernel_loads_no_bindings_and_the_file_functions_come_lazily():
+    import subprocess
+    import sys
+
+    code = ("import sys, galerkit as gk\n"
+            "assert not [m for m in sys.modules if m.startswith('galerkit.bindings')]\n"
+            "import galerkit.bindings.files as f\n"
+            "assert gk.read_mesh is f.read_mesh and gk.write_solution is f.write_solution\n"
+            "assert 'read_mesh' in dir(gk)\n"
+            "try:\n    gk.no_such_name\nexcept AttributeError as e:\n    print(e)\n")
+    run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert run.returncode == 0, run.stderr
+    assert "no attribute 'no_such_name'" in run.stdout
 
 
 @pytest.mark.parametrize("path", sorted((ROOT / "bindings").rglob("*.py")),

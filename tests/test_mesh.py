@@ -369,3 +369,49 @@ def test_quality_summary_counts_and_ranges():
     np.testing.assert_allclose(mesh.cell_quality(), np.sqrt(3) / 2, rtol=1e-14)
     q = mesh.quality()
     assert q.min_shape_quality <= q.mean_shape_quality <= q.max_shape_quality <= 1.0
+
+
+# ----------------------------------------------------------------------------
+# a mesh from arrays is as complete as a mesh from a file
+# ----------------------------------------------------------------------------
+def test_a_mesh_from_arrays_has_the_boundary_group_of_all_boundary_facets():
+    # the unit square in two triangles: 4 boundary edges (counted by hand)
+    m = Mesh([[0, 0], [1, 0], [0, 1], [1, 1]], [[0, 1, 2], [1, 3, 2]])
+    assert list(m.facet_groups) == ["boundary"]
+    np.testing.assert_array_equal(m.facet_groups["boundary"], np.arange(4))
+    own = Mesh([[0, 0], [1, 0], [0, 1], [1, 1]], [[0, 1, 2], [1, 3, 2]],
+               facet_groups={"boundary": [0, 1]})
+    np.testing.assert_array_equal(own.facet_groups["boundary"], [0, 1])  # a given one stays
+
+
+def test_a_poisson_problem_on_a_mesh_from_arrays_uses_its_boundary_group():
+    # patch test (Irons & Razzaque 1972): u = 1 + 2x - y is harmonic and linear, so
+    # P1 with u on the boundary reproduces it exactly at every node
+    import galerkit as gk
+
+    mesh = refine_uniform(Mesh([[0, 0], [1, 0], [0, 1], [1, 1]], [[0, 1, 2], [1, 3, 2]]))
+    exact = lambda x: 1 + 2 * x[0] - x[1]  # noqa: E731
+    sol = gk.PoissonProblem(mesh, dirichlet={"boundary": exact}).solve(degree=1)
+    np.testing.assert_allclose(sol.u, exact(mesh.points.T), rtol=0, atol=1e-13)
+
+
+def test_2d_points_with_a_zero_z_column_are_a_2d_mesh():
+    pts = np.array([[0, 0], [1, 0], [0, 1], [1, 1]], dtype=float)
+    cells = [[0, 1, 2], [1, 3, 2]]
+    flat = Mesh(np.column_stack([pts, np.zeros(4)]), cells)
+    assert flat.dim == 2 and flat.cell_type == "triangle"
+    np.testing.assert_array_equal(flat.points, pts)
+    assert float(flat.cell_volumes.sum()) == 1.0
+    with pytest.raises(MeshError, match=r"triangles with z != 0 \(vertex 3 has z = 0\.5\)"):
+        Mesh(np.column_stack([pts, [0, 0, 0, 0.5]]), cells)
+    # tetrahedra keep their three coordinates
+    tet = Mesh([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]], [[0, 1, 2, 3]])
+    assert tet.dim == 3 and tet.cell_volumes[0] == pytest.approx(1 / 6, rel=1e-15)
+
+
+def test_plural_of_tetrahedron_in_descriptions():
+    import galerkit as gk
+
+    m = structured_tetrahedra(1, 1, 1)
+    assert "6 tetrahedra" in repr(m) and "tetrahedrons" not in repr(m)
+    assert "6 tetrahedra" in repr(gk.Discretization(m, 1))

@@ -387,16 +387,16 @@ def test_pipe_wall_example_agrees_with_the_closed_form_to_half_a_percent():
 
 def test_example_files_name_the_schema_document():
     for f in EXAMPLES.glob("*.toml"):
-        assert re.search(r"README\.md, \"Problem files\"", f.read_text()), f
+        assert re.search(r"schema: docs/problem-files\.md", f.read_text()), f
 
 
 def test_the_documented_example_is_a_valid_problem_file():
     from galerkit.bindings.command.problemfile import tomllib
 
-    doc = (EXAMPLES.parent / "README.md").read_text()
-    section = doc[doc.index("## Problem files"):]
+    doc = (EXAMPLES.parent / "docs" / "problem-files.md").read_text()
+    section = doc[doc.index("## A complete example"):]
     block = re.search(r"```toml\n(.*?)```", section, re.S).group(1)
-    spec = parse_problem(tomllib.loads(block), source="README.md", base=EXAMPLES,
+    spec = parse_problem(tomllib.loads(block), source="docs/problem-files.md", base=EXAMPLES,
                          text=block)
     assert [e.kind for e in spec.boundary] == ["dirichlet", "robin"]
     assert spec.options.exact_gradient is not None

@@ -224,10 +224,11 @@ def test_facet_groups_carry_over_to_the_child_facets(name):
         coarse = fine
 
 
-def test_refining_a_mesh_without_tags_gives_no_tags():
+def test_refining_a_mesh_from_arrays_gives_the_boundary_group_of_the_fine_mesh():
     mesh = Mesh([[0, 0], [1, 0], [0, 1]], [[0, 1, 2]])
     fine = refine_uniform(mesh)
-    assert fine.facet_groups == {}
+    assert list(fine.facet_groups) == ["boundary"]
+    np.testing.assert_array_equal(fine.facet_groups["boundary"], np.arange(6))  # 3 edges x 2
     assert fine.n_cells == 4 and fine.n_vertices == 6
 
 

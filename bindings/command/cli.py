@@ -5,7 +5,7 @@ Subcommands
 ``demo``       a built-in scenario (cooling plate); writes VTU and PNG
 ``verify``     a manufactured-solution convergence study; writes a PNG
 ``mesh-info``  counts, tags and quality of a mesh file
-``solve``      solve a problem file (TOML, see the README section "Problem files")
+``solve``      solve a problem file (TOML, see docs/problem-files.md)
 ``bench``      every registered solver on one assembled system
 
 ``--quiet`` (no progress bars, no headings, no caution: the result lines only)
@@ -283,13 +283,14 @@ def _verify(args) -> int:
     png = Path(args.output)
     if png.parent != Path("."):
         _folder(png.parent)
-    plot_convergence(png, table, title=f"P{k} on {args.cell}s: u = prod sin(pi x_i)")
+    plot_convergence(png, table, title=f"P{k} on {_plural(args.cell)}: u = prod sin(pi x_i)")
     if args.json:
         _print_json({"rows": table.rows, "eoc_l2": l2, "eoc_h1": h1, "pass_l2": ok_l2,
                      "pass_h1": ok_h1, "plot": str(png), "caution": CAUTION})
     else:
         say = _Report(args)
-        say.head(f"galerkit verify: manufactured solution prod sin(pi x_i), P{k} on {args.cell}s")
+        say.head(f"galerkit verify: manufactured solution prod sin(pi x_i), P{k} on "
+                 f"{_plural(args.cell)}")
         say.result(table.to_markdown())
         say.result(f"  L2 order {l2:.2f} (theory {k + 1}): {'pass' if ok_l2 else 'FAIL'}")
         say.result(f"  H1 order {h1:.2f} (theory {k}): {'pass' if ok_h1 else 'FAIL'}")
@@ -1030,7 +1031,7 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("solve", parents=[common],
                        help="solve a problem file (TOML); writes VTU and, with --plot, PNG",
                        description="Solve the problem of a TOML problem file (see "
-                       "README, Problem files). Flags override the file.")
+                       "docs/problem-files.md). Flags override the file.")
     s.add_argument("problem", help="the problem file (.toml)")
     s.add_argument("--degree", type=int, choices=[1, 2, 3, 4], help="element degree")
     s.add_argument("--method", help="solver name, or auto")

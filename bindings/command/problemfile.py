@@ -6,7 +6,7 @@ facet tag, the solver, the outputs and, optionally, an exact solution to
 measure the error against.  Coefficients are short formulas of the
 coordinates ``x``, ``y``, ``z`` read by
 :func:`galerkit.bindings.command.expressions.compile_expression` (never run as Python).
-The schema is documented in the README section "Problem files"; in short::
+The schema is documented in docs/problem-files.md; in short::
 
     title = "..."                      # optional
     [constants]   name = number, ...   # usable in every formula
@@ -278,7 +278,7 @@ def load_problem(path, *, stay_in_folder=False) -> ProblemSpec:
     Parameters
     ----------
     path : str or path-like
-        A TOML file in the schema of this module (the README section "Problem files").
+        A TOML file in the schema of this module (docs/problem-files.md).
     stay_in_folder : bool, default False
         Refuse a ``[mesh] file`` or ``[output] folder`` that resolves (after
         symbolic links, ``..`` and absolute paths) outside the problem file's

@@ -255,9 +255,7 @@ def _mesh_from_meshio(m, where: str, merge_duplicates=False):
         raise MeshError(f"{where}: {exc} (cell and vertex numbers count the "
                         f"{_CELL_OF_DIM[dim]} cells of the file from 0, and the vertices "
                         "after unused points were dropped)") from None
-    _read_tags(m, mesh, dim, old_to_new, where)
-    if "boundary" not in mesh.facet_groups:
-        mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
+    _read_tags(m, mesh, dim, old_to_new, where)  # a group named "boundary" replaces Mesh's own
     return mesh, joined
 
 
