@@ -128,6 +128,10 @@ MUTANTS = [
     ("multigrid Galerkin product scaled (coarse operator 1.5 P^T A P)", "multigrid.py",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n        c_val = 1.5 * c_val\n"),
+    ("multigrid prolongator smoothed with 0.9 of its weight", "multigrid.py",
+     "            scale = omega / l1[i]\n", "            scale = 0.9 * omega / l1[i]\n"),
+    ("SpGEMM drops the products after the first of a column", "sparse.py",
+     "                        c_val[k] += av * b_val[kb]\n", "                        c_val[k] += 0.0\n"),
 ]
 
 # the fast selection, cheapest first (-x stops at the first failure); the largest
@@ -137,6 +141,8 @@ SELECTION = [
     "tests/test_elements.py",
     "tests/test_multigrid.py::test_dot_and_fused_cg_update_match_numpy",
     "tests/test_multigrid.py::test_coarse_operators_are_galerkin_products",
+    "tests/test_multigrid.py::test_prolongator_is_the_smoothed_tentative_prolongator",
+    "tests/test_multigrid.py::test_spgemm_matches_scipy",
     *(f"{_A}element_stiffness_mass_load_equal_exact_integrals_of_an_independent_basis[{c}]"
       for c in ("2-1", "2-2", "2-3", "2-4", "3-1", "3-2")),
     *(f"{_A}facet_mass_and_load_equal_exact_surface_integrals[{c}]"
