@@ -1,4 +1,4 @@
-"""Specification of the command line (galerkit.bindings.cli).
+"""Specification of the command line (galerkit.bindings.command.cli).
 
 End-to-end runs of every subcommand in a subprocess on small problems, and
 the exit codes and messages of bad input (in-process through ``main``, which
@@ -9,6 +9,7 @@ or a failed check, 2 bad input.  PNG files are recognised by their signature
 
 from __future__ import annotations
 
+import argparse
 import json
 import subprocess
 import sys
@@ -18,8 +19,8 @@ import meshio
 import numpy as np
 import pytest
 
-from galerkit.bindings.cli import CAUTION, main
-from galerkit.bindings.plots import PNG_SIGNATURE
+from galerkit.bindings.command.cli import CAUTION, main
+from galerkit.bindings.files.plots import PNG_SIGNATURE
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 SCRIPT = Path(sys.executable).with_name("galerkit")
@@ -27,7 +28,7 @@ SCRIPT = Path(sys.executable).with_name("galerkit")
 
 def run(*args, cwd=None):
     """Run the command line in a subprocess; (exit code, stdout, stderr)."""
-    cmd = [str(SCRIPT)] if SCRIPT.exists() else [sys.executable, "-m", "galerkit.bindings.cli"]
+    cmd = [str(SCRIPT)] if SCRIPT.exists() else [sys.executable, "-m", "galerkit.bindings.command.cli"]
     p = subprocess.run(cmd + [str(a) for a in args], capture_output=True, text=True, cwd=cwd,
                        timeout=600)
     return p.returncode, p.stdout, p.stderr
@@ -49,8 +50,8 @@ degree = 2
 value = "2*pi^2*sin(pi*x)*sin(pi*y)"
 [[boundary]]
 tag = "boundary"
-kind = "fixed"
-value = 0
+kind = "dirichlet"
+u = 0
 [exact]
 solution = "sin(pi*x)*sin(pi*y)"
 gradient = ["pi*cos(pi*x)*sin(pi*y)", "pi*sin(pi*x)*cos(pi*y)"]
@@ -83,13 +84,35 @@ def test_demo_runs_and_writes_a_vtu_and_a_png(tmp_path):
 
 def test_verify_reports_the_a_priori_orders(tmp_path):
     # source: orders k+1 in L2 and k in H1 (Brenner & Scott, 2008)
-    png = tmp_path / "v.png"
-    code, out, err = run("verify", "--levels", 3, "--degree", 1, "--output", png, "--json")
+    code, out, err = run("verify", "--levels", 3, "--degrees", "1,2", "--output", tmp_path,
+                         "--json")
     assert code == 0, err
     info = json.loads(out)  # strict JSON: the first row's order is null, not NaN
-    assert info["rows"][0]["eoc_l2"] is None
-    assert info["eoc_l2"] == pytest.approx(2.0, abs=0.1) and info["pass_h1"]
-    assert is_png(png)
+    p1, p2 = info["degrees"]
+    assert p1["rows"][0]["eoc_l2"] is None
+    assert p1["eoc_l2"] == pytest.approx(2.0, abs=0.1) and p1["pass_h1"]
+    assert p2["eoc_l2"] == pytest.approx(3.0, abs=0.1) and p2["eoc_h1"] == pytest.approx(
+        2.0, abs=0.1)
+    assert info["plot"] == str(tmp_path / "verify-triangle.png") and is_png(info["plot"])
+    csv_rows = (tmp_path / "verify-triangle.csv").read_text().strip().split("\n")
+    assert csv_rows[0].startswith("degree,level,h") and len(csv_rows) == 1 + 2 * 3
+
+
+def test_verify_takes_a_problem_file_with_an_exact_solution(tmp_path, square):
+    # the file's manufactured solution sin(pi x) sin(pi y): P2 orders 3 and 2 (Brenner &
+    # Scott 2008); output into the file's [output] folder unless --output names one
+    code, out, err = run("--json", "verify", square, "--levels", 3, "--output",
+                         tmp_path / "v")
+    assert code == 0, err
+    info = json.loads(out)
+    assert [d["degree"] for d in info["degrees"]] == [2]  # the file's degree
+    assert info["eoc_l2"] == pytest.approx(3.0, abs=0.15)
+    assert is_png(tmp_path / "v" / "square.png")
+    no_exact = tmp_path / "plain.toml"
+    no_exact.write_text('[mesh]\ngenerator = "square"\n[[boundary]]\ntag = "boundary"\n'
+                        'kind = "dirichlet"\nu = 0\n')
+    code, out, err = run("verify", no_exact)
+    assert code == 2 and "needs an [exact] section" in err
 
 
 def test_mesh_info_counts_the_tags_of_the_example_mesh():
@@ -147,9 +170,11 @@ def test_bench_generated_runs_every_solver_and_draws_the_residuals(tmp_path):
     code, out, err = run("bench", "--generate", "square", "--size", 8, "--output", tmp_path)
     assert code == 0, err
     for m in available_solvers():
-        assert f"  {m} " in out
-    assert "tracemalloc" in out and "L2 error" in out
+        assert f"| {m} |" in out
+    assert "VmHWM" in out and "l2_error" in out
+    assert "estimating" in err and "run 1 of 1" in err  # progress lines on stderr
     assert is_png(tmp_path / "bench-square-residuals.png")
+    assert (tmp_path / "bench-square-bench.csv").read_text().startswith("size,unknowns,")
 
 
 def test_bench_problem_file_json_solves_one_system_with_each_method(tmp_path, square):
@@ -162,17 +187,55 @@ def test_bench_problem_file_json_solves_one_system_with_each_method(tmp_path, sq
     # same system, both converged: the same discrete solution, so the same error
     assert rows["direct"]["l2_error"] == pytest.approx(rows["cg-jacobi"]["l2_error"], rel=1e-6)
     assert rows["direct"]["iterations"] == 1 and rows["cg-jacobi"]["iterations"] > 1
-    assert all(r["final_residual"] <= info["rtol"] for r in rows.values())
-    assert is_png(info["plot"])
+    assert all(r["final_residual"] <= 1e-10 for r in rows.values())
+    assert all(is_png(o) for o in info["outputs"] if o.endswith(".png"))
 
 
-def test_bench_memory_of_direct_includes_its_factors(tmp_path, square, capsys):
-    # the memory column claims to include SuperLU's factors: at least 12 bytes per
-    # stored factor entry (8 value + 4 index) must show
-    assert main(["--json", "bench", str(square), "--methods", "direct",
-                 "--output", str(tmp_path)]) == 0
-    row = json.loads(capsys.readouterr().out)["rows"][0]
-    assert row["peak_mb"] * 2**20 >= 12 * row["facts"]["factor_nonzeros"]
+HOG = """
+import numpy as np
+import galerkit as gk
+
+class Hog:
+    # prepares by touching 300 MB, then solves with the direct solver
+    def __init__(self, A):
+        self.keep = np.ones(300 * 2**20 // 8)
+        self.inner = gk.prepare_solver(A, "direct")
+
+    def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
+        return self.inner.solve(b, rtol=rtol)
+
+gk.register_solver("hog", Hog, overwrite=True)
+"""
+
+
+def test_bench_reaches_a_registered_solver_and_measures_its_own_peak(tmp_path, square):
+    # each run in its own process: the 300 MB the solver's set-up holds must show in
+    # that run's peak (VmHWM), beyond the process's base before the set-up
+    (tmp_path / "hogsolvers.py").write_text(HOG)
+    code, out, err = run("--json", "bench", square, "--methods", "hog,direct",
+                         "--solvers-module", "hogsolvers", "--repeat", 2, "--output",
+                         tmp_path / "b", cwd=tmp_path)
+    assert code == 0, err
+    rows = {r["method"]: r for r in json.loads(out)["rows"]}
+    hog, direct = rows["hog"], rows["direct"]
+    assert hog["runs"] == 2 and hog["setup_min"] <= hog["setup_median"]
+    assert hog["peak_mb"] - hog["base_mb"] >= 300
+    assert direct["peak_mb"] - direct["base_mb"] < 100
+    assert hog["l2_error"] == pytest.approx(direct["l2_error"], rel=1e-9)
+
+
+def test_bench_skips_methods_over_budget_with_a_reason_unless_named(tmp_path, capsys):
+    # a budget of 1e-9 s: every estimate exceeds it
+    assert main(["--json", "bench", "--generate", "square", "--size", "8",
+                 "--budget-seconds", "1e-9", "--output", str(tmp_path)]) == 0
+    info = json.loads(capsys.readouterr().out)
+    assert info["rows"] == [] and info["skipped"]
+    assert all("budget 1e-09 s" in s["reason"] and "--methods" in s["reason"]
+               for s in info["skipped"])
+    assert main(["--json", "bench", "--generate", "square", "--size", "8", "--methods",
+                 "direct", "--budget-seconds", "1e-9", "--output", str(tmp_path)]) == 0
+    info = json.loads(capsys.readouterr().out)
+    assert [r["method"] for r in info["rows"]] == ["direct"] and not info["skipped"]
 
 
 # ----------------------------------------------------------------------------
@@ -229,7 +292,7 @@ def test_mixed_dimension_mesh_exits_2(tmp_path, capsys):
     ("[mesh]\ngenerator = 'square'\n[source]\nvalue = '1 +* x'\n", ["source.value", "^"]),
     ("[mesh]\ngenerator = 'square'\n[discretization]\ndegree = 1.5\n",
      ["discretization.degree: must be an integer"]),
-    ("[mesh]\ngenerator = 'square'\n[[boundary]]\ntag = 'inlet'\nkind = 'fixed'\nvalue = 1\n",
+    ("[mesh]\ngenerator = 'square'\n[[boundary]]\ntag = 'inlet'\nkind = 'dirichlet'\nu = 1\n",
      ["boundary[1].tag: the mesh has no facet tag 'inlet'", "its tags are"]),
     ("[mesh]\ngenerator = 'square'\n[source]\nvalue = \"__import__('os')\"\n",
      ["source.value", "^"]),
@@ -285,7 +348,7 @@ def test_flags_after_the_subcommand_and_quiet_output(tmp_path, capsys, square):
 # -- the petsc engine's flags, without MPI ----------------------------------------
 def test_petsc_engine_without_petsc4py_says_how_to_install_it(tmp_path):
     code = ("import sys; sys.modules['petsc4py'] = None; sys.modules['mpi4py'] = None; "
-            "from galerkit.bindings.cli import main; "
+            "from galerkit.bindings.command.cli import main; "
             f"sys.exit(main(['solve', {str(EXAMPLES / 'block-3d.toml')!r}, '--engine', "
             f"'petsc', '--output', {str(tmp_path)!r}]))")
     p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
@@ -326,7 +389,7 @@ def test_the_json_error_object_names_the_kind_of_error(tmp_path, capsys):
 
 
 def test_memory_and_recursion_errors_exit_2_with_one_line(monkeypatch, capsys, tmp_path):
-    from galerkit.bindings import cli
+    from galerkit.bindings.command import cli
 
     def exhausted(args):
         raise MemoryError
@@ -345,8 +408,8 @@ def test_memory_and_recursion_errors_exit_2_with_one_line(monkeypatch, capsys, t
 def test_control_characters_of_the_input_are_echoed_escaped(tmp_path, capsys):
     path = tmp_path / "esc.toml"
     path.write_text('title = "\\u001b[2Jred\\u009b"\n[mesh]\ngenerator = "square"\ncells = 2\n'
-                    '[output]\nvtu = false\n[[boundary]]\ntag = "left"\nkind = "fixed"\n'
-                    'value = 0\n')
+                    '[output]\nvtu = false\n[[boundary]]\ntag = "xmin"\nkind = "dirichlet"\n'
+                    'u = 0\n')
     assert main(["solve", str(path)]) == 0
     out = capsys.readouterr().out
     assert "\x1b" not in out and "\x9b" not in out
@@ -378,21 +441,21 @@ def test_overlapping_tags_are_noted_by_mesh_info_and_by_solve(tmp_path, capsys):
     assert note in capsys.readouterr().out
     problem = tmp_path / "p.toml"
     problem.write_text('[mesh]\nfile = "m.msh"\n[output]\nvtu = false\n[[boundary]]\n'
-                       'tag = "11"\nkind = "fixed"\nvalue = 0\n')
+                       'tag = "11"\nkind = "dirichlet"\nu = 0\n')
     assert main(["--json", "solve", str(problem)]) == 0
     assert any(note in n for n in json.loads(capsys.readouterr().out)["notes"])
 
 
 def test_verify_on_tetrahedra_p1_starts_from_a_mesh_with_interior_unknowns(tmp_path, capsys):
     # a priori orders 2 (L2) and 1 (H1) for P1 (Brenner & Scott 2008)
-    assert main(["--json", "verify", "--cell", "tetrahedron", "--degree", "1", "--levels", "4",
-                 "--output", str(tmp_path / "v.png")]) == 0
+    assert main(["--json", "verify", "--cell", "tetrahedron", "--degrees", "1", "--levels", "4",
+                 "--output", str(tmp_path)]) == 0
     out = json.loads(capsys.readouterr().out)
     assert out["pass_l2"] and out["pass_h1"] and out["rows"][0]["n_dofs"] == 27  # 3^3 vertices
-    fails_with_2(["verify", "--start-size", "1", "--degree", "1"], capsys,
+    fails_with_2(["verify", "--start-size", "1", "--degrees", "1"], capsys,
                  "--start-size 1 gives a first mesh without interior unknowns", "--start-size 2")
     assert main(["--json", "verify", "--start-size", "3", "--levels", "2",
-                 "--output", str(tmp_path / "w.png")]) in (0, 1)
+                 "--output", str(tmp_path / "w")]) in (0, 1)
     assert json.loads(capsys.readouterr().out)["rows"][0]["n_dofs"] == 16  # 4 x 4 vertices
 
 
@@ -422,3 +485,67 @@ def test_stay_in_folder_lets_a_problem_inside_its_folder_run(tmp_path, capsys):
     (tmp_path / "p.toml").write_text(SQUARE.replace('units = "K"', 'folder = "results"'))
     assert main(["--quiet", "solve", str(tmp_path / "p.toml"), "--stay-in-folder"]) == 0
     assert (tmp_path / "results" / "p.vtu").exists()
+
+
+def _mean_ratio_triangle(p):
+    """Mean-ratio quality of a triangle, 4 sqrt(3) area / (sum of squared edges):
+    1 for the equilateral triangle (Bank & Smith, "Mesh smoothing using a posteriori
+    error estimates", SIAM J. Numer. Anal. 34, 1997; computed here independently)."""
+    a, b, c = p
+    area = 0.5 * abs((b[0] - a[0]) * (c[1] - a[1]) - (b[1] - a[1]) * (c[0] - a[0]))
+    edges = sum(float(np.sum((u - v) ** 2)) for u, v in ((a, b), (b, c), (c, a)))
+    return 4.0 * np.sqrt(3.0) * area / edges
+
+
+def test_mesh_info_gives_quality_quantiles_and_the_worst_cells_with_ids_and_places(tmp_path,
+                                                                                    capsys):
+    import galerkit as gk
+
+    mesh = gk.structured_triangles(4, 4)
+    pts = np.array(mesh.points)
+    centre = int(np.flatnonzero((np.abs(pts - 0.5) < 1e-12).all(axis=1))[0])
+    pts[centre] = (0.68, 0.61)  # squeezes the cells around the centre vertex
+    cells = np.asarray(mesh.cells)
+    meshio.write(tmp_path / "m.vtu", meshio.Mesh(np.column_stack([pts, np.zeros(len(pts))]),
+                                                 [("triangle", cells)]))
+    expected = np.array([_mean_ratio_triangle(pts[c]) for c in cells])
+    assert main(["--json", "mesh-info", str(tmp_path / "m.vtu"), "--worst", "3"]) == 0
+    info = json.loads(capsys.readouterr().out)
+    # quantiles by rank (the 'lower' rule): the value of the cell at floor(p (n - 1))
+    ranked = np.sort(expected)
+    for name, p in (("min", 0.0), ("1%", 0.01), ("5%", 0.05), ("50%", 0.5)):
+        assert info["quality_quantiles"][name] == pytest.approx(
+            ranked[int(np.floor(p * (len(ranked) - 1)))], rel=1e-12)
+    worst = info["worst_cells"]
+    assert [w["cell"] for w in worst] == np.argsort(expected, kind="stable")[:3].tolist()
+    assert all(centre in cells[w["cell"]] for w in worst)
+    for w in worst:
+        assert w["quality"] == pytest.approx(expected[w["cell"]], rel=1e-12)
+        assert w["centroid"] == pytest.approx(pts[cells[w["cell"]]].mean(axis=0).tolist())
+    assert "quality_histogram" not in info
+    assert main(["mesh-info", str(tmp_path / "m.vtu"), "--worst", "2"]) == 0
+    out = capsys.readouterr().out
+    assert "quality quantiles: min" in out and "the 2 worst cells" in out
+    assert f"cell {worst[0]['cell']:>9d}" in out
+
+
+def _actions(parser, path=()):
+    import argparse
+
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for name, sub in action.choices.items():
+                yield from _actions(sub, path + (name,))
+        elif not isinstance(action, argparse._HelpAction):
+            yield path, action
+
+
+def test_every_flag_of_every_command_has_help_text():
+    from galerkit.bindings.command.cli import build_parser
+
+    found = list(_actions(build_parser()))
+    assert {p[0] for p, _ in found if p} >= {"demo", "verify", "mesh-info", "solve", "bench",
+                                              "warm-up"}
+    empty = [(" ".join(p), a.option_strings or a.dest) for p, a in found
+             if not (a.help and a.help.strip()) and a.help is not argparse.SUPPRESS]
+    assert empty == []
