@@ -32,3 +32,5 @@ from .functionals import (l2_error, h1_seminorm_error, energy_error, l2_norm, h1
                           h1_seminorm, energy, nested_error)
 from .problem import PoissonProblem, Solution
 from .convergence import convergence_study, ConvergenceTable
+from .estimators import ErrorEstimate, estimate_error
+from .bisection import refine_marked, min_angles
