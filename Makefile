@@ -17,7 +17,7 @@ venv: $(STAMP)
 # Compile the common kernels once, ahead of the first run (`galerkit warm-up`);
 # redone when a kernel source changes (numba recompiles only what changed).
 WARM := $(VENV)/.warm
-$(WARM): $(STAMP) $(wildcard kernel/*.py bindings/*.py)
+$(WARM): $(STAMP) $(wildcard kernel/*.py bindings/*.py bindings/*/*.py)
 	$(VENV)/bin/galerkit --quiet warm-up
 	touch $(WARM)
 
@@ -40,7 +40,7 @@ mutants: $(WARM)
 
 # Optional distributed engine (galerkit[mpi]): MPICH and LAPACK from Debian,
 # PETSc and petsc4py built from their source distributions (no wheels exist;
-# 11-20 minutes on 2 cores the first time, then pip's wheel cache makes it
+# about 25 minutes on 2 cores the first time, then pip's wheel cache makes it
 # quick), mpi4py built against the same MPICH.
 SUDO      := $(shell [ "$$(id -u)" = 0 ] || echo sudo)
 MPI_DEBS  := libmpich-dev mpich liblapack-dev libblas-dev patchelf

@@ -166,13 +166,13 @@ class PartitionSetUp:
         self.degree = CASES[case][1]
 
     def time_prepare_parts(self, case, parts):
-        from galerkit.bindings.petsc_engine import prepare_parts
+        from galerkit.bindings.distributed.petsc_engine import prepare_parts
 
         for _ in prepare_parts(self.problem, self.degree, parts)[1]:  # cut every part
             pass
 
     def peakmem_prepare_parts(self, case, parts):
-        from galerkit.bindings.petsc_engine import prepare_parts
+        from galerkit.bindings.distributed.petsc_engine import prepare_parts
 
         for _ in prepare_parts(self.problem, self.degree, parts)[1]:  # cut every part
             pass

@@ -53,7 +53,7 @@ def serial(size):
 def worker(size):
     from mpi4py import MPI
 
-    from galerkit.bindings.petsc_engine import solve_distributed
+    from galerkit.bindings.distributed.petsc_engine import solve_distributed
 
     comm = MPI.COMM_WORLD
     t0 = time.perf_counter()

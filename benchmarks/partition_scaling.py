@@ -1,7 +1,7 @@
 """Partition quality for 2..64 parts, and a scaling estimate on paper.
 
 Partitions a P1 box of tetrahedra into 2, 4, ..., 64 parts without running
-that many ranks (:func:`galerkit.bindings.partition.partition_report`), prints
+that many ranks (:func:`galerkit.bindings.distributed.partition.partition_report`), prints
 balance, cut facets and halo sizes, fits the halo law
 ``ghosts per rank = c * (dofs per rank)^(2/3)`` (surface over volume of a
 compact part; common practice), and extrapolates memory per rank and
@@ -23,7 +23,7 @@ import numpy as np
 
 def main(argv=None):
     import galerkit as gk
-    from galerkit.bindings.partition import partition_cells, partition_report
+    from galerkit.bindings.distributed.partition import partition_cells, partition_report
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--size", type=int, default=60, help="cells per axis of the box")

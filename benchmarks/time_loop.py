@@ -18,11 +18,11 @@ here, never into the tests):
    and rebuilt every N steps (N = 1 means every step).  Seconds per step for
    each phase are printed, and the true residual of every solve is checked
    against the *current* matrix.
-2. y = K x: the matrix-free operator (bindings/operators.py) against the
+2. y = K x: the matrix-free operator (bindings/host/operators.py) against the
    assembled CSR matrix (SciPy's product), with the bytes each keeps, and
    the memory bandwidth measured in the same run (a NumPy copy) as the
    yardstick.
-3. Embedding overheads: the array-level API (bindings/embed.py, which
+3. Embedding overheads: the array-level API (bindings/host/embed.py, which
    validates each call) and the C entry point called through ctypes, against
    Assembler.stiffness(out=).
 """
@@ -38,8 +38,8 @@ import numpy as np
 from galerkit import (Assembler, Discretization, prepare_solver, structured_tetrahedra,
                       structured_triangles)
 from galerkit.boundary import DirichletElimination
-from galerkit.bindings import cfuncs, embed
-from galerkit.bindings.operators import MatrixFreeStiffness
+from galerkit.bindings.host import cfuncs, embed
+from galerkit.bindings.host.operators import MatrixFreeStiffness
 
 
 def median_time(fn, reps):

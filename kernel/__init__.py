@@ -31,6 +31,25 @@ from .assembly import Assembler
 from .functionals import (l2_error, h1_seminorm_error, energy_error, l2_norm, h1_norm,
                           h1_seminorm, energy, nested_error)
 from .problem import PoissonProblem, Solution
-from .convergence import convergence_study, ConvergenceTable
+from .convergence import convergence_study, RateTable
 from .estimators import ErrorEstimate, estimate_error
 from .bisection import refine_marked, min_angles
+
+#: Mesh files from Python: ``galerkit.read_mesh`` and ``galerkit.write_solution`` are
+#: ``galerkit.bindings.files.read_mesh`` / ``write_solution``.  This is the one place
+#: where the kernel reaches into bindings (tests/test_layout.py allows exactly this):
+#: a lazy attribute, so ``import galerkit`` itself never imports bindings or meshio.
+_FROM_FILES = ("read_mesh", "write_solution")
+
+
+def __getattr__(name):
+    if name in _FROM_FILES:
+        from galerkit.bindings import files
+        value = getattr(files, name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'galerkit' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_FROM_FILES))

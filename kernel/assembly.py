@@ -38,6 +38,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .coefficients import scalar_values, tensor_values
+from .regions import RegionCoefficient, region_coefficient
 from .dofs import Discretization
 from .elements import REFERENCE_FACETS, lagrange_element
 from .errors import InputError, MeshError, ResourceError
@@ -552,7 +553,7 @@ def _check_quadrature_degree(value, where):
 
 
 # ----------------------------------------------------------------------------
-# symbolic phase, as plain functions (the Assembler and bindings.embed use them)
+# symbolic phase, as plain functions (the Assembler and bindings.host.embed use them)
 # ----------------------------------------------------------------------------
 def symbolic_phase(dofs, n_dofs):
     """CSR pattern, cell order and position map of a validated cell -> dof table.
@@ -604,7 +605,7 @@ def chunk_plan(dofs, order, indptr, n_chunks):
 
 
 # ----------------------------------------------------------------------------
-# reference tables (cached, read-only; shared with bindings.embed)
+# reference tables (cached, read-only; shared with bindings.host.embed)
 # ----------------------------------------------------------------------------
 def _frozen(a):
     a = np.ascontiguousarray(a)
@@ -835,7 +836,7 @@ class Assembler:
     def _cell_coefficient(self, value, name, positive, degree):
         """(values, rule) for a scalar coefficient: rule None when constant."""
         m = self.mesh.n_cells
-        if callable(value):
+        if callable(value) or (isinstance(value, RegionCoefficient) and value.has_callable):
             rule = self._rule(degree)
             vals = scalar_values(
                 value, m, name, positive=positive,
@@ -871,6 +872,7 @@ class Assembler:
         """
         disc, mesh = self.disc, self.mesh
         d, k = mesh.dim, disc.degree
+        conductivity = region_coefficient(mesh, conductivity, "conductivity")
         tensor = tensor_values(conductivity, mesh.n_cells, d, "conductivity")
         if tensor is not None:
             kappa = np.ones((1, 1))
@@ -916,6 +918,8 @@ class Assembler:
         """
         disc, mesh = self.disc, self.mesh
         k = disc.degree
+        coefficient = region_coefficient(mesh, coefficient, "mass coefficient",
+                                         allow_tensor=False)
         deg = self.quadrature_degree if quadrature_degree is None else \
             _check_quadrature_degree(quadrature_degree, "mass")
         coef, rule = self._cell_coefficient(coefficient, "mass coefficient", False, deg)
@@ -947,10 +951,11 @@ class Assembler:
         """
         disc, mesh = self.disc, self.mesh
         k = disc.degree
+        source = region_coefficient(mesh, source, "source", allow_tensor=False)
         b = self._new_vector(out, method="load", inputs={"source": source})
         rows, cells = self._chunk_plan()
         arr = None
-        if not callable(source):
+        if not callable(source) and not isinstance(source, RegionCoefficient):
             try:
                 arr = np.asarray(source)
             except Exception:  # ragged lists and the like

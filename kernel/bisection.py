@@ -69,7 +69,7 @@ def refine_marked(mesh: Mesh, marked) -> Mesh:
     Returns
     -------
     Mesh
-        The refined, conforming mesh.  Facet tags follow the child facets;
+        The refined, conforming mesh.  Facet groups follow the child facets, cell regions the parent cell;
         ``parent`` (the coarse mesh), ``parent_cells`` (child -> parent cell),
         ``vertex_parents`` ((n_fine, 2): the coarse edge whose midpoint a new
         vertex is; ``(v, v)`` for an old vertex, which keeps its number) and
@@ -86,8 +86,8 @@ def refine_marked(mesh: Mesh, marked) -> Mesh:
     --------
     >>> from galerkit import structured_triangles
     >>> fine = refine_marked(structured_triangles(2, 2), [0])
-    >>> fine.n_cells, len(fine.facet_tags["left"]) >= 2
-    (11, True)
+    >>> fine.n_cells, len(fine.facet_groups["xmin"]) >= 2
+    (10, True)
     """
     if not isinstance(mesh, Mesh):
         raise InputError(f"refine_marked: expected a galerkit Mesh, got {type(mesh).__name__}")
@@ -186,7 +186,7 @@ def _facet_key(f, n):
 
 
 def _carry_facet_tags(coarse, fine, vparents, n):
-    if not coarse.facet_tags:
+    if not coarse.facet_groups:
         return
     ff = np.asarray(fine.boundary_facets, dtype=np.int64)
     # the coarse edge of each fine boundary facet: through its new vertex, if any
@@ -205,21 +205,18 @@ def _carry_facet_tags(coarse, fine, vparents, n):
         raise RuntimeError("refine_marked: a fine boundary facet has no coarse boundary facet "
                            "(internal error; please report with the mesh)")
     inside = np.zeros(coarse.boundary_facets.shape[0], dtype=bool)
-    for name, ids in coarse.facet_tags.items():
+    for name, ids in coarse.facet_groups.items():
         inside[:] = False
         inside[ids] = True
         fine.set_facet_tag(name, np.flatnonzero(inside[cid]))
 
 
 def _carry_cell_data(coarse, fine, parent_cells):
-    """Per-cell data that a mesh may carry (cell regions) follow the parent cell."""
-    for attr in ("cell_regions", "regions"):
-        val = getattr(coarse, attr, None)
-        if isinstance(val, np.ndarray) and val.shape[:1] == (coarse.n_cells,):
-            try:
-                setattr(fine, attr, val[parent_cells])
-            except AttributeError:  # a read-only property: leave it
-                pass
+    """Cell regions follow the parent cell."""
+    regions = getattr(coarse, "regions", None)
+    if isinstance(regions, np.ndarray) and regions.shape == (coarse.n_cells,):
+        names = getattr(coarse, "region_names", None)
+        fine.set_regions(np.asarray(regions)[parent_cells], dict(names) if names else None)
 
 
 def min_angles(mesh: Mesh) -> np.ndarray:

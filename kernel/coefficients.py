@@ -7,7 +7,12 @@ A coefficient reaches a kernel as validated arrays:
 * a callable ``f(x)``, ``x`` of shape (dim, n) -> values at the physical
   quadrature points, shape (m, n_quadrature_points);
 * for conductivities also a constant (d, d) or per-cell (m, d, d) symmetric
-  positive definite tensor.
+  positive definite tensor;
+* a per-region value (:class:`~galerkit.regions.RegionCoefficient`, from a
+  dict ``{region: value}``) -> per-cell values, or values at the quadrature
+  points when a region's value is a callable (each callable sees the points
+  of its own region's cells only); per-cell tensors when a region's value is
+  a tensor.
 
 Every value is checked to be finite (and positive, or SPD, where the
 physics requires it) before any kernel sees it; an error names the first
@@ -19,6 +24,7 @@ from __future__ import annotations
 import numpy as np
 
 from .errors import InputError
+from .regions import RegionCoefficient
 
 __all__ = ["evaluate_callable", "scalar_values", "tensor_values"]
 
@@ -122,6 +128,13 @@ def scalar_values(value, n_items, name, *, positive=False, points=None,
     -------
     ndarray, shape (1, 1), (n_items, 1) or (n_items, nq), float64, C-contiguous
     """
+    if isinstance(value, RegionCoefficient):
+        if value.has_tensor:
+            raise InputError(f"{name}: a per-region tensor is given where a scalar is needed")
+        x = points() if value.has_callable else None
+        v = value.cell_values(n_items, first_item, lambda: x, point_shape)
+        _validate(v, name, positive, x, unit, nonnegative, first_item)
+        return np.ascontiguousarray(v)
     if callable(value):
         x = points()
         v = evaluate_callable(value, x, name).reshape(point_shape)
@@ -175,7 +188,12 @@ def tensor_values(value, n_cells, dim, name):
     """A constant (d, d) or per-cell (m, d, d) SPD tensor -> (1|m, d, d).
 
     Returns ``None`` when ``value`` is not tensor-shaped (a scalar form).
+    A per-region value with a tensor in some region gives per-cell tensors.
     """
+    if isinstance(value, RegionCoefficient):
+        if not value.has_tensor:
+            return None
+        value = value.tensors(dim)
     if callable(value):
         return None
     try:

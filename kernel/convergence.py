@@ -19,7 +19,7 @@ from .errors import InputError
 from .functionals import energy_error, h1_seminorm_error, l2_error, nested_error
 from .refinement import refine_uniform
 
-__all__ = ["convergence_study", "ConvergenceTable", "mesh_size"]
+__all__ = ["convergence_study", "RateTable", "mesh_size"]
 
 
 def mesh_size(mesh) -> float:
@@ -33,7 +33,7 @@ def mesh_size(mesh) -> float:
 
 
 @dataclass
-class ConvergenceTable:
+class RateTable:
     """Rows of a convergence study; ``rows`` is a list of dicts."""
 
     degree: int
@@ -110,7 +110,7 @@ def convergence_study(make_problem, levels, degree=1, exact=None, exact_gradient
 
     Returns
     -------
-    ConvergenceTable
+    RateTable
     """
     from .problem import PoissonProblem
 
@@ -142,7 +142,7 @@ def convergence_study(make_problem, levels, degree=1, exact=None, exact_gradient
             progress(f"level {lev}: {sol.disc.n_dofs} dofs, {secs[-1]:.2f} s")
         if lev + 1 < levels:
             mesh = refine_uniform(mesh)
-    table = ConvergenceTable(degree=degree)
+    table = RateTable(degree=degree)
     l2, h1, en = [], [], []
     for i, sol in enumerate(sols):
         kappa = sol.problem.conductivity

@@ -25,7 +25,7 @@ import numpy as np
 from .coefficients import _real_array
 from .elements import SUPPORTED_DEGREES, interior_tuples, lagrange_element
 from .errors import InputError
-from .mesh import Mesh
+from .mesh import CELL_TYPE_PLURAL, Mesh
 from .topology import enumerate_entities, index_dtype
 
 __all__ = ["Discretization"]
@@ -86,7 +86,8 @@ class Discretization:
             a.flags.writeable = False
 
     def __repr__(self) -> str:
-        return (f"Discretization(P{self.degree} on {self.mesh.n_cells} {self.mesh.cell_type}s, "
+        return (f"Discretization(P{self.degree} on {self.mesh.n_cells} "
+                f"{CELL_TYPE_PLURAL[self.mesh.cell_type]}, "
                 f"{self.n_dofs} dofs)")
 
     @property

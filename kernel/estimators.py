@@ -85,6 +85,7 @@ import numpy as np
 from .coefficients import evaluate_callable, scalar_values, tensor_values
 from .errors import InputError, UnsupportedError
 from .quadrature import simplex_quadrature
+from .regions import RegionCoefficient
 from .topology import enumerate_entities
 
 __all__ = ["ErrorEstimate", "estimate_error", "cell_diameters"]
@@ -454,7 +455,7 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
         raise InputError(f"estimate_error: quadrature_degree must be an integer in 2..20, got "
                          f"{quadrature_degree!r}")
     kappa = problem.conductivity
-    if callable(kappa):
+    if callable(kappa) or (isinstance(kappa, RegionCoefficient) and kappa.has_callable):
         raise UnsupportedError(
             "estimate_error: the conductivity is a callable (it may vary inside cells); the "
             "bound needs a conductivity constant on each cell: give one value per cell "
@@ -618,14 +619,13 @@ def _source_moments(source, disc, X, area, cells, degree):
         lam = np.column_stack([1 - rule.points.sum(axis=1), rule.points])  # (nq, 3)
         if np.ndim(source) == 1 and np.shape(source) == (disc.n_dofs,):
             fv = np.asarray(source, dtype=np.float64)[cells] @ lam.T  # (m, nq)
-        elif callable(source):
-            x = np.einsum("ql,clj->jcq", lam, X).reshape(2, -1)
-            fv = evaluate_callable(source, x, "source").reshape(m, -1)
-            if not np.isfinite(fv).all():
-                c = int(np.flatnonzero(~np.isfinite(fv).all(axis=1))[0])
-                raise InputError(f"source: non-finite value in cell {c}")
         else:
-            fv = np.broadcast_to(scalar_values(source, m, "source")[:, :1], (m, rule.n_points))
+            nq = rule.n_points
+            fv = scalar_values(source, m, "source",
+                               points=lambda: np.einsum("ql,clj->jcq", lam, X).reshape(2, -1),
+                               point_shape=(m, nq))
+            fv = np.broadcast_to(fv, (m, nq)) if fv.shape[1] == nq else \
+                np.broadcast_to(fv[:, :1], (m, nq))
         return lam, fv
 
     rule = simplex_quadrature(2, degree)
@@ -636,7 +636,7 @@ def _source_moments(source, disc, X, area, cells, degree):
     osc = np.sqrt(np.maximum((w * (fv - mean[:, None]) ** 2).sum(axis=1), 0.0))
     fnorm2 = (w * fv**2).sum(axis=1)
     gap = 0.0
-    if callable(source):
+    if callable(source) or (isinstance(source, RegionCoefficient) and source.has_callable):
         rule2 = simplex_quadrature(2, min(degree + 2, 20) if degree < 20 else degree - 2)
         _, fv2 = values(rule2)
         w2 = 2 * area[:, None] * rule2.weights[None, :]

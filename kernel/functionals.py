@@ -16,6 +16,7 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
+from .regions import RegionCoefficient, region_coefficient
 from .coefficients import _real_array, _validate, evaluate_callable, scalar_values, tensor_values
 from .dofs import Discretization
 from .errors import InputError
@@ -133,6 +134,8 @@ def _integrate(disc, u, mode, exact=None, exact_gradient=None, conductivity=1.0,
     deg = 2 * disc.degree + 2 if quadrature_degree is None else int(quadrature_degree)
     rule = simplex_quadrature(d, deg)
     nq = rule.n_points
+    conductivity = region_coefficient(mesh, conductivity, "conductivity")
+    source = region_coefficient(mesh, source, "source", allow_tensor=False)
     V = disc.element.tabulate(rule.points)
     dV = disc.element.tabulate_gradients(rule.points)
     tensor = tensor_values(conductivity, m, d, "conductivity")
@@ -149,7 +152,7 @@ def _integrate(disc, u, mode, exact=None, exact_gradient=None, conductivity=1.0,
             f"conductivity: array of shape {np.shape(kappa_val)} given; expected a number, "
             f"one value per cell ({m},), a callable or a ({d}, {d}) / ({m}, {d}, {d}) tensor")
     source_dofs = None
-    if mode == _FUNCTIONAL and np.ndim(source):
+    if mode == _FUNCTIONAL and not isinstance(source, RegionCoefficient) and np.ndim(source):
         source_dofs = _check_u(disc, source, "source (a dof vector)")
     total = np.empty(m)
     for first in range(0, m, BLOCK_CELLS):
@@ -195,7 +198,7 @@ def _integrate(disc, u, mode, exact=None, exact_gradient=None, conductivity=1.0,
                                positive=True, first_item=first)
         src = np.zeros((1, 1))
         if mode == _FUNCTIONAL:
-            if np.ndim(source):  # a dof vector: its interpolant at the quadrature points
+            if not isinstance(source, RegionCoefficient) and np.ndim(source):  # a dof vector: its interpolant at the quadrature points
                 src = np.ascontiguousarray(source_dofs[disc.cell_dofs[first:last]] @ V.T)
             else:
                 src = scalar_values(source, nb_, "source", points=pts, point_shape=(nb_, nq),

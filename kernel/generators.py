@@ -1,7 +1,7 @@
 """Structured mesh generators for tests, studies and demos.
 
-Every generator tags its boundary facets: ``"left"``/``"right"`` (x = lower /
-upper), ``"bottom"``/``"top"`` (y), in 3D ``"front"``/``"back"`` (z), and
+Every generator tags its boundary facets: ``"xmin"``/``"xmax"`` (x = lower /
+upper), ``"ymin"``/``"ymax"`` (y), in 3D ``"zmin"``/``"zmax"`` (z), and
 ``"boundary"`` for all of them.  Vertices are numbered lexicographically
 (x fastest), so cells come out sorted by their smallest vertex.
 """
@@ -72,15 +72,21 @@ def _check_box(name, lower, upper, dim):
 
 def _tag_box(mesh, lower, upper, spacing):
     tol = 1e-8 * float(np.min(spacing))
-    names = [("left", "right"), ("bottom", "top"), ("front", "back")]
+    names = [("xmin", "xmax"), ("ymin", "ymax"), ("zmin", "zmax")]
     x = mesh.facet_midpoints()
     for axis in range(mesh.dim):
         for side, value in zip(names[axis], (lower[axis], upper[axis])):
             mask = np.abs(x[axis] - value) <= tol
             if mask.any():
                 mesh.set_facet_tag(side, np.flatnonzero(mask))
-    mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
-    return mesh
+    return mesh  # "boundary" (all of it) comes with every Mesh
+
+
+def _regions(mesh, regions, names):
+    if regions is not None:
+        mesh.set_regions(regions, names)
+    elif names is not None:
+        raise InputError("region_names given without regions; pass regions= as well")
 
 
 def _grid_points(counts, lower, upper):
@@ -90,7 +96,8 @@ def _grid_points(counts, lower, upper):
     return np.ascontiguousarray(np.stack([g.T.ravel() for g in grids], axis=1))
 
 
-def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0)) -> Mesh:
+def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0), *, regions=None,
+                         region_names=None) -> Mesh:
     """Rectangle split into ``nx * ny`` squares, two triangles each.
 
     Every square is cut by its diagonal from the lower-left to the
@@ -102,6 +109,9 @@ def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0)) -> Mesh:
         Number of squares along x and y.
     lower, upper : sequence of 2 floats
         Opposite corners of the rectangle.
+    regions, region_names : optional
+        Cell regions, as in :meth:`Mesh.set_regions` (ids, a callable of the
+        cell centroids, or ``{name: predicate}``).
 
     Returns
     -------
@@ -111,7 +121,7 @@ def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0)) -> Mesh:
     Examples
     --------
     >>> m = structured_triangles(2, 3)
-    >>> m.n_vertices, m.n_cells, len(m.facet_tags["boundary"])
+    >>> m.n_vertices, m.n_cells, len(m.facet_groups["boundary"])
     (12, 12, 10)
     """
     _check_counts("structured_triangles", (nx, ny))
@@ -126,10 +136,12 @@ def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0)) -> Mesh:
     cells[0::2] = np.stack([v00, v10, v11], axis=1)
     cells[1::2] = np.stack([v00, v11, v01], axis=1)
     mesh = Mesh(pts, cells, check_coincident=False)  # grid points are distinct
+    _regions(mesh, regions, region_names)
     return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny))
 
 
-def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.0)) -> Mesh:
+def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.0), *,
+                          regions=None, region_names=None) -> Mesh:
     """Box split into ``nx * ny * nz`` boxes, six conforming tetrahedra each.
 
     Each box is cut into the six tetrahedra around its main diagonal (Kuhn's
@@ -140,6 +152,8 @@ def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.
     ----------
     nx, ny, nz : int
     lower, upper : sequence of 3 floats
+    regions, region_names : optional
+        Cell regions, as in :meth:`Mesh.set_regions`.
 
     Returns
     -------
@@ -178,15 +192,17 @@ def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.
             cells[:, t, j] = col
     cells = cells.reshape(-1, 4)
     mesh = Mesh(pts, cells, check_coincident=False)  # grid points are distinct
+    _regions(mesh, regions, region_names)
     return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny, nz))
 
 
-def l_shaped_triangles(n) -> Mesh:
+def l_shaped_triangles(n, *, regions=None, region_names=None) -> Mesh:
     """The L-shaped domain (-1, 1)^2 without the quadrant x > 0, y < 0.
 
     Structured triangles of size ``1/n`` on each of the three unit squares.
-    Tags: ``"left"`` (x = -1), ``"right"`` (x = 1), ``"bottom"`` (y = -1),
-    ``"top"`` (y = 1), ``"reentrant"`` (the two edges meeting at the
+    ``regions``/``region_names`` as in :meth:`Mesh.set_regions`.
+    Tags: ``"xmin"`` (x = -1), ``"xmax"`` (x = 1), ``"ymin"`` (y = -1),
+    ``"ymax"`` (y = 1), ``"reentrant"`` (the two edges meeting at the
     re-entrant corner (0, 0)) and ``"boundary"``.
 
     Examples
@@ -206,13 +222,13 @@ def l_shaped_triangles(n) -> Mesh:
     x = mesh.facet_midpoints()
     tol = 1e-8 / n
     sides = {
-        "left": np.abs(x[0] + 1) <= tol,
-        "right": np.abs(x[0] - 1) <= tol,
-        "bottom": np.abs(x[1] + 1) <= tol,
-        "top": np.abs(x[1] - 1) <= tol,
+        "xmin": np.abs(x[0] + 1) <= tol,
+        "xmax": np.abs(x[0] - 1) <= tol,
+        "ymin": np.abs(x[1] + 1) <= tol,
+        "ymax": np.abs(x[1] - 1) <= tol,
     }
-    sides["reentrant"] = ~(sides["left"] | sides["right"] | sides["bottom"] | sides["top"])
+    sides["reentrant"] = ~(sides["xmin"] | sides["xmax"] | sides["ymin"] | sides["ymax"])
     for name, mask in sides.items():
         mesh.set_facet_tag(name, np.flatnonzero(mask))
-    mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
+    _regions(mesh, regions, region_names)
     return mesh

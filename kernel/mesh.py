@@ -17,6 +17,7 @@ import numba as nb
 import numpy as np
 
 from .errors import MeshError
+from .regions import DEFAULT_REGION, as_region_ids, interfaces as _interfaces
 from .topology import facet_topology, index_dtype
 
 __all__ = ["Mesh", "MeshQuality", "remove_unreferenced_vertices", "merge_duplicate_vertices",
@@ -300,6 +301,32 @@ def _as_points(points):
     return p
 
 
+def _planar(points, cells):
+    """Triangles given with a third coordinate that is zero everywhere (as mesh files
+    store 2D meshes) become 2D points; a non-zero z is refused (no surface meshes)."""
+    if points.shape[1] != 3:
+        return points
+    try:
+        shape = np.shape(cells)
+    except Exception:  # ragged: _cells_and_use names it
+        return points
+    if len(shape) != 2 or shape[1] != 3:
+        return points
+    extent = float(np.ptp(points[:, :2], axis=0).max()) if points.shape[0] > 1 else 1.0
+    z = np.abs(points[:, 2])
+    if z.size and z.max() > 1e-12 * max(extent, np.finfo(float).tiny):
+        i = int(np.argmax(z))
+        raise MeshError(
+            f"mesh points: triangles with z != 0 (vertex {i} has z = {float(points[i, 2])!r}); "
+            "galerkit solves 2D problems in the plane z = 0 and does not solve on surfaces "
+            "in 3D. Give the points a zero z column, or drop the z coordinate")
+    return np.ascontiguousarray(points[:, :2])
+
+
+#: plural of each cell type, for messages
+CELL_TYPE_PLURAL = {"triangle": "triangles", "tetrahedron": "tetrahedra"}
+
+
 def _as_cells(cells, n_vertices, dim):
     return _cells_and_use(cells, n_vertices, dim)[0]
 
@@ -519,12 +546,20 @@ class Mesh:
     Parameters
     ----------
     points : array_like, shape (n_vertices, d), d in {2, 3}
-        Vertex coordinates (converted to float64).
+        Vertex coordinates (converted to float64).  Triangles given with a z
+        column that is zero everywhere (as mesh files store 2D meshes) are 2D.
     cells : array_like, shape (n_cells, d + 1), integer
         Vertex indices of each cell.  Negatively oriented cells are
         re-oriented (two vertices swapped) and counted in ``n_reoriented``.
-    facet_tags : dict, optional
-        ``name -> boundary facet ids`` to start with.
+    facet_groups : dict, optional
+        ``name -> boundary facet ids`` to start with.  Every mesh has the group
+        ``"boundary"`` (all boundary facets) unless this dict gives its own
+        ``"boundary"``, as a mesh read from a file has.
+    regions : array_like (n_cells,), callable or dict, optional
+        Cell regions (materials); see :meth:`set_regions`.  Without them the
+        mesh has the one region ``"domain"`` (id 0).
+    region_names : dict name -> id or list of names, optional
+        Names of the region ids (see :meth:`set_regions`).
     check_coincident : bool, default True
         Refuse distinct vertices at one place (see
         :func:`merge_duplicate_vertices`).  The generators and
@@ -544,7 +579,7 @@ class Mesh:
         ``read_mesh(path, merge_duplicates=True)``), a facet
         shared by more than two cells, two cells on the same side of their
         shared facet (a folded mesh: an inverted cell overlapping its
-        neighbour), or ``facet_tags`` that is not a dict of valid ids.  The
+        neighbour), or ``facet_groups`` that is not a dict of valid ids.  The
         message names the first offending vertex or cell.
 
     Examples
@@ -554,16 +589,19 @@ class Mesh:
     (2, 'triangle', 2, 1.0)
     >>> m.boundary_facets.shape
     (4, 2)
+    >>> sorted(m.facet_groups), len(m.facet_groups["boundary"])
+    (['boundary'], 4)
     """
 
-    def __init__(self, points, cells, *, facet_tags=None, check_coincident=True):
-        p = _as_points(points)
+    def __init__(self, points, cells, *, facet_groups=None, check_coincident=True, regions=None,
+                 region_names=None):
+        p = _planar(_as_points(points), cells)
         n, d = p.shape
         c, used = _cells_and_use(cells, n, d)
-        if facet_tags is not None and not hasattr(facet_tags, "items"):
+        if facet_groups is not None and not hasattr(facet_groups, "items"):
             raise MeshError(
-                f"mesh facet_tags must be a dict of name -> boundary facet ids, got "
-                f"{type(facet_tags).__name__}")
+                f"mesh facet_groups must be a dict of name -> boundary facet ids, got "
+                f"{type(facet_groups).__name__}")
         if not used.all():
             unused = np.flatnonzero(used == 0)
             raise MeshError(
@@ -604,16 +642,20 @@ class Mesh:
         self.points = p
         self.cells = c
         self.cell_volumes = vol
-        self.facet_tags = {}
+        self.facet_groups = {}
+        self.set_regions(np.zeros(c.shape[0], dtype=np.int32) if regions is None else regions,
+                         {DEFAULT_REGION: 0} if regions is None else region_names)
         # hierarchy, filled in by refine_uniform
         self.parent = None
         self.parent_cells = None
         self.vertex_parents = None
         self.refinement_cells = None
         _ = self._facet_topology  # validates manifoldness
-        if facet_tags:
-            for name, ids in facet_tags.items():
+        if facet_groups:
+            for name, ids in facet_groups.items():
                 self.set_facet_tag(name, ids)
+        if "boundary" not in self.facet_groups:
+            self.set_facet_tag("boundary", np.arange(self.boundary_facets.shape[0]))
 
     # -- basic properties ----------------------------------------------------
     @property
@@ -633,8 +675,10 @@ class Mesh:
         return self.points.shape[0]
 
     def __repr__(self) -> str:
-        return (f"Mesh({self.n_vertices} vertices, {self.n_cells} {self.cell_type}s, "
-                f"tags {sorted(self.facet_tags)})")
+        reg = "" if len(self.region_names) == 1 else f", regions {list(self.region_names)}"
+        return (f"Mesh({self.n_vertices} vertices, {self.n_cells} "
+                f"{CELL_TYPE_PLURAL[self.cell_type]}, "
+                f"tags {sorted(self.facet_groups)}{reg})")
 
     # -- topology -------------------------------------------------------------
     @cached_property
@@ -720,7 +764,7 @@ class Mesh:
             )
         ids = np.unique(ids).astype(np.int64)
         ids.flags.writeable = False
-        self.facet_tags[name] = ids
+        self.facet_groups[name] = ids
         return ids
 
     def tag_boundary(self, name: str, predicate) -> np.ndarray:
@@ -773,11 +817,46 @@ class Mesh:
 
     def tagged_facets(self, tag: str) -> np.ndarray:
         """Facet ids of ``tag``; a clear error naming the known tags if missing."""
-        if not isinstance(tag, str) or tag not in self.facet_tags:
+        if not isinstance(tag, str) or tag not in self.facet_groups:
             raise MeshError(
-                f"mesh has no facet tag {tag!r}; known tags: {sorted(self.facet_tags)}"
+                f"mesh has no facet tag {tag!r}; known tags: {sorted(self.facet_groups)}"
             )
-        return self.facet_tags[tag]
+        return self.facet_groups[tag]
+
+    # -- regions -----------------------------------------------------------------
+    def set_regions(self, regions, names=None):
+        """Give every cell a region (material) id, with names.
+
+        Parameters
+        ----------
+        regions : array_like (n_cells,) of integers >= 0, callable, or dict
+            The ids; or ``regions(x)`` of the cell centroids ``x`` (dim,
+            n_cells) returning them; or ``{name: predicate(x) -> bool mask}``
+            (cells selected by no predicate form the region ``"domain"``).
+        names : dict name -> id, or list of names (name i for id i), optional
+            An id without a name is named by its number (``"3"``).
+
+        Sets ``regions`` (int32, read-only) and ``region_names`` (``name ->
+        id`` of the ids in use); see :mod:`galerkit.regions`.
+
+        Examples
+        --------
+        >>> from galerkit import structured_triangles
+        >>> m = structured_triangles(4, 1)
+        >>> m.set_regions(lambda x: (x[0] > 0.5).astype(int), ["steel", "foam"])
+        >>> m.regions.tolist(), m.region_names
+        ([0, 0, 0, 0, 1, 1, 1, 1], {'steel': 0, 'foam': 1})
+        """
+        ids, table = as_region_ids(self, regions, names)
+        self.regions = ids
+        self.region_names = table
+        self.__dict__.pop("interfaces", None)
+
+    @cached_property
+    def interfaces(self):
+        """Interior facets between regions: ``"a/b" -> Interface`` (see
+        :func:`galerkit.regions.interfaces`), usable for flux output."""
+        return _interfaces(self)
 
     # -- connectivity ----------------------------------------------------------
     def connected_components(self):

@@ -10,8 +10,8 @@ Solves ``-div(kappa grad u) = f`` in the domain with, per facet tag,
   ``alpha u_ext`` to the load) -- for example convective cooling with heat
   transfer coefficient alpha and ambient temperature u_ext.
 
-Untagged boundary is insulated (zero Neumann).  Two conditions on tags that
-share facets are refused (:func:`conflicting_conditions`) unless they are the
+Untagged boundary gets the homogeneous Neumann condition (no flux).  Two
+conditions on tags that share facets are refused (:func:`conflicting_conditions`) unless they are the
 same condition (same kind, same value); tags that meet only at a vertex or an
 edge of a facet are fine, and where Dirichlet tags share such dofs the tag
 given later wins.  A connected component of the mesh without
@@ -35,9 +35,11 @@ from .boundary import DirichletElimination, dirichlet_values
 from .compilation import PhaseSeconds
 from .dofs import Discretization
 from .errors import InputError, ProblemError
+from . import fluxes
 from .evaluation import cell_gradients, evaluate
 from .mesh import Mesh
 from .multigrid import p1_coarse_space
+from .regions import RegionCoefficient, region_coefficient
 from .solvers import SolveReport, choose_method, prepare_solver
 
 __all__ = ["PoissonProblem", "Solution", "conflicting_conditions"]
@@ -80,6 +82,26 @@ class Solution:
         """Gradient of the solution at each cell centroid, (n_cells, dim)."""
         return cell_gradients(self.disc, self.u)
 
+    def boundary_flux(self, tag, method="consistent"):
+        """Flux ``integral kappa grad u . n ds`` through a facet tag (positive
+        in); ``method`` "consistent" (residual-based) or "gradient".  See
+        :func:`galerkit.fluxes.boundary_flux`."""
+        return fluxes.boundary_flux(self, tag, method)
+
+    def interface_flux(self, name, method="consistent"):
+        """Heat flowing from region a into region b through ``mesh.interfaces``
+        entry ``"a/b"``; see :func:`galerkit.fluxes.interface_flux`."""
+        return fluxes.interface_flux(self, name, method)
+
+    def heat_balance(self):
+        """Sources, boundary flows and the imbalance (:class:`galerkit.fluxes.HeatBalance`)."""
+        return fluxes.heat_balance(self)
+
+    def region_statistics(self):
+        """Min, max, mean of u and the source integral per cell region
+        (:class:`galerkit.fluxes.RegionStatistics` list)."""
+        return fluxes.region_statistics(self)
+
 
 class PoissonProblem:
     """``-div(kappa grad u) = f`` with Dirichlet, Neumann and Robin data by tag.
@@ -87,8 +109,11 @@ class PoissonProblem:
     Parameters
     ----------
     mesh : Mesh
-    conductivity : float, ndarray (n_cells,), callable, or SPD tensor (d, d) / (n_cells, d, d)
-    source : float, callable or dof array
+    conductivity : float, ndarray (n_cells,), callable, SPD tensor (d, d) / (n_cells, d, d),
+        or a dict ``{region: value}`` of those per cell region (key a region
+        name or id of ``mesh.region_names``; ``"default"`` covers the regions
+        not named; a region without a value is an error naming it)
+    source : float, callable, dof array, or a dict ``{region: number or callable}``
     dirichlet : dict, ``tag -> value`` (number, callable, or dof array)
     neumann : dict, ``tag -> flux`` (number or callable; flux into the domain)
     robin : dict, ``tag -> (alpha, u_ext)``
@@ -107,8 +132,9 @@ class PoissonProblem:
         if not isinstance(mesh, Mesh):
             raise InputError(f"PoissonProblem: mesh must be a galerkit Mesh, got {type(mesh).__name__}")
         self.mesh = mesh
-        self.conductivity = conductivity
-        self.source = source
+        # per-region dicts are checked here (every region covered) and bound to the mesh
+        self.conductivity = region_coefficient(mesh, conductivity, "conductivity")
+        self.source = region_coefficient(mesh, source, "source", allow_tensor=False)
         for kind, table in (("dirichlet", dirichlet), ("neumann", neumann), ("robin", robin)):
             if table is not None and not hasattr(table, "items"):
                 raise ProblemError(
@@ -120,10 +146,10 @@ class PoissonProblem:
         for kind, table in (("dirichlet", self.dirichlet), ("neumann", self.neumann),
                             ("robin", self.robin)):
             for tag in table:
-                if not isinstance(tag, str) or tag not in mesh.facet_tags:
+                if not isinstance(tag, str) or tag not in mesh.facet_groups:
                     raise ProblemError(
                         f"{kind} condition on tag {tag!r}, but the mesh has no such facet tag; "
-                        f"known tags: {sorted(mesh.facet_tags)}")
+                        f"known tags: {sorted(mesh.facet_groups)}")
         for tag, value in self.robin.items():
             if not (isinstance(value, (tuple, list)) and len(value) == 2):
                 raise ProblemError(f"robin[{tag!r}] must be a pair (alpha, u_ext), got {value!r}")
@@ -358,7 +384,9 @@ class PoissonProblem:
     def _accurate_load(self, asm):
         """Load of the data with 4 more quadrature degrees; None when all data are
         constants or arrays (then the assembled load is already exact)."""
-        if not callable(self.source) and not any(callable(q) for q in self.neumann.values()):
+        varying = callable(self.source) or (isinstance(self.source, RegionCoefficient)
+                                            and self.source.has_callable)
+        if not varying and not any(callable(q) for q in self.neumann.values()):
             return None
         k = asm.disc.degree
         b = asm.load(self.source, quadrature_degree=asm.quadrature_degree + 4)
@@ -458,10 +486,10 @@ def conflicting_conditions(mesh, conditions, same=_same_value):
     --------
     >>> from galerkit import structured_triangles
     >>> m = structured_triangles(4, 4)
-    >>> conflicting_conditions(m, [("dirichlet", "left", 1.0),
+    >>> conflicting_conditions(m, [("dirichlet", "xmin", 1.0),
     ...                            ("dirichlet", "boundary", 0.0)])
     (0, 1, 4)
-    >>> conflicting_conditions(m, [("dirichlet", "left", 0.0),
+    >>> conflicting_conditions(m, [("dirichlet", "xmin", 0.0),
     ...                            ("dirichlet", "boundary", 0.0)]) is None
     True
     """

@@ -54,7 +54,8 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     Returns
     -------
     Mesh
-        The refined mesh, with facet tags carried over to child facets and
+        The refined mesh, with facet tags carried over to child facets, each
+        child in its parent's region (``regions``, ``region_names``), and
         the hierarchy attached: ``parent`` (the coarse mesh), ``parent_cells``
         (child cell -> parent cell, shape (m_fine,)), and ``vertex_parents``
         (shape (n_fine, 2): the two coarse vertices whose midpoint a vertex
@@ -64,7 +65,7 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     --------
     >>> from galerkit import structured_triangles
     >>> fine = refine_uniform(structured_triangles(2, 2))
-    >>> fine.n_cells, fine.n_vertices, len(fine.facet_tags["left"])
+    >>> fine.n_cells, fine.n_vertices, len(fine.facet_groups["xmin"])
     (32, 25, 4)
     """
     if not isinstance(mesh, Mesh):
@@ -95,14 +96,15 @@ def refine_uniform(mesh: Mesh) -> Mesh:
     parents = np.ascontiguousarray(parents[order])
     children = new_id[children].astype(cells.dtype)
     # midpoints of distinct edges of a valid (unfolded) mesh are distinct points
-    fine = Mesh(points, children, check_coincident=False)
+    fine = Mesh(points, children, check_coincident=False,
+                regions=np.repeat(mesh.regions, n_children), region_names=mesh.region_names)
     fine.parent = mesh
     fine.parent_cells = np.repeat(np.arange(mesh.n_cells), n_children)
     fine.vertex_parents = parents
     fine.refinement_cells = children
     for a in (fine.parent_cells, fine.vertex_parents, fine.refinement_cells):
         a.flags.writeable = False
-    if mesh.facet_tags:
+    if mesh.facet_groups:
         _carry_tags(mesh, fine, parents, n_children)
     return fine
 
@@ -142,7 +144,7 @@ def _carry_tags(coarse: Mesh, fine: Mesh, vertex_parents, n_children):
         raise RuntimeError("refine_uniform: a child boundary facet has no parent boundary "
                            "facet (internal error; please report with the mesh)")
     in_tag = np.zeros(coarse.boundary_facets.shape[0], dtype=bool)
-    for name, ids in coarse.facet_tags.items():
+    for name, ids in coarse.facet_groups.items():
         in_tag[:] = False
         in_tag[ids] = True
         sel = np.flatnonzero(in_tag[coarse_facet])

@@ -19,7 +19,7 @@ without it.
 
     python tests/bad_input_cases.py              # JSON list on stdout
     python tests/bad_input_cases.py --messages   # JSON with the messages too
-    python tests/bad_input_cases.py --markdown   # the table in README.md
+    python tests/bad_input_cases.py --markdown   # the table in docs/bad-input.md
 
 The name of the case being run is written to stderr first, so a crash names it.
 """
@@ -242,9 +242,9 @@ def _():
             [[0, 1, 2, 3], [0, 1, 2, 4], [0, 1, 2, 5]])
 
 
-@case("facet_tags not a dict", M, "MeshError")
+@case("facet_groups not a dict", M, "MeshError")
 def _():
-    gk.Mesh(SQUARE, SQUARE_CELLS, facet_tags=["left"])
+    gk.Mesh(SQUARE, SQUARE_CELLS, facet_groups=["xmin"])
 
 
 @case("facet tag with no facets", M, "MeshError")
@@ -279,7 +279,7 @@ def _():
 
 @case("tag_boundary predicate of the wrong shape", M, "MeshError")
 def _():
-    gk.structured_triangles(2, 2).tag_boundary("left", lambda x: x[0] < 0.1 + 0 * x)
+    gk.structured_triangles(2, 2).tag_boundary("xmin", lambda x: x[0] < 0.1 + 0 * x)
 
 
 @case("remove_unreferenced_vertices with an index out of range", M, "MeshError")
@@ -492,7 +492,7 @@ def _():
 @case("boundary_load flux read from the out= vector", A, "InputError")
 def _():
     b = np.zeros(asm().n_dofs)
-    asm().boundary_load("left", b[:len(mesh2().tagged_facets("left"))], out=b)
+    asm().boundary_load("xmin", b[:len(mesh2().tagged_facets("xmin"))], out=b)
 
 
 @case("per-cell conductivity read from the out= matrix's own data", A, "InputError")
@@ -509,17 +509,17 @@ def _():
 
 @case("NaN boundary flux", A, "InputError")
 def _():
-    asm().boundary_load("left", np.nan)
+    asm().boundary_load("xmin", np.nan)
 
 
 @case("boundary_mass per-facet array of the wrong length", A, "InputError")
 def _():
-    asm().boundary_mass("left", np.ones(99))
+    asm().boundary_mass("xmin", np.ones(99))
 
 
 @case("fractional quadrature degree", A, "InputError")
 def _():
-    asm().boundary_load("left", lambda x: x[0], quadrature_degree=2.5)
+    asm().boundary_load("xmin", lambda x: x[0], quadrature_degree=2.5)
 
 
 # ----------------------------------------------------------------------------
@@ -729,32 +729,32 @@ def _():
 
 @case("boundary conditions not a dict", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), dirichlet=[("left", 0.0)])
+    gk.PoissonProblem(mesh2(), dirichlet=[("xmin", 0.0)])
 
 
 @case("Robin data not a pair", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), robin={"left": 1.0})
+    gk.PoissonProblem(mesh2(), robin={"xmin": 1.0})
 
 
 @case("negative Robin coefficient", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), robin={"left": (-2.0, 0.0)})
+    gk.PoissonProblem(mesh2(), robin={"xmin": (-2.0, 0.0)})
 
 
 @case("Robin coefficient negative at a quadrature point", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), robin={"left": (lambda x: x[1] - 0.5, 0.0)}).solve()
+    gk.PoissonProblem(mesh2(), robin={"xmin": (lambda x: x[1] - 0.5, 0.0)}).solve()
 
 
 @case("NaN Robin coefficient", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), robin={"left": (np.nan, 0.0)})
+    gk.PoissonProblem(mesh2(), robin={"xmin": (np.nan, 0.0)})
 
 
 @case("pure Neumann with incompatible data", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), source=1.0, neumann={"left": 0.5}).solve()
+    gk.PoissonProblem(mesh2(), source=1.0, neumann={"xmin": 0.5}).solve()
 
 
 @case("Robin coefficient zero everywhere, incompatible data", P, "ProblemError")
@@ -804,7 +804,7 @@ def _():
 
 @case("Dirichlet values near 1e308 (lifting overflows)", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), dirichlet={"left": 1e308, "right": -1e308}).solve()
+    gk.PoissonProblem(mesh2(), dirichlet={"xmin": 1e308, "xmax": -1e308}).solve()
 
 
 @case("coordinates near 1e-160 (cell volumes underflow)", P, "MeshError")
@@ -819,14 +819,14 @@ def _():
     gk.Assembler(gk.Discretization(gk.Mesh(mesh2().points * 1e150, mesh2().cells), 1))
 
 
-@case("two fixed values on overlapping tags (left inside boundary)", P, "ProblemError")
+@case("two Dirichlet values on overlapping tags (xmin inside boundary)", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), dirichlet={"left": 1.0, "boundary": 0.0})
+    gk.PoissonProblem(mesh2(), dirichlet={"xmin": 1.0, "boundary": 0.0})
 
 
-@case("a flux on a tag inside a fixed tag", P, "ProblemError")
+@case("a Neumann condition on a tag inside a Dirichlet tag", P, "ProblemError")
 def _():
-    gk.PoissonProblem(mesh2(), dirichlet={"boundary": 0.0}, neumann={"left": 2.0})
+    gk.PoissonProblem(mesh2(), dirichlet={"boundary": 0.0}, neumann={"xmin": 2.0})
 
 
 # ----------------------------------------------------------------------------
@@ -981,27 +981,27 @@ def _():
 
 
 # ----------------------------------------------------------------------------
-# embedding entry points (galerkit.bindings.embed)
+# embedding entry points (galerkit.bindings.host.embed)
 # ----------------------------------------------------------------------------
-E = "embedding (bindings.embed)"
+E = "embedding (bindings.host.embed)"
 
 
 def _plan():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     return _get("plan", lambda: embed.pattern(np.ascontiguousarray(mesh2().cells))[2])
 
 
 @case("embed.pattern: 1-based cells (a Fortran host)", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     embed.pattern(np.ascontiguousarray(mesh2().cells) + 1)
 
 
 @case("embed.pattern: 1-based cells with points (index n_vertices)", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     embed.pattern(np.ascontiguousarray(mesh2().cells) + 1, points=np.ascontiguousarray(
         mesh2().points))
@@ -1009,7 +1009,7 @@ def _():
 
 @case("embed.l2_error: a P2 vector without cell_dofs", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     d2 = disc(2, 2)
     embed.l2_error(np.ascontiguousarray(mesh2().points), np.ascontiguousarray(mesh2().cells),
@@ -1018,7 +1018,7 @@ def _():
 
 @case("embed.h1_seminorm_error: u longer than the dofs of cell_dofs", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     d2 = disc(2, 2)
     embed.h1_seminorm_error(np.ascontiguousarray(mesh2().points),
@@ -1028,7 +1028,7 @@ def _():
 
 @case("embed.pattern: vertex index out of range", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     cells = np.array(mesh2().cells, dtype=np.int32)
     cells[3, 1] = 10**6
@@ -1037,21 +1037,21 @@ def _():
 
 @case("embed.stiffness: data array too short", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     embed.stiffness(np.ascontiguousarray(mesh2().points), _plan(), np.empty(5))
 
 
 @case("embed.stiffness: float32 points", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     embed.stiffness(mesh2().points.astype(np.float32), _plan(), np.empty(_plan()["nnz"]))
 
 
 @case("embed.stiffness: plan with a tampered position map", E, "InputError")
 def _():
-    from galerkit.bindings import embed
+    from galerkit.bindings.host import embed
 
     plan = dict(_plan())
     pm = plan["position_map"].copy()
@@ -1064,26 +1064,26 @@ def _():
 # ----------------------------------------------------------------------------
 # the distributed engine's set-up (no MPI needed)
 # ----------------------------------------------------------------------------
-X = "distributed set-up (bindings.partition, petsc_engine)"
+X = "distributed set-up (bindings.distributed.partition, petsc_engine)"
 
 
 @case("partition_cells: more parts than cells", X, "InputError")
 def _():
-    from galerkit.bindings.partition import partition_cells
+    from galerkit.bindings.distributed.partition import partition_cells
 
     partition_cells(mesh2(), mesh2().n_cells + 1)
 
 
 @case("dof_layout: parts of the wrong length", X, "InputError")
 def _():
-    from galerkit.bindings.partition import dof_layout
+    from galerkit.bindings.distributed.partition import dof_layout
 
     dof_layout(disc(), np.zeros(3, dtype=np.int32), 2)
 
 
 @case("dof_layout: part number out of range", X, "InputError")
 def _():
-    from galerkit.bindings.partition import dof_layout
+    from galerkit.bindings.distributed.partition import dof_layout
 
     parts = np.zeros(mesh2().n_cells, dtype=np.int32)
     parts[4] = 7
@@ -1092,14 +1092,14 @@ def _():
 
 @case("dof_layout: a part without cells", X, "InputError")
 def _():
-    from galerkit.bindings.partition import dof_layout
+    from galerkit.bindings.distributed.partition import dof_layout
 
     dof_layout(disc(), np.zeros(mesh2().n_cells, dtype=np.int32), 2)
 
 
 @case("petsc engine: incompatible pure Neumann data", X, "ProblemError")
 def _():
-    from galerkit.bindings.petsc_engine import assemble_part, constrain_part, neumann_sums, \
+    from galerkit.bindings.distributed.petsc_engine import assemble_part, constrain_part, neumann_sums, \
         prepare_parts
 
     header, payloads = prepare_parts(gk.PoissonProblem(mesh2(), source=1.0), 1, 1)
@@ -1109,7 +1109,7 @@ def _():
 
 @case("petsc engine: a lambda as coefficient (cannot be sent to ranks)", X, "InputError")
 def _():
-    from galerkit.bindings.petsc_engine import prepare_parts
+    from galerkit.bindings.distributed.petsc_engine import prepare_parts
 
     prepare_parts(gk.PoissonProblem(mesh2(), source=lambda x: x[0],
                                     dirichlet={"boundary": 0.0}), 1, 2)
@@ -1117,7 +1117,7 @@ def _():
 
 @case("petsc engine: PETSc options without a leading dash", X, "InputError")
 def _():
-    from galerkit.bindings.petsc_engine import parse_petsc_options
+    from galerkit.bindings.distributed.petsc_engine import parse_petsc_options
 
     parse_petsc_options("ksp_type cg")
 
@@ -1131,16 +1131,16 @@ C = "problem files and command line"
 def _problem(extra=""):
     import tomllib
 
-    from galerkit.bindings.problemfile import parse_problem
+    from galerkit.bindings.command.problemfile import parse_problem
 
     text = '[mesh]\ngenerator = "square"\ncells = 3\n' + extra
     return parse_problem(tomllib.loads(text), source="case.toml", text=text)
 
 
-@case("problem file: a fixed entry and a flux entry on overlapping tags", C, "InputError")
+@case("problem file: a dirichlet entry and a neumann entry on overlapping tags", C, "InputError")
 def _():
-    _problem('[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n'
-             '[[boundary]]\ntag = "top"\nkind = "flux"\nflux = 1\n')
+    _problem('[[boundary]]\ntag = "boundary"\nkind = "dirichlet"\nu = 0\n'
+             '[[boundary]]\ntag = "ymax"\nkind = "neumann"\ninflow = 1\n')
 
 
 @case("problem file: [mesh] merge_duplicates with a generator", C, "InputError")
@@ -1158,7 +1158,7 @@ def _job_folder():
 def _confined(text):
     import tomllib
 
-    from galerkit.bindings.problemfile import parse_problem
+    from galerkit.bindings.command.problemfile import parse_problem
 
     return parse_problem(tomllib.loads(text), source="job/case.toml", text=text,
                          base=_job_folder(), stay_in_folder=True)
@@ -1202,7 +1202,7 @@ def run_all(echo=False):
 
 
 def markdown(results):
-    """The table in README.md: one row per case."""
+    """The table in docs/bad-input.md: one row per case."""
     rows = ["| input class | bad input | you get | example message |",
             "|---|---|---|---|"]
     for name, category, _, cls, msg in results:

@@ -104,8 +104,8 @@ def case(name):
         # comparison is with the serial engine on the same problem
         mesh = gk.structured_triangles(20, 16)
         problem = gk.PoissonProblem(mesh, conductivity=conductivity_mixed, source=1.0,
-                                    dirichlet={"left": 0.0}, neumann={"top": 0.5},
-                                    robin={"right": (2.0, robin_ambient)})
+                                    dirichlet={"xmin": 0.0}, neumann={"ymax": 0.5},
+                                    robin={"xmax": (2.0, robin_ambient)})
         return problem, 2, None, None
     if name == "pure-neumann":
         # du/dn = 0 on the whole boundary and zero mean: the free constant is
@@ -121,7 +121,7 @@ CASES = ("square-p1", "square-p2", "cube-p1", "cube-p2", "mixed-conditions", "pu
 def run_all(folder):
     from mpi4py import MPI
 
-    from galerkit.bindings.petsc_engine import solve_distributed, write_pieces
+    from galerkit.bindings.distributed.petsc_engine import solve_distributed, write_pieces
 
     comm = MPI.COMM_WORLD
     folder = Path(folder)

@@ -511,27 +511,27 @@ def test_boundary_mass_and_load_integrate_over_tagged_facets(dim, k):
     # load = int_tag g (exact values by SymPy on the face y = 1)
     mesh = small_mesh(dim, 3 if dim == 2 else 2)
     asm = Assembler(Discretization(mesh, k))
-    assert abs(asm.boundary_mass("top").sum() - 1.0) <= 1e-13
+    assert abs(asm.boundary_mass("ymax").sum() - 1.0) <= 1e-13
     assert abs(asm.boundary_mass("boundary").sum() - 2.0 * dim) <= 1e-13
-    assert abs(asm.boundary_mass("left", 2.0).sum() - 2.0) <= 1e-13
+    assert abs(asm.boundary_mass("xmin", 2.0).sum() - 2.0) <= 1e-13
     g = (lambda x: 1 + x[0] ** 2 * x[1]) if dim == 2 else (
         lambda x: 1 + x[0] ** 2 * x[1] + x[2])
     on_top = g([SX[0], 1, SX[2]] if dim == 3 else [SX[0], 1])
     other = [(SX[0], 0, 1)] + ([(SX[2], 0, 1)] if dim == 3 else [])
     exact = float(sy.integrate(sy.expand(on_top), *other))
-    assert abs(asm.boundary_load("top", g).sum() - exact) <= 1e-13
-    assert abs(asm.boundary_load("top", 3.0).sum() - 3.0) <= 1e-13
+    assert abs(asm.boundary_load("ymax", g).sum() - exact) <= 1e-13
+    assert abs(asm.boundary_load("ymax", 3.0).sum() - 3.0) <= 1e-13
     # the facet mass applied to the interpolant of g integrates it too
     disc = asm.disc
     one = np.ones(disc.n_dofs)
     gl = lambda x: 1 + x[0] - 0.5 * x[dim - 1]  # linear: interpolated exactly
     exact_l = float(sy.integrate(sy.expand(gl([SX[0], 1, SX[2]][:dim])), *other))
-    assert abs(one @ asm.boundary_mass("top") @ disc.interpolate(gl) - exact_l) <= 1e-13
+    assert abs(one @ asm.boundary_mass("ymax") @ disc.interpolate(gl) - exact_l) <= 1e-13
     # a facet mass is symmetric (to rounding) and only touches dofs on the
     # tagged facets
-    B = asm.boundary_mass("top")
+    B = asm.boundary_mass("ymax")
     assert abs(B - B.T).max() <= 1e-15 * abs(B).max()
-    on = disc.boundary_dofs("top")
+    on = disc.boundary_dofs("ymax")
     touched = np.unique(B.tocoo().coords[0][B.tocoo().data != 0])
     assert set(touched.tolist()) <= set(on.tolist())
 
@@ -556,16 +556,16 @@ def test_out_reassembles_in_place(dim, k):
     assert np.array_equal(M2.toarray(), asm.mass(KAPPA[dim]).toarray())
     # mass into a stiffness matrix of the same Assembler: same pattern, allowed
     assert np.array_equal(asm.mass(out=K).toarray(), asm.mass().toarray())
-    B = asm.boundary_mass("top")
-    B2 = asm.boundary_mass("top", 5.0, out=B)
+    B = asm.boundary_mass("ymax")
+    B2 = asm.boundary_mass("ymax", 5.0, out=B)
     assert B2 is B
-    assert np.array_equal(B2.toarray(), asm.boundary_mass("top", 5.0).toarray())
+    assert np.array_equal(B2.toarray(), asm.boundary_mass("ymax", 5.0).toarray())
     b = np.full(asm.n_dofs, np.nan)
     b2 = asm.load(KAPPA[dim], out=b)
     assert b2 is b and np.array_equal(b, asm.load(KAPPA[dim]))
     g = np.full(asm.n_dofs, 7.0)  # out= for a facet load starts from zero
-    assert asm.boundary_load("top", 2.0, out=g) is g
-    assert np.array_equal(g, asm.boundary_load("top", 2.0))
+    assert asm.boundary_load("ymax", 2.0, out=g) is g
+    assert np.array_equal(g, asm.boundary_load("ymax", 2.0))
 
 
 def test_out_rejects_foreign_or_modified_matrices():
@@ -580,11 +580,11 @@ def test_out_rejects_foreign_or_modified_matrices():
         asm.stiffness(out=K.toarray())              # not a sparse matrix
     with pytest.raises(InputError, match="out="):
         asm.mass(out=p2.mass())                     # another Assembler
-    pruned = asm.boundary_mass("top").copy()
+    pruned = asm.boundary_mass("ymax").copy()
     pruned.eliminate_zeros()                        # pattern changed
     assert pruned.nnz < asm.nnz
     with pytest.raises(InputError, match="sparsity pattern"):
-        asm.boundary_mass("top", out=pruned)
+        asm.boundary_mass("ymax", out=pruned)
     single = sps.csr_array((K.data.astype(np.float32), K.indices, K.indptr), shape=K.shape)
     with pytest.raises(InputError, match="float64"):
         asm.stiffness(out=single)
@@ -593,7 +593,7 @@ def test_out_rejects_foreign_or_modified_matrices():
     with pytest.raises(InputError, match="out="):
         asm.load(1.0, out=np.zeros(asm.n_dofs, dtype=np.int64))
     with pytest.raises(InputError, match="out="):
-        asm.boundary_load("top", out=[0.0] * asm.n_dofs)
+        asm.boundary_load("ymax", out=[0.0] * asm.n_dofs)
 
 
 # ----------------------------------------------------------------------------
@@ -699,7 +699,7 @@ def test_wrong_shape_coefficients_rejected(asm2):
     with pytest.raises(InputError, match="shape"):
         asm2.load(np.ones(m + 1))
     with pytest.raises(InputError, match="shape"):
-        asm2.boundary_load("top", np.ones(2))
+        asm2.boundary_load("ymax", np.ones(2))
     with pytest.raises(InputError):
         asm2.stiffness("1.0")
     with pytest.raises(InputError):
@@ -714,7 +714,7 @@ def test_callable_with_wrong_output_rejected(asm2):
     with pytest.raises(InputError, match="returned shape"):
         asm2.load(lambda x: x)
     with pytest.raises(InputError, match="returned shape"):
-        asm2.boundary_mass("top", lambda x: x[0][:1])
+        asm2.boundary_mass("ymax", lambda x: x[0][:1])
     with pytest.raises(InputError, match="callable failed"):
         asm2.stiffness(lambda x: x[5])
 
@@ -737,4 +737,4 @@ def test_out_aliasing_an_input_is_refused_and_a_separate_out_gives_the_fresh_res
                                          r"conductivity"):
         asm.stiffness(K.data[:asm.mesh.n_cells], out=K)
     with pytest.raises(InputError, match=r"Assembler\.boundary_mass: out= shares memory"):
-        asm.boundary_mass("left", K.data[:len(asm.mesh.tagged_facets("left"))], out=K)
+        asm.boundary_mass("xmin", K.data[:len(asm.mesh.tagged_facets("xmin"))], out=K)

@@ -54,11 +54,11 @@ def test_refinement_is_conforming_nested_and_keeps_tags_and_angles():
         vp = b.vertex_parents[a.n_vertices:]
         assert np.allclose(b.points[a.n_vertices:], a.points[vp].mean(axis=1))
         # tags: same total length, child facets inside the parent's tag
-        for name in a.facet_tags:
+        for name in a.facet_groups:
             def length(m, ids):
                 f = m.boundary_facets[ids]
                 return np.linalg.norm(m.points[f[:, 0]] - m.points[f[:, 1]], axis=1).sum()
-            la, lb = length(a, a.facet_tags[name]), length(b, b.facet_tags[name])
+            la, lb = length(a, a.facet_groups[name]), length(b, b.facet_groups[name])
             assert lb == pytest.approx(la, rel=1e-13), name
             coarse_len[name] = lb
         # isosceles right triangles stay similar (Mitchell 1989): 45 degrees
@@ -106,3 +106,11 @@ def test_bad_marks_and_tetrahedra_are_refused():
     with pytest.raises(UnsupportedError, match="Maubach"):
         gk.refine_marked(gk.structured_tetrahedra(1, 1, 1), [0])
     assert gk.refine_marked(mesh, []).n_cells == mesh.n_cells
+
+
+def test_cell_regions_follow_the_parent_cell():
+    mesh = gk.structured_triangles(4, 4)
+    mesh.set_regions(lambda x: (x[0] > 0.5).astype(int), ["left_part", "right_part"])
+    fine = gk.refine_marked(mesh, [0, 5, 17])
+    assert np.array_equal(fine.regions, mesh.regions[fine.parent_cells])
+    assert fine.region_names == mesh.region_names

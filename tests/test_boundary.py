@@ -35,7 +35,7 @@ def reference(A, fixed, g, b):
 def test_reduce_matches_scipy_fancy_indexing(dim, degree):
     # SciPy fancy indexing as the reference
     asm, A = stiffness(dim, degree)
-    fixed = asm.disc.boundary_dofs(["left", "top"])
+    fixed = asm.disc.boundary_dofs(["xmin", "ymax"])
     rng = np.random.default_rng(dim * 10 + degree)
     g = rng.standard_normal(fixed.size)
     b = rng.standard_normal(A.shape[0])
@@ -56,7 +56,7 @@ def test_reduce_matches_scipy_fancy_indexing(dim, degree):
 def test_dofs_in_any_order_with_duplicates():
     # SciPy fancy indexing as the reference; values follow the order the dofs were given
     asm, A = stiffness(2, 2)
-    fixed = asm.disc.boundary_dofs("right")
+    fixed = asm.disc.boundary_dofs("xmax")
     rng = np.random.default_rng(0)
     shuffled = rng.permutation(fixed)
     g_by_dof = dict(zip(fixed.tolist(), rng.standard_normal(fixed.size)))
@@ -100,7 +100,7 @@ def test_expand_restores_the_full_vector():
 
 def test_rereduction_in_place_shares_memory():
     asm, A = stiffness(2, 2)
-    fixed = asm.disc.boundary_dofs("bottom")
+    fixed = asm.disc.boundary_dofs("ymin")
     elim = DirichletElimination(A, fixed)
     R = elim.reduce_matrix(A)
     data = R.data
@@ -128,7 +128,7 @@ def test_no_dirichlet_dofs_is_the_identity_and_all_dofs_leave_nothing():
 
 def test_wrong_pattern_raises():
     asm, A = stiffness(2, 2)
-    elim = DirichletElimination(A, asm.disc.boundary_dofs("left"))
+    elim = DirichletElimination(A, asm.disc.boundary_dofs("xmin"))
     # another mesh: other shape
     _, other = stiffness(2, 2, n=4)
     with pytest.raises(InputError, match="pattern"):
@@ -154,7 +154,7 @@ def test_wrong_pattern_raises():
     R = elim.reduce_matrix(A)
     with pytest.raises(InputError, match="out="):
         elim.reduce_matrix(A, out=sp.csr_array(R.toarray()[:-1, :-1]))
-    foreign = DirichletElimination(A, asm.disc.boundary_dofs("bottom")).reduce_matrix(A)
+    foreign = DirichletElimination(A, asm.disc.boundary_dofs("ymin")).reduce_matrix(A)
     assert foreign.shape == R.shape  # same size, other pattern
     with pytest.raises(InputError, match="out="):
         elim.reduce_matrix(A, out=foreign)
@@ -176,7 +176,7 @@ def test_bad_sizes_raise():
 
 def test_dirichlet_values_from_number_callable_and_dof_array():
     disc = Discretization(structured_triangles(3, 3), 2)
-    dofs = disc.boundary_dofs("top")
+    dofs = disc.boundary_dofs("ymax")
     np.testing.assert_array_equal(dirichlet_values(disc, 2.0, dofs), np.full(dofs.size, 2.0))
     x = disc.dof_points[dofs]
     np.testing.assert_allclose(dirichlet_values(disc, lambda p: p[0] - p[1], dofs),

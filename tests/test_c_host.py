@@ -1,5 +1,5 @@
-"""Specification of the C entry points (galerkit.bindings.cfuncs, bindings/c/galerkit.h)
-and of the embedded-Python C host (bindings/c/example_host.c).
+"""Specification of the C entry points (galerkit.bindings.host.cfuncs, bindings/host/c/galerkit.h)
+and of the embedded-Python C host (bindings/host/c/example_host.c).
 
 References used below (each test names its own):
 
@@ -32,10 +32,10 @@ import pytest
 
 from galerkit import (Assembler, Discretization, h1_seminorm_error, l2_error,
                       structured_tetrahedra, structured_triangles)
-from galerkit.bindings import cfuncs
+from galerkit.bindings.host import cfuncs
 from galerkit.mesh import Mesh
 
-C_DIR = Path(__file__).resolve().parents[1] / "bindings" / "c"
+C_DIR = Path(__file__).resolve().parents[1] / "bindings" / "host" / "c"
 
 
 def ptr(a):

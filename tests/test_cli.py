@@ -1,4 +1,4 @@
-"""Specification of the command line (galerkit.bindings.cli).
+"""Specification of the command line (galerkit.bindings.command.cli).
 
 End-to-end runs of every subcommand in a subprocess on small problems, and
 the exit codes and messages of bad input (in-process through ``main``, which
@@ -18,8 +18,8 @@ import meshio
 import numpy as np
 import pytest
 
-from galerkit.bindings.cli import CAUTION, main
-from galerkit.bindings.plots import PNG_SIGNATURE
+from galerkit.bindings.command.cli import CAUTION, main
+from galerkit.bindings.files.plots import PNG_SIGNATURE
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 SCRIPT = Path(sys.executable).with_name("galerkit")
@@ -27,7 +27,7 @@ SCRIPT = Path(sys.executable).with_name("galerkit")
 
 def run(*args, cwd=None):
     """Run the command line in a subprocess; (exit code, stdout, stderr)."""
-    cmd = [str(SCRIPT)] if SCRIPT.exists() else [sys.executable, "-m", "galerkit.bindings.cli"]
+    cmd = [str(SCRIPT)] if SCRIPT.exists() else [sys.executable, "-m", "galerkit.bindings.command.cli"]
     p = subprocess.run(cmd + [str(a) for a in args], capture_output=True, text=True, cwd=cwd,
                        timeout=600)
     return p.returncode, p.stdout, p.stderr
@@ -49,8 +49,8 @@ degree = 2
 value = "2*pi^2*sin(pi*x)*sin(pi*y)"
 [[boundary]]
 tag = "boundary"
-kind = "fixed"
-value = 0
+kind = "dirichlet"
+u = 0
 [exact]
 solution = "sin(pi*x)*sin(pi*y)"
 gradient = ["pi*cos(pi*x)*sin(pi*y)", "pi*sin(pi*x)*cos(pi*y)"]
@@ -229,7 +229,7 @@ def test_mixed_dimension_mesh_exits_2(tmp_path, capsys):
     ("[mesh]\ngenerator = 'square'\n[source]\nvalue = '1 +* x'\n", ["source.value", "^"]),
     ("[mesh]\ngenerator = 'square'\n[discretization]\ndegree = 1.5\n",
      ["discretization.degree: must be an integer"]),
-    ("[mesh]\ngenerator = 'square'\n[[boundary]]\ntag = 'inlet'\nkind = 'fixed'\nvalue = 1\n",
+    ("[mesh]\ngenerator = 'square'\n[[boundary]]\ntag = 'inlet'\nkind = 'dirichlet'\nu = 1\n",
      ["boundary[1].tag: the mesh has no facet tag 'inlet'", "its tags are"]),
     ("[mesh]\ngenerator = 'square'\n[source]\nvalue = \"__import__('os')\"\n",
      ["source.value", "^"]),
@@ -285,7 +285,7 @@ def test_flags_after_the_subcommand_and_quiet_output(tmp_path, capsys, square):
 # -- the petsc engine's flags, without MPI ----------------------------------------
 def test_petsc_engine_without_petsc4py_says_how_to_install_it(tmp_path):
     code = ("import sys; sys.modules['petsc4py'] = None; sys.modules['mpi4py'] = None; "
-            "from galerkit.bindings.cli import main; "
+            "from galerkit.bindings.command.cli import main; "
             f"sys.exit(main(['solve', {str(EXAMPLES / 'block-3d.toml')!r}, '--engine', "
             f"'petsc', '--output', {str(tmp_path)!r}]))")
     p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
@@ -326,7 +326,7 @@ def test_the_json_error_object_names_the_kind_of_error(tmp_path, capsys):
 
 
 def test_memory_and_recursion_errors_exit_2_with_one_line(monkeypatch, capsys, tmp_path):
-    from galerkit.bindings import cli
+    from galerkit.bindings.command import cli
 
     def exhausted(args):
         raise MemoryError
@@ -345,8 +345,8 @@ def test_memory_and_recursion_errors_exit_2_with_one_line(monkeypatch, capsys, t
 def test_control_characters_of_the_input_are_echoed_escaped(tmp_path, capsys):
     path = tmp_path / "esc.toml"
     path.write_text('title = "\\u001b[2Jred\\u009b"\n[mesh]\ngenerator = "square"\ncells = 2\n'
-                    '[output]\nvtu = false\n[[boundary]]\ntag = "left"\nkind = "fixed"\n'
-                    'value = 0\n')
+                    '[output]\nvtu = false\n[[boundary]]\ntag = "xmin"\nkind = "dirichlet"\n'
+                    'u = 0\n')
     assert main(["solve", str(path)]) == 0
     out = capsys.readouterr().out
     assert "\x1b" not in out and "\x9b" not in out
@@ -378,7 +378,7 @@ def test_overlapping_tags_are_noted_by_mesh_info_and_by_solve(tmp_path, capsys):
     assert note in capsys.readouterr().out
     problem = tmp_path / "p.toml"
     problem.write_text('[mesh]\nfile = "m.msh"\n[output]\nvtu = false\n[[boundary]]\n'
-                       'tag = "11"\nkind = "fixed"\nvalue = 0\n')
+                       'tag = "11"\nkind = "dirichlet"\nu = 0\n')
     assert main(["--json", "solve", str(problem)]) == 0
     assert any(note in n for n in json.loads(capsys.readouterr().out)["notes"])
 
@@ -422,3 +422,45 @@ def test_stay_in_folder_lets_a_problem_inside_its_folder_run(tmp_path, capsys):
     (tmp_path / "p.toml").write_text(SQUARE.replace('units = "K"', 'folder = "results"'))
     assert main(["--quiet", "solve", str(tmp_path / "p.toml"), "--stay-in-folder"]) == 0
     assert (tmp_path / "results" / "p.vtu").exists()
+
+
+def _mean_ratio_triangle(p):
+    """Mean-ratio quality of a triangle, 4 sqrt(3) area / (sum of squared edges):
+    1 for the equilateral triangle (Bank & Smith, "Mesh smoothing using a posteriori
+    error estimates", SIAM J. Numer. Anal. 34, 1997; computed here independently)."""
+    a, b, c = p
+    area = 0.5 * abs((b[0] - a[0]) * (c[1] - a[1]) - (b[1] - a[1]) * (c[0] - a[0]))
+    edges = sum(float(np.sum((u - v) ** 2)) for u, v in ((a, b), (b, c), (c, a)))
+    return 4.0 * np.sqrt(3.0) * area / edges
+
+
+def test_mesh_info_gives_quality_quantiles_and_the_worst_cells_with_ids_and_places(tmp_path,
+                                                                                    capsys):
+    import galerkit as gk
+
+    mesh = gk.structured_triangles(4, 4)
+    pts = np.array(mesh.points)
+    centre = int(np.flatnonzero((np.abs(pts - 0.5) < 1e-12).all(axis=1))[0])
+    pts[centre] = (0.68, 0.61)  # squeezes the cells around the centre vertex
+    cells = np.asarray(mesh.cells)
+    meshio.write(tmp_path / "m.vtu", meshio.Mesh(np.column_stack([pts, np.zeros(len(pts))]),
+                                                 [("triangle", cells)]))
+    expected = np.array([_mean_ratio_triangle(pts[c]) for c in cells])
+    assert main(["--json", "mesh-info", str(tmp_path / "m.vtu"), "--worst", "3"]) == 0
+    info = json.loads(capsys.readouterr().out)
+    # quantiles by rank (the 'lower' rule): the value of the cell at floor(p (n - 1))
+    ranked = np.sort(expected)
+    for name, p in (("min", 0.0), ("1%", 0.01), ("5%", 0.05), ("50%", 0.5)):
+        assert info["quality_quantiles"][name] == pytest.approx(
+            ranked[int(np.floor(p * (len(ranked) - 1)))], rel=1e-12)
+    worst = info["worst_cells"]
+    assert [w["cell"] for w in worst] == np.argsort(expected, kind="stable")[:3].tolist()
+    assert all(centre in cells[w["cell"]] for w in worst)
+    for w in worst:
+        assert w["quality"] == pytest.approx(expected[w["cell"]], rel=1e-12)
+        assert w["centroid"] == pytest.approx(pts[cells[w["cell"]]].mean(axis=0).tolist())
+    assert "quality_histogram" not in info
+    assert main(["mesh-info", str(tmp_path / "m.vtu"), "--worst", "2"]) == 0
+    out = capsys.readouterr().out
+    assert "quality quantiles: min" in out and "the 2 worst cells" in out
+    assert f"cell {worst[0]['cell']:>9d}" in out

@@ -111,7 +111,7 @@ def _write_cut_msh(path):
         np.c_[pts, np.zeros(len(pts))], [("line", lines), ("triangle", cells)],
         cell_data={"gmsh:physical": [groups, np.full(len(cells), 3)],
                    "gmsh:geometrical": [groups, np.full(len(cells), 3)]},
-        field_data={"ends": np.array([1, 1]), "bottom": np.array([2, 1]),
+        field_data={"ends": np.array([1, 1]), "ymin": np.array([2, 1]),
                     "plate": np.array([3, 2])}), file_format="gmsh22", binary=False)
     return len(pts) - on_line.size, len(ends), len(bottom)
 
@@ -125,9 +125,9 @@ def test_read_mesh_merge_duplicates_joins_the_file_and_its_tags_follow(tmp_path)
         read_mesh(tmp_path / "cut.msh")
     mesh = read_mesh(tmp_path / "cut.msh", merge_duplicates=True)
     assert mesh.n_vertices == n_merged and mesh.connected_components()[0] == 1
-    assert len(mesh.facet_tags["ends"]) == n_ends
-    assert len(mesh.facet_tags["bottom"]) == n_bottom == N
-    facet_y = mesh.points[mesh.boundary_facets[mesh.facet_tags["bottom"]], 1]
+    assert len(mesh.facet_groups["ends"]) == n_ends
+    assert len(mesh.facet_groups["ymin"]) == n_bottom == N
+    facet_y = mesh.points[mesh.boundary_facets[mesh.facet_groups["ymin"]], 1]
     assert np.all(facet_y == 0.0)
     # -u'' = 1, u = 0 at the ends (the file's own tag): the maximum 1/8 (module docstring)
     sol = gk.PoissonProblem(mesh, 1.0, 1.0, {"ends": 0.0}).solve(1)
@@ -135,12 +135,12 @@ def test_read_mesh_merge_duplicates_joins_the_file_and_its_tags_follow(tmp_path)
 
 
 def test_problem_file_key_merge_duplicates_joins_the_mesh_file(tmp_path):
-    from galerkit.bindings.problemfile import load_problem
+    from galerkit.bindings.command.problemfile import load_problem
     from galerkit.errors import InputError
 
     n_merged, _, _ = _write_cut_msh(tmp_path / "cut.msh")
     text = ('[mesh]\nfile = "cut.msh"\n{}[source]\nvalue = 1\n'
-            '[[boundary]]\ntag = "ends"\nkind = "fixed"\nvalue = 0\n')
+            '[[boundary]]\ntag = "ends"\nkind = "dirichlet"\nu = 0\n')
     (tmp_path / "refused.toml").write_text(text.format(""))
     with pytest.raises(InputError, match=r"line 2: mesh\.file: .*same place.*merge_duplicates"):
         load_problem(tmp_path / "refused.toml")

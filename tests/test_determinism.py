@@ -41,7 +41,7 @@ def _mesh(dim):
     h = 0.5 / (4 if dim == 2 else 2)
     p[inner] += 0.15 * h * rng.uniform(-1, 1, size=(int(inner.sum()), dim))
     mesh = gk.Mesh(p, m.cells)
-    for name, ids in m.facet_tags.items():
+    for name, ids in m.facet_groups.items():
         mesh.set_facet_tag(name, ids)
     return mesh
 
@@ -70,8 +70,8 @@ def _everything(dim, k):
         "mass c(x)": asm.mass(_kappa).data,
         "load f(x)": asm.load(lambda x: np.exp(x[0]) * x[1]),
         "load dofs": asm.load(disc.interpolate(_kappa)),
-        "boundary mass": asm.boundary_mass("left", _kappa).data,
-        "boundary load": asm.boundary_load("top", _kappa),
+        "boundary mass": asm.boundary_mass("xmin", _kappa).data,
+        "boundary load": asm.boundary_load("ymax", _kappa),
     }
     elim = DirichletElimination(K, disc.boundary_dofs("boundary"))
     Af, bf = elim.reduce(K, asm.load(1.0), np.zeros(elim.dofs.size))
@@ -101,8 +101,8 @@ def test_one_and_two_threads_give_identical_bits(dim, k, threads):
 def _poisson(dim, method):
     mesh = _mesh(dim)
     problem = gk.PoissonProblem(mesh, conductivity=_kappa, source=lambda x: 1 + x[0],
-                                dirichlet={"left": 0.0}, neumann={"top": 0.5},
-                                robin={"right": (2.0, 1.0)})
+                                dirichlet={"xmin": 0.0}, neumann={"ymax": 0.5},
+                                robin={"xmax": (2.0, 1.0)})
     sol = problem.solve(degree=2, method=method, rtol=1e-10)
     assert sol.report.converged and sol.report.method == method
     return sol.u.tobytes(), sol.report.iterations

@@ -26,7 +26,7 @@ import numpy as np
 import pytest
 
 import galerkit as gk
-from galerkit.bindings.petsc_engine import petsc_available
+from galerkit.bindings.distributed.petsc_engine import petsc_available
 
 import mpi_cases
 
@@ -166,11 +166,11 @@ def test_pieces_and_parallel_index_hold_the_solution(runs, n, name):
 
 
 def _cli(n, *args, cwd=ROOT):
-    return _mpiexec(n, [sys.executable, "-m", "galerkit.bindings.cli", *args], cwd=cwd)
+    return _mpiexec(n, [sys.executable, "-m", "galerkit.bindings.command.cli", *args], cwd=cwd)
 
 
 def test_command_line_runs_a_problem_file_on_two_ranks(tmp_path):
-    serial = subprocess.run([sys.executable, "-m", "galerkit.bindings.cli", "solve",
+    serial = subprocess.run([sys.executable, "-m", "galerkit.bindings.command.cli", "solve",
                              ROOT / "examples" / "block-3d.toml", "--json", "--output",
                              tmp_path / "serial"], capture_output=True, text=True, cwd=ROOT)
     assert serial.returncode == 0, serial.stderr
@@ -212,10 +212,10 @@ def test_command_line_bad_problem_is_reported_once_and_exits_2(tmp_path):
 
 def test_command_line_pure_neumann_file_matches_the_serial_engine(tmp_path):
     f = tmp_path / "balanced.toml"
-    f.write_text('[mesh]\ngenerator = "square"\ncells = 6\n[[boundary]]\ntag = "left"\n'
-                 'kind = "flux"\nflux = 1\n[[boundary]]\ntag = "right"\nkind = "flux"\n'
-                 'flux = -1\n')
-    serial = subprocess.run([sys.executable, "-m", "galerkit.bindings.cli", "solve", f,
+    f.write_text('[mesh]\ngenerator = "square"\ncells = 6\n[[boundary]]\ntag = "xmin"\n'
+                 'kind = "neumann"\ninflow = 1\n[[boundary]]\ntag = "xmax"\nkind = "neumann"\n'
+                 'inflow = -1\n')
+    serial = subprocess.run([sys.executable, "-m", "galerkit.bindings.command.cli", "solve", f,
                              "--json", "--output", tmp_path / "s"], capture_output=True,
                             text=True, cwd=ROOT)
     assert serial.returncode == 0, serial.stderr
@@ -234,7 +234,7 @@ def test_an_error_on_one_rank_only_stops_every_rank(tmp_path):
     # holding them fails in its assembly, the other would not; both must stop
     f = tmp_path / "half.toml"
     f.write_text('[mesh]\ngenerator = "square"\ncells = 8\n[source]\nvalue = "sqrt(x - 0.5)"\n'
-                 '[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n')
+                 '[[boundary]]\ntag = "boundary"\nkind = "dirichlet"\nu = 0\n')
     code, out, err = _cli(2, "solve", f, "--engine", "petsc", "--output", tmp_path / "out")
     assert code == 2
     assert err.count("the value is not finite") == 1, err
@@ -281,7 +281,7 @@ def test_bad_arguments_are_refused_on_every_rank(tmp_path):
     script.write_text(
         "from mpi4py import MPI\n"
         "import galerkit as gk\n"
-        "from galerkit.bindings.petsc_engine import solve_distributed\n"
+        "from galerkit.bindings.distributed.petsc_engine import solve_distributed\n"
         "rank = MPI.COMM_WORLD.rank\n"
         "p = gk.PoissonProblem(gk.structured_triangles(4, 4), dirichlet={'boundary': 0.0}) "
         "if rank == 0 else None\n"

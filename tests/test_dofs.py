@@ -36,7 +36,7 @@ def perturbed(dim, n, seed, shuffle=False):
     pts[interior] += rng.uniform(-0.2 * h, 0.2 * h, size=(int(interior.sum()), dim))
     cells = np.array(ref.cells, dtype=np.int64)
     if not shuffle:
-        return Mesh(pts, cells, facet_tags=dict(ref.facet_tags))
+        return Mesh(pts, cells, facet_groups=dict(ref.facet_groups))
     relabel = rng.permutation(len(pts))  # old vertex -> new vertex
     new_pts = np.empty_like(pts)
     new_pts[relabel] = pts
@@ -50,7 +50,7 @@ def perturbed(dim, n, seed, shuffle=False):
 
 
 def _tag_sides(mesh):
-    names = [("left", "right"), ("bottom", "top"), ("front", "back")]
+    names = [("xmin", "xmax"), ("ymin", "ymax"), ("zmin", "zmax")]
     for axis in range(mesh.dim):
         for name, value in zip(names[axis], (0.0, 1.0)):
             mesh.tag_boundary(name, lambda x, a=axis, v=value: np.abs(x[a] - v) < 1e-12)
@@ -244,8 +244,8 @@ def test_finite_element_functions_are_continuous_across_interior_facets(dim, shu
 
 
 # -- boundary dofs -------------------------------------------------------------------------
-SIDES = {"left": (0, 0.0), "right": (0, 1.0), "bottom": (1, 0.0), "top": (1, 1.0),
-         "front": (2, 0.0), "back": (2, 1.0)}
+SIDES = {"xmin": (0, 0.0), "xmax": (0, 1.0), "ymin": (1, 0.0), "ymax": (1, 1.0),
+         "zmin": (2, 0.0), "zmax": (2, 1.0)}
 
 
 @pytest.mark.parametrize("dim,shuffle,degree", CASES, ids=IDS)
@@ -262,14 +262,14 @@ def test_boundary_dofs_of_a_side_are_exactly_the_dofs_on_that_side(dim, shuffle,
     on_boundary = np.flatnonzero(np.any((x < 1e-12) | (x > 1 - 1e-12), axis=1))
     np.testing.assert_array_equal(disc.boundary_dofs(), on_boundary)
     # a list of tags gives the union
-    both = disc.boundary_dofs(["left", "bottom"])
-    union = np.union1d(disc.boundary_dofs("left"), disc.boundary_dofs("bottom"))
+    both = disc.boundary_dofs(["xmin", "ymin"])
+    union = np.union1d(disc.boundary_dofs("xmin"), disc.boundary_dofs("ymin"))
     np.testing.assert_array_equal(both, union)
     # count on one side: the dofs of a P_k (d-1)-simplex mesh; for a
     # straight side of a 2D square with n edges that is k n + 1
     if dim == 2:
-        n_edges = len(disc.mesh.facet_tags["left"])
-        assert len(disc.boundary_dofs("left")) == degree * n_edges + 1
+        n_edges = len(disc.mesh.facet_groups["xmin"])
+        assert len(disc.boundary_dofs("xmin")) == degree * n_edges + 1
 
 
 def test_boundary_dofs_with_an_unknown_tag_raise_naming_the_known_tags():

@@ -1,5 +1,5 @@
-"""Specification of the array-level API (galerkit.bindings.embed) and the matrix-free
-operator (galerkit.bindings.operators).
+"""Specification of the array-level API (galerkit.bindings.host.embed) and the matrix-free
+operator (galerkit.bindings.host.operators).
 
 References used below (each test names its own):
 
@@ -22,8 +22,8 @@ import scipy.sparse.linalg as spla
 
 from galerkit import (Assembler, Discretization, h1_seminorm_error, l2_error,
                       structured_tetrahedra, structured_triangles)
-from galerkit.bindings import embed
-from galerkit.bindings.operators import MatrixFreeStiffness
+from galerkit.bindings.host import embed
+from galerkit.bindings.host.operators import MatrixFreeStiffness
 from galerkit.errors import InputError
 
 

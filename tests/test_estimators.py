@@ -192,8 +192,8 @@ def test_oscillation_terms_equal_their_closed_forms():
     expected = np.sqrt(((h / PI) ** 2 * var / kappa).sum())
     assert est.terms["oscillation"] == pytest.approx(expected, rel=1e-10)
     # boundary term: facets on x = 1, each of length 1/2 with g = y varying by 1/2
-    bf = mesh.boundary_facets[mesh.facet_tags["e"]]
-    cells = mesh.boundary_facet_cells[mesh.facet_tags["e"]]
+    bf = mesh.boundary_facets[mesh.facet_groups["e"]]
+    cells = mesh.boundary_facet_cells[mesh.facet_groups["e"]]
     L = np.linalg.norm(mesh.points[bf[:, 0]] - mesh.points[bf[:, 1]], axis=1)
     dg = np.abs(mesh.points[bf[:, 0], 1] - mesh.points[bf[:, 1], 1])
     c2 = h[cells] ** 2 * L / area[cells] * (1 / PI**2 + 1 / PI) / kappa
@@ -245,3 +245,17 @@ def test_indicators_square_sum_to_the_bound_and_are_deterministic():
     assert np.array_equal(a.indicators, b.indicators)
     assert a.indicators.shape == (sol.mesh.n_cells,)
     assert np.sqrt((a.indicators**2).sum()) == pytest.approx(a.bound, rel=1e-14)
+
+
+def test_region_conductivity_gives_the_same_bound_as_per_cell_values():
+    # a conductivity given by region equals the same values given per cell
+    case = Kellogg()
+    mesh = gk.structured_triangles(8, 8, (-1, -1), (1, 1))
+    mesh.set_regions(lambda x: (x[0] * x[1] > 0).astype(int), ["soft", "hard"])
+    kap = case.kappa_at(mesh.points[mesh.cells].mean(axis=1).T)
+    mesh.tag_boundary("all", lambda x: np.ones(x.shape[1], bool))
+    a = gk.estimate_error(gk.PoissonProblem(mesh, conductivity=kap, neumann={"all": case.flux})
+                          .solve())
+    b = gk.estimate_error(gk.PoissonProblem(mesh, conductivity={"soft": 1.0, "hard": case.R},
+                                            neumann={"all": case.flux}).solve())
+    assert b.bound == pytest.approx(a.bound, rel=1e-8)

@@ -1,6 +1,6 @@
 """Coefficient expressions: text in math notation -> vectorised NumPy callable.
 
-Specification of ``galerkit.bindings.expressions``: values agree with direct
+Specification of ``galerkit.bindings.command.expressions``: values agree with direct
 NumPy evaluation, constants broadcast, every refused construct raises
 ``InputError`` with a caret under the offending character, and random text
 never raises anything but ``InputError``.
@@ -19,8 +19,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from galerkit.bindings import expressions
-from galerkit.bindings.expressions import (
+from galerkit.bindings.command import expressions
+from galerkit.bindings.command.expressions import (
     FUNCTION_NAMES,
     MAX_DEPTH,
     MAX_LENGTH,

@@ -25,7 +25,7 @@ from galerkit.errors import InputError, MeshError
 # ----------------------------------------------------------------------------
 # helpers: meshes with Gmsh physical groups, written by meshio
 # ----------------------------------------------------------------------------
-SIDE_IDS = {"left": 11, "right": 12, "bottom": 13, "top": 13}  # top+bottom: one group
+SIDE_IDS = {"xmin": 11, "xmax": 12, "ymin": 13, "ymax": 13}  # top+bottom: one group
 NAMES = {"inlet": [11, 1], "outlet": [12, 1], "plate": [1, 2]}  # 13 has no name
 
 
@@ -38,8 +38,8 @@ def square_with_groups(n=4):
     pts = np.column_stack([m.points, np.zeros(m.n_vertices)])
     cells, phys, geo = [], [], []
     dim_tags = np.tile([2, 1], (m.n_vertices, 1))  # interior nodes: the surface
-    for k, side in enumerate(("left", "right", "bottom", "top")):
-        f = m.boundary_facets[m.facet_tags[side]]
+    for k, side in enumerate(("xmin", "xmax", "ymin", "ymax")):
+        f = m.boundary_facets[m.facet_groups[side]]
         cells.append(("line", f))
         phys.append(np.full(len(f), SIDE_IDS[side]))
         geo.append(np.full(len(f), k + 1))
@@ -68,20 +68,20 @@ def test_gmsh_physical_groups_come_back_as_named_tags_with_hand_counted_facets(t
     path = write_msh(tmp_path / "square.msh", square_with_groups(4), fmt, binary)
     mesh = read_mesh(path)
     assert mesh.dim == 2 and mesh.n_cells == 32
-    counts = {k: len(v) for k, v in mesh.facet_tags.items()}
+    counts = {k: len(v) for k, v in mesh.facet_groups.items()}
     assert counts == {"inlet": 4, "outlet": 4, "13": 8, "boundary": 16}
     x = mesh.facet_midpoints()
-    assert np.allclose(x[0, mesh.facet_tags["inlet"]], 0.0)
-    assert np.allclose(x[0, mesh.facet_tags["outlet"]], 1.0)
-    assert np.allclose(np.sort(np.unique(x[1, mesh.facet_tags["13"]])), [0.0, 1.0])
+    assert np.allclose(x[0, mesh.facet_groups["inlet"]], 0.0)
+    assert np.allclose(x[0, mesh.facet_groups["outlet"]], 1.0)
+    assert np.allclose(np.sort(np.unique(x[1, mesh.facet_groups["13"]])), [0.0, 1.0])
 
 
 def test_tetrahedra_take_their_tags_from_triangles_of_the_file(tmp_path):
     # source: counted by hand, 2 x 2 squares x 2 triangles = 8 triangles per face of a
     # 2 x 2 x 2 box; meshio writes the file (Gmsh 2.2).
     m = gk.structured_tetrahedra(2, 2, 2)
-    floor = m.boundary_facets[m.facet_tags["front"]]  # z = 0
-    others = m.boundary_facets[np.setdiff1d(m.facet_tags["boundary"], m.facet_tags["front"])]
+    floor = m.boundary_facets[m.facet_groups["zmin"]]  # z = 0
+    others = m.boundary_facets[np.setdiff1d(m.facet_groups["boundary"], m.facet_groups["zmin"])]
     cells = [("triangle", floor), ("triangle", others), ("line", np.array([[0, 1]])),
              ("vertex", np.array([[0]])), ("tetra", np.asarray(m.cells))]
     phys = [np.full(len(floor), 5), np.full(len(others), 6), np.array([9]), np.array([9]),
@@ -90,7 +90,7 @@ def test_tetrahedra_take_their_tags_from_triangles_of_the_file(tmp_path):
                      field_data={"floor": np.array([5, 2]), "edge": np.array([9, 1])})
     mesh = read_mesh(write_msh(tmp_path / "box.msh", mm, "gmsh22"))
     assert mesh.dim == 3
-    assert {k: len(v) for k, v in mesh.facet_tags.items()} == {"floor": 8, "6": 40,
+    assert {k: len(v) for k, v in mesh.facet_groups.items()} == {"floor": 8, "6": 40,
                                                                "boundary": 48}
 
 
@@ -102,7 +102,7 @@ def test_vtu_with_integer_ids_gives_tags_named_by_id(tmp_path):
     path = tmp_path / "square.vtu"
     meshio.write(str(path), mm)
     mesh = read_mesh(path)
-    assert {k: len(v) for k, v in mesh.facet_tags.items()} == {"11": 3, "12": 3, "13": 6,
+    assert {k: len(v) for k, v in mesh.facet_groups.items()} == {"11": 3, "12": 3, "13": 6,
                                                                "boundary": 12}
 
 
@@ -123,8 +123,8 @@ def test_xdmf_without_tags_gets_the_boundary_tag_and_drops_the_zero_z_column(tmp
     path.write_text(XDMF)
     mesh = read_mesh(path)
     assert mesh.dim == 2 and mesh.n_cells == 2
-    assert sorted(mesh.facet_tags) == ["boundary"]
-    assert len(mesh.facet_tags["boundary"]) == 4
+    assert sorted(mesh.facet_groups) == ["boundary"]
+    assert len(mesh.facet_groups["boundary"]) == 4
     assert mesh.cell_volumes.sum() == pytest.approx(1.0, rel=1e-14)
 
 
@@ -149,7 +149,7 @@ def test_a_group_named_boundary_in_the_file_is_kept(tmp_path):
     mm = square_with_groups(2)
     mm.field_data = {"boundary": np.array([11, 1])}
     mesh = read_mesh(write_msh(tmp_path / "b.msh", mm, "gmsh22"))
-    assert len(mesh.facet_tags["boundary"]) == 2  # the file's group, not the whole boundary
+    assert len(mesh.facet_groups["boundary"]) == 2  # the file's group, not the whole boundary
 
 
 def test_interface_facets_are_left_out_of_their_tag_with_a_warning(tmp_path):
@@ -157,14 +157,14 @@ def test_interface_facets_are_left_out_of_their_tag_with_a_warning(tmp_path):
     pts = np.column_stack([m.points, np.zeros(m.n_vertices)])
     # the vertical interior line x = 0.5 (vertices 1-4-7 of the 3 x 3 grid)
     interface = np.array([[1, 4], [4, 7]])
-    left = m.boundary_facets[m.facet_tags["left"]]
+    left = m.boundary_facets[m.facet_groups["xmin"]]
     mm = meshio.Mesh(pts, [("line", interface), ("line", left), ("triangle", np.asarray(m.cells))],
                      cell_data={"gmsh:physical": [np.full(2, 3), np.full(2, 4), np.ones(8, int)]},
                      field_data={"middle": np.array([3, 1]), "wall": np.array([4, 1])})
     path = write_msh(tmp_path / "i.msh", mm, "gmsh22")
     with pytest.warns(UserWarning, match="'middle'.*inside the domain"):
         mesh = read_mesh(path)
-    assert "middle" not in mesh.facet_tags and len(mesh.facet_tags["wall"]) == 2
+    assert "middle" not in mesh.facet_groups and len(mesh.facet_groups["wall"]) == 2
 
 
 # ----------------------------------------------------------------------------
@@ -316,7 +316,7 @@ def test_patch_test_gradient_and_flux_are_exact_in_3d(tmp_path):
 def test_tag_arrays_mark_exactly_the_vertices_of_the_tagged_facets(tmp_path):
     sol = solved(1)
     back = meshio.read(write_solution(tmp_path / "t.vtu", sol))
-    left = back.point_data[TAG_ARRAY_PREFIX + "left"]
+    left = back.point_data[TAG_ARRAY_PREFIX + "xmin"]
     assert left.dtype == np.uint8
     assert np.array_equal(left == 1, back.points[:, 0] == 0.0)
     assert back.point_data[TAG_ARRAY_PREFIX + "boundary"].sum() == 16
@@ -451,5 +451,5 @@ def test_a_gmsh_file_without_physical_groups_gets_only_the_boundary_tag(tmp_path
                                                      "gmsh:geometrical": zeros}),
                  file_format=fmt, binary=False)
     back = read_mesh(path)
-    assert sorted(back.facet_tags) == ["boundary"]
-    assert len(back.facet_tags["boundary"]) == 12
+    assert sorted(back.facet_groups) == ["boundary"]
+    assert len(back.facet_groups["boundary"]) == 12

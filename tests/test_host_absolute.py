@@ -1,4 +1,4 @@
-"""Absolute values through the host entry points (bindings.embed, the ctypes C functions).
+"""Absolute values through the host entry points (bindings.host.embed, the ctypes C functions).
 
 The C host program (tests/test_c_host.py) checks closed forms, but it is
 skipped without a compiler or the Python headers; test_embed.py and the
@@ -26,7 +26,7 @@ import sympy as sp
 
 import reference as ref
 from galerkit import structured_tetrahedra, structured_triangles
-from galerkit.bindings import cfuncs, embed
+from galerkit.bindings.host import cfuncs, embed
 from test_assembly_reference import TENSOR, TRI, TET, rational
 from test_c_host import CPattern, load_call, matrix_call, ptr
 

@@ -121,10 +121,10 @@ def test_boundary_facets_are_the_facets_of_their_cells_opposite_the_local_vertex
 def _box_tag_sizes(counts):
     if len(counts) == 2:
         nx, ny = counts
-        return {"left": ny, "right": ny, "bottom": nx, "top": nx}
+        return {"xmin": ny, "xmax": ny, "ymin": nx, "ymax": nx}
     nx, ny, nz = counts
-    return {"left": 2 * ny * nz, "right": 2 * ny * nz, "bottom": 2 * nx * nz,
-            "top": 2 * nx * nz, "front": 2 * nx * ny, "back": 2 * nx * ny}
+    return {"xmin": 2 * ny * nz, "xmax": 2 * ny * nz, "ymin": 2 * nx * nz,
+            "ymax": 2 * nx * nz, "zmin": 2 * nx * ny, "zmax": 2 * nx * ny}
 
 
 @pytest.mark.parametrize("counts", [(3, 2), (2, 3, 1)])
@@ -136,10 +136,10 @@ def test_side_tags_have_the_right_sizes_and_lie_on_their_side(counts):
     else:
         mesh = structured_tetrahedra(*counts, lower, upper)
     sizes = _box_tag_sizes(counts)
-    sides = [("left", "right"), ("bottom", "top"), ("front", "back")]
+    sides = [("xmin", "xmax"), ("ymin", "ymax"), ("zmin", "zmax")]
     for axis in range(mesh.dim):
         for name, value in zip(sides[axis], (lower[axis], upper[axis])):
-            ids = mesh.facet_tags[name]
+            ids = mesh.facet_groups[name]
             assert len(ids) == sizes[name], name
             x = mesh.points[mesh.boundary_facets[ids]]  # (k, d, dim)
             np.testing.assert_allclose(x[..., axis], value, rtol=0, atol=1e-14)
@@ -149,9 +149,9 @@ def test_side_tags_have_the_right_sizes_and_lie_on_their_side(counts):
 def test_side_tags_partition_the_boundary_and_boundary_tag_covers_it(name):
     mesh = MESHES[name][0]()
     k = mesh.boundary_facets.shape[0]
-    np.testing.assert_array_equal(mesh.facet_tags["boundary"], np.arange(k))
-    sides = [t for t in mesh.facet_tags if t != "boundary"]
-    ids = np.concatenate([mesh.facet_tags[t] for t in sides])
+    np.testing.assert_array_equal(mesh.facet_groups["boundary"], np.arange(k))
+    sides = [t for t in mesh.facet_groups if t != "boundary"]
+    ids = np.concatenate([mesh.facet_groups[t] for t in sides])
     assert len(ids) == k, "side tags overlap or miss facets"
     np.testing.assert_array_equal(np.sort(ids), np.arange(k))
 
@@ -159,9 +159,9 @@ def test_side_tags_partition_the_boundary_and_boundary_tag_covers_it(name):
 def test_l_shape_tags_include_the_two_reentrant_edges_meeting_at_the_origin():
     n = 3
     mesh = l_shaped_triangles(n)
-    sizes = {"left": 2 * n, "right": n, "bottom": n, "top": 2 * n, "reentrant": 2 * n}
-    assert {t: len(mesh.facet_tags[t]) for t in sizes} == sizes
-    x = mesh.points[mesh.boundary_facets[mesh.facet_tags["reentrant"]]]
+    sizes = {"xmin": 2 * n, "xmax": n, "ymin": n, "ymax": 2 * n, "reentrant": 2 * n}
+    assert {t: len(mesh.facet_groups[t]) for t in sizes} == sizes
+    x = mesh.points[mesh.boundary_facets[mesh.facet_groups["reentrant"]]]
     on_x0 = np.all(np.abs(x[..., 0]) < 1e-14, axis=1) & np.all(x[..., 1] <= 1e-14, axis=1)
     on_y0 = np.all(np.abs(x[..., 1]) < 1e-14, axis=1) & np.all(x[..., 0] >= -1e-14, axis=1)
     assert np.all(on_x0 | on_y0)
@@ -172,9 +172,9 @@ def test_tag_boundary_selects_facets_whose_midpoints_satisfy_the_predicate():
     mesh = structured_triangles(4, 3)
     ids = mesh.tag_boundary("outlet", lambda x: x[0] > 1 - 1e-12)
     assert len(ids) == 3
-    np.testing.assert_array_equal(mesh.facet_tags["outlet"], ids)
+    np.testing.assert_array_equal(mesh.facet_groups["outlet"], ids)
     np.testing.assert_allclose(mesh.facet_midpoints(ids)[0], 1.0)
-    np.testing.assert_array_equal(ids, mesh.facet_tags["right"])
+    np.testing.assert_array_equal(ids, mesh.facet_groups["xmax"])
     # replacing a tag of the same name
     ids2 = mesh.tag_boundary("outlet", lambda x: (x[0] > 1 - 1e-12) & (x[1] < 0.6))
     assert len(ids2) == 2 and len(mesh.tagged_facets("outlet")) == 2
@@ -369,3 +369,49 @@ def test_quality_summary_counts_and_ranges():
     np.testing.assert_allclose(mesh.cell_quality(), np.sqrt(3) / 2, rtol=1e-14)
     q = mesh.quality()
     assert q.min_shape_quality <= q.mean_shape_quality <= q.max_shape_quality <= 1.0
+
+
+# ----------------------------------------------------------------------------
+# a mesh from arrays is as complete as a mesh from a file
+# ----------------------------------------------------------------------------
+def test_a_mesh_from_arrays_has_the_boundary_group_of_all_boundary_facets():
+    # the unit square in two triangles: 4 boundary edges (counted by hand)
+    m = Mesh([[0, 0], [1, 0], [0, 1], [1, 1]], [[0, 1, 2], [1, 3, 2]])
+    assert list(m.facet_groups) == ["boundary"]
+    np.testing.assert_array_equal(m.facet_groups["boundary"], np.arange(4))
+    own = Mesh([[0, 0], [1, 0], [0, 1], [1, 1]], [[0, 1, 2], [1, 3, 2]],
+               facet_groups={"boundary": [0, 1]})
+    np.testing.assert_array_equal(own.facet_groups["boundary"], [0, 1])  # a given one stays
+
+
+def test_a_poisson_problem_on_a_mesh_from_arrays_uses_its_boundary_group():
+    # patch test (Irons & Razzaque 1972): u = 1 + 2x - y is harmonic and linear, so
+    # P1 with u on the boundary reproduces it exactly at every node
+    import galerkit as gk
+
+    mesh = refine_uniform(Mesh([[0, 0], [1, 0], [0, 1], [1, 1]], [[0, 1, 2], [1, 3, 2]]))
+    exact = lambda x: 1 + 2 * x[0] - x[1]  # noqa: E731
+    sol = gk.PoissonProblem(mesh, dirichlet={"boundary": exact}).solve(degree=1)
+    np.testing.assert_allclose(sol.u, exact(mesh.points.T), rtol=0, atol=1e-13)
+
+
+def test_2d_points_with_a_zero_z_column_are_a_2d_mesh():
+    pts = np.array([[0, 0], [1, 0], [0, 1], [1, 1]], dtype=float)
+    cells = [[0, 1, 2], [1, 3, 2]]
+    flat = Mesh(np.column_stack([pts, np.zeros(4)]), cells)
+    assert flat.dim == 2 and flat.cell_type == "triangle"
+    np.testing.assert_array_equal(flat.points, pts)
+    assert float(flat.cell_volumes.sum()) == 1.0
+    with pytest.raises(MeshError, match=r"triangles with z != 0 \(vertex 3 has z = 0\.5\)"):
+        Mesh(np.column_stack([pts, [0, 0, 0, 0.5]]), cells)
+    # tetrahedra keep their three coordinates
+    tet = Mesh([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]], [[0, 1, 2, 3]])
+    assert tet.dim == 3 and tet.cell_volumes[0] == pytest.approx(1 / 6, rel=1e-15)
+
+
+def test_plural_of_tetrahedron_in_descriptions():
+    import galerkit as gk
+
+    m = structured_tetrahedra(1, 1, 1)
+    assert "6 tetrahedra" in repr(m) and "tetrahedrons" not in repr(m)
+    assert "6 tetrahedra" in repr(gk.Discretization(m, 1))

@@ -298,7 +298,7 @@ def _families():
         ("P3 cube", gk.structured_tetrahedra(3, 3, 3), 3, {}),
         ("P4 cube", gk.structured_tetrahedra(2, 2, 2), 4, {}),
         ("P2 square Neumann and Dirichlet", sq, 2,
-         {"dirichlet": {"left": 0.0}, "neumann": {"right": 1.0}}),
+         {"dirichlet": {"xmin": 0.0}, "neumann": {"xmax": 1.0}}),
         ("P2 square Robin", sq, 2, {"robin": {"boundary": (2.0, 1.0)}}),
         ("P1 L-shape", gk.l_shaped_triangles(8), 1, {}),
         ("P2 Delaunay", _delaunay_mesh(300, 4), 2, {}),

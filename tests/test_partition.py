@@ -16,9 +16,9 @@ import scipy.sparse as sp
 
 import galerkit as gk
 from galerkit.boundary import DirichletElimination
-from galerkit.bindings.partition import (coordinate_bisection, dof_layout, local_part,
+from galerkit.bindings.distributed.partition import (coordinate_bisection, dof_layout, local_part,
                                          partition_cells, partition_report)
-from galerkit.bindings.petsc_engine import (_local_mesh, _local_to_part, assemble_part,
+from galerkit.bindings.distributed.petsc_engine import (_local_mesh, _local_to_part, assemble_part,
                                             constrain_part, mean_sums, neumann_sums,
                                             parse_petsc_options, prepare_parts,
                                             shift_to_zero_mean)
@@ -57,7 +57,7 @@ def test_every_dof_has_one_owner_among_the_parts_touching_it(dim, degree, n_part
     mesh = gk.structured_triangles(9, 7) if dim == 2 else gk.structured_tetrahedra(4, 3, 3)
     disc = gk.Discretization(mesh, degree)
     parts = partition_cells(mesh, n_parts)
-    fixed = disc.boundary_dofs("left")
+    fixed = disc.boundary_dofs("xmin")
     lay = dof_layout(disc, parts, n_parts, fixed)
     touching = [set() for _ in range(disc.n_dofs)]
     for c, row in enumerate(disc.cell_dofs):
@@ -94,9 +94,9 @@ def test_rank_meshes_number_their_dofs_like_the_global_numbering(dim, degree):
         l2p = _local_to_part(ldisc, part)
         np.testing.assert_allclose(ldisc.dof_points, disc.dof_points[part.dofs[l2p]], atol=0)
         # each tagged facet of the rank is the same vertex set as globally
-        for tag, ids in local_mesh.facet_tags.items():
+        for tag, ids in local_mesh.facet_groups.items():
             local_sets = np.sort(part.vertices[local_mesh.boundary_facets[ids]], axis=1)
-            gids = mesh.facet_tags[tag]
+            gids = mesh.facet_groups[tag]
             mine = lay.parts[mesh.boundary_facet_cells[gids]] == r
             global_sets = np.sort(mesh.boundary_facets[gids[mine]], axis=1)
             assert sorted(map(tuple, local_sets)) == sorted(map(tuple, global_sets))
@@ -169,7 +169,7 @@ def test_parts_shift_a_pure_neumann_solution_to_the_serial_zero_mean():
 
 def test_incompatible_pure_neumann_data_are_refused_by_the_parts():
     mesh = gk.structured_triangles(6, 6)
-    problem = gk.PoissonProblem(mesh, source=1.0, neumann={"left": 0.25})
+    problem = gk.PoissonProblem(mesh, source=1.0, neumann={"xmin": 0.25})
     with pytest.raises(ProblemError, match="incompatible data.*must vanish"):
         _parts_systems(problem, 1, 2)
 

@@ -90,7 +90,7 @@ def last_orders(table):
 
 def perturbed(mesh, h, amount, seed):
     """The unit square/cube mesh of spacing h with interior vertices moved
-    randomly by up to amount * h along each axis (tags "boundary", "right")."""
+    randomly by up to amount * h along each axis (tags "boundary", "xmax")."""
     rng = np.random.default_rng(seed)
     p = mesh.points.copy()
     inner = np.all((p > 1e-12) & (p < 1 - 1e-12), axis=1)
@@ -98,7 +98,7 @@ def perturbed(mesh, h, amount, seed):
     out = Mesh(p, mesh.cells)
     assert out.n_reoriented == 0  # the perturbation inverted no cell
     out.tag_boundary("boundary", lambda x: np.ones(x.shape[1], dtype=bool))
-    out.tag_boundary("right", lambda x: x[0] > 1 - 1e-12)
+    out.tag_boundary("xmax", lambda x: x[0] > 1 - 1e-12)
     return out
 
 
@@ -147,10 +147,10 @@ def test_patch_test_linear_field_exact_on_irregular_mesh(dim):
     assert np.abs(sol.u - exact).max() <= 1e-12
     # the same with kappa = 4 and the flux kappa du/dn = 4 * slope on the right
     # side (outward normal +x), Dirichlet on the rest of the boundary
-    others = np.setdiff1d(mesh.facet_tags["boundary"], mesh.facet_tags["right"])
+    others = np.setdiff1d(mesh.facet_groups["boundary"], mesh.facet_groups["xmax"])
     mesh.set_facet_tag("rest", others)
     sol = PoissonProblem(mesh, 4.0, 0.0, {"rest": lin},
-                         neumann={"right": 4.0 * slope}).solve(1, method="direct")
+                         neumann={"xmax": 4.0 * slope}).solve(1, method="direct")
     assert np.abs(sol.u - exact).max() <= 1e-12
     # gradients per cell are the constant gradient
     assert np.abs(sol.cell_gradients() - grad).max() <= 1e-11
@@ -179,7 +179,7 @@ def corner_gradient(x):
 def test_corner_function_vanishes_on_reentrant_edges():
     # the branch choice of the singular solution (Strang & Fix 1973)
     mesh = l_shaped_triangles(2)
-    x = mesh.points[np.unique(mesh.boundary_facets[mesh.facet_tags["reentrant"]])].T
+    x = mesh.points[np.unique(mesh.boundary_facets[mesh.facet_groups["reentrant"]])].T
     assert np.abs(corner(x)).max() <= 1e-15
     assert np.all(corner(mesh.points.T) >= -1e-15)  # sin(2 theta / 3) >= 0 on the domain
 
@@ -203,9 +203,9 @@ def test_neumann_manufactured_solution_rates(degree, levels):
     # (n outward): du/dx on x = 1, du/dy on y = 1.
     kappa = 2.0
     prob = PoissonProblem(structured_triangles(4, 4), kappa, lambda x: kappa * f2(x),
-                          {"left": u2, "bottom": u2},
-                          neumann={"right": lambda x: kappa * grad_u2(x)[0],
-                                   "top": lambda x: kappa * grad_u2(x)[1]})
+                          {"xmin": u2, "ymin": u2},
+                          neumann={"xmax": lambda x: kappa * grad_u2(x)[0],
+                                   "ymax": lambda x: kappa * grad_u2(x)[1]})
     table = convergence_study(prob, levels, degree, u2, grad_u2, method="direct")
     eoc_l2, eoc_h1 = last_orders(table)
     assert abs(eoc_l2 - (degree + 1)) <= 0.1, table.to_markdown()
@@ -233,8 +233,8 @@ def test_robin_manufactured_solution_rates(degree, levels, where):
         return u2(x) + (grad_u2(x) * _outward_normal(x)).sum(axis=0) / alpha
 
     if where == "right-top":
-        prob = PoissonProblem(structured_triangles(4, 4), 1.0, f2, {"left": u2, "bottom": u2},
-                              robin={"right": (alpha, u_ext), "top": (alpha, u_ext)})
+        prob = PoissonProblem(structured_triangles(4, 4), 1.0, f2, {"xmin": u2, "ymin": u2},
+                              robin={"xmax": (alpha, u_ext), "ymax": (alpha, u_ext)})
     else:
         prob = PoissonProblem(structured_triangles(4, 4), 1.0, f2,
                               robin={"boundary": (alpha, u_ext)})
@@ -301,7 +301,7 @@ def test_pure_neumann_balanced_source_and_flux():
 
 @pytest.mark.parametrize("source, neumann, integral", [
     (1.0, {}, "1.000000e+00"),
-    (0.0, {"left": 0.5}, "5.000000e-01"),
+    (0.0, {"xmin": 0.5}, "5.000000e-01"),
     (lambda x: 2 * PI ** 2 * cc(x) + 1e-3, {}, "1.000000e-03"),  # off by far more than quadrature
 ])
 def test_pure_neumann_incompatible_data_raises_with_the_integral(source, neumann, integral):
@@ -327,10 +327,10 @@ def test_layered_conductivity_piecewise_linear_solution(nx, exact_expected):
         return np.where(x[0] < 0.5, x[0], 0.5 + (x[0] - 0.5) / 10.0) + 0.0 * x[1]
 
     want = exact(mesh.points.T)
-    sol = PoissonProblem(mesh, kappa, 0.0, {"left": exact, "right": exact}).solve(
+    sol = PoissonProblem(mesh, kappa, 0.0, {"xmin": exact, "xmax": exact}).solve(
         1, method="direct")
     # flux into the domain at x = 1: kappa du/dn = 10 * (1/10) = 1
-    sol_flux = PoissonProblem(mesh, kappa, 0.0, {"left": 0.0}, neumann={"right": 1.0}).solve(
+    sol_flux = PoissonProblem(mesh, kappa, 0.0, {"xmin": 0.0}, neumann={"xmax": 1.0}).solve(
         1, method="direct")
     for s in (sol, sol_flux):
         err = np.abs(s.u - want).max()
@@ -346,7 +346,7 @@ def test_every_solver_agrees_with_direct(dim):
     # SciPy/SuperLU as the reference solution of the same linear system
     mesh = structured_triangles(16, 16) if dim == 2 else structured_tetrahedra(5, 5, 5)
     prob = PoissonProblem(mesh, lambda x: 1.0 + x[0] ** 2, lambda x: 1.0 + x[1],
-                          {"left": 1.0, "bottom": lambda x: x[0]}, neumann={"right": 0.3})
+                          {"xmin": 1.0, "ymin": lambda x: x[0]}, neumann={"xmax": 0.3})
     ref = prob.solve(2 if dim == 2 else 1, method="direct").u
     for method in available_solvers():
         sol = prob.solve(2 if dim == 2 else 1, method=method, rtol=1e-12)
@@ -391,11 +391,11 @@ def test_galerkin_solution_minimises_energy(dim, degree):
     # = eps^2/2 a(v, v) > 0 for every v vanishing on the Dirichlet boundary
     mesh = structured_triangles(6, 6) if dim == 2 else structured_tetrahedra(3, 3, 3)
     kappa, f = 2.0, 1.5  # constants: the quadratures of load and energy are exact
-    prob = PoissonProblem(mesh, kappa, f, {"left": lambda x: x[1], "right": 0.5})
+    prob = PoissonProblem(mesh, kappa, f, {"xmin": lambda x: x[1], "xmax": 0.5})
     sol = prob.solve(degree, method="direct")
     e0 = energy(sol.disc, sol.u, kappa, f)
     A = sol.assembler.stiffness(kappa)
-    fixed = sol.disc.boundary_dofs(["left", "right"])
+    fixed = sol.disc.boundary_dofs(["xmin", "xmax"])
     rng = np.random.default_rng(5)
     for trial in range(3):
         v = rng.standard_normal(sol.disc.n_dofs)
@@ -521,31 +521,31 @@ def test_table_markdown_and_csv_round_trip():
 # ----------------------------------------------------------------------------
 # conditions on tags that share facets
 # ----------------------------------------------------------------------------
-@pytest.mark.parametrize("order", [("left", "boundary"), ("boundary", "left")])
+@pytest.mark.parametrize("order", [("xmin", "boundary"), ("boundary", "xmin")])
 def test_different_fixed_values_on_overlapping_tags_are_refused_in_either_order(order):
     mesh = gk.structured_triangles(4, 4)
-    values = {"left": 1.0, "boundary": 0.0}
-    with pytest.raises(ProblemError, match=r"tags '(left|boundary)' and '(left|boundary)' "
+    values = {"xmin": 1.0, "boundary": 0.0}
+    with pytest.raises(ProblemError, match=r"tags '(xmin|boundary)' and '(xmin|boundary)' "
                                            r"share 4 boundary facet\(s\)"):
         gk.PoissonProblem(mesh, dirichlet={t: values[t] for t in order})
 
 
 def test_a_flux_under_a_fixed_tag_is_refused_naming_both_conditions():
     mesh = gk.structured_triangles(4, 4)
-    with pytest.raises(ProblemError, match=r"dirichlet\['boundary'\] and neumann\['top'\]: "
-                                           r"tags 'boundary' and 'top' share 4 "):
-        gk.PoissonProblem(mesh, dirichlet={"boundary": 0.0}, neumann={"top": 1.0})
-    with pytest.raises(ProblemError, match=r"dirichlet\['top'\] and robin\['top'\]"):
-        gk.PoissonProblem(mesh, dirichlet={"top": 0.0}, robin={"top": (1.0, 0.0)})
+    with pytest.raises(ProblemError, match=r"dirichlet\['boundary'\] and neumann\['ymax'\]: "
+                                           r"tags 'boundary' and 'ymax' share 4 "):
+        gk.PoissonProblem(mesh, dirichlet={"boundary": 0.0}, neumann={"ymax": 1.0})
+    with pytest.raises(ProblemError, match=r"dirichlet\['ymax'\] and robin\['ymax'\]"):
+        gk.PoissonProblem(mesh, dirichlet={"ymax": 0.0}, robin={"ymax": (1.0, 0.0)})
 
 
 def test_the_same_condition_on_overlapping_tags_and_tags_meeting_at_a_corner_are_accepted():
     mesh = gk.structured_triangles(4, 4)
     one = gk.PoissonProblem(mesh, source=1.0, dirichlet={"boundary": 0.0}).solve()
-    both = gk.PoissonProblem(mesh, source=1.0, dirichlet={"left": 0.0, "boundary": 0.0}).solve()
+    both = gk.PoissonProblem(mesh, source=1.0, dirichlet={"xmin": 0.0, "boundary": 0.0}).solve()
     np.testing.assert_array_equal(one.u, both.u)
     # left and bottom share the corner vertex only: no facet, no conflict
-    corner = gk.PoissonProblem(mesh, dirichlet={"left": 1.0, "bottom": 0.0}).solve()
+    corner = gk.PoissonProblem(mesh, dirichlet={"xmin": 1.0, "ymin": 0.0}).solve()
     assert corner.report.converged
 
 

@@ -1,4 +1,4 @@
-"""Specification of problem files (galerkit.bindings.problemfile).
+"""Specification of problem files (galerkit.bindings.command.problemfile).
 
 A problem file in our own TOML schema becomes a PoissonProblem and run
 options; every mistake is an InputError naming the file, the line, the key
@@ -20,8 +20,8 @@ import numpy as np
 import pytest
 
 import galerkit as gk
-from galerkit.bindings.expressions import Expression
-from galerkit.bindings.problemfile import (BOUNDARY_KINDS, SECTIONS, load_problem,
+from galerkit.bindings.command.expressions import Expression
+from galerkit.bindings.command.problemfile import (BOUNDARY_KINDS, SECTIONS, load_problem,
                                            parse_problem)
 from galerkit.errors import InputError
 
@@ -52,27 +52,27 @@ def error_of(tmp_path, text) -> str:
 def test_each_boundary_kind_maps_to_its_condition(tmp_path):
     spec = load_problem(write(tmp_path, BASE + """
 [[boundary]]
-tag = "left"
-kind = "fixed"
-value = "1 + y"
+tag = "xmin"
+kind = "dirichlet"
+u = "1 + y"
 [[boundary]]
-tag = "right"
-kind = "flux"
-flux = 2.5
+tag = "xmax"
+kind = "neumann"
+inflow = 2.5
 [[boundary]]
-tag = "top"
-kind = "convection"
-coefficient = 10
-ambient = "20 + x"
+tag = "ymax"
+kind = "robin"
+exchange = 10
+u_outside = "20 + x"
 """))
     problem, opts = spec.build()
     assert isinstance(problem, gk.PoissonProblem)
-    assert set(problem.dirichlet) == {"left"} and callable(problem.dirichlet["left"])
-    assert problem.neumann == {"right": 2.5}  # constants reach the kernel as floats
-    alpha, ambient = problem.robin["top"]
-    assert alpha == 10.0 and isinstance(ambient, Expression)
+    assert set(problem.dirichlet) == {"xmin"} and callable(problem.dirichlet["xmin"])
+    assert problem.neumann == {"xmax": 2.5}  # constants reach the kernel as floats
+    exchange, u_outside = problem.robin["ymax"]
+    assert exchange == 10.0 and isinstance(u_outside, Expression)
     assert opts.degree == 1 and opts.method == "auto" and opts.rtol == 1e-10
-    assert [e.kind for e in spec.boundary] == ["fixed", "flux", "convection"]
+    assert [e.kind for e in spec.boundary] == ["dirichlet", "neumann", "robin"]
 
 
 def test_defaults_and_every_option(tmp_path):
@@ -126,21 +126,21 @@ def test_mesh_file_path_starts_at_the_problem_file_folder(tmp_path):
     meshio.write(str(tmp_path / "meshes" / "sq.vtu"),
                  meshio.Mesh(m.points, [("triangle", np.asarray(m.cells))]))
     spec = load_problem(write(tmp_path, '[mesh]\nfile = "meshes/sq.vtu"\n'))
-    assert spec.mesh.n_cells == 8 and sorted(spec.mesh.facet_tags) == ["boundary"]
+    assert spec.mesh.n_cells == 8 and sorted(spec.mesh.facet_groups) == ["boundary"]
 
 
 def test_integer_tags_name_unnamed_gmsh_groups(tmp_path):
     import meshio
 
     m = gk.structured_triangles(2, 2)
-    f = m.boundary_facets[m.facet_tags["left"]]
+    f = m.boundary_facets[m.facet_groups["xmin"]]
     meshio.write(str(tmp_path / "g.msh"),
                  meshio.Mesh(m.points, [("line", f), ("triangle", np.asarray(m.cells))],
                              cell_data={"gmsh:physical": [np.full(2, 7), np.ones(8, int)],
                                         "gmsh:geometrical": [np.full(2, 1), np.ones(8, int)]}),
                  file_format="gmsh22")
     spec = load_problem(write(tmp_path, '[mesh]\nfile = "g.msh"\n[[boundary]]\ntag = 7\n'
-                              'kind = "fixed"\nvalue = 0\n'))
+                              'kind = "dirichlet"\nu = 0\n'))
     assert spec.boundary[0].tag == "7"
 
 
@@ -185,17 +185,17 @@ def test_unknown_key_is_named_with_the_valid_keys_and_its_line(tmp_path):
 def test_unknown_key_in_the_second_boundary_entry_points_at_its_line(tmp_path):
     msg = error_of(tmp_path, BASE + """
 [[boundary]]
-tag = "left"
-kind = "fixed"
-value = 0
+tag = "xmin"
+kind = "dirichlet"
+u = 0
 
 [[boundary]]
-tag = "right"
-kind = "flux"
-flx = 1
+tag = "xmax"
+kind = "neumann"
+inflw = 1
 """)
-    assert "line 14: boundary[2].flx: unknown key 'flx'" in msg
-    assert "did you mean 'flux'?" in msg
+    assert "line 14: boundary[2].inflw: unknown key 'inflw'" in msg
+    assert "did you mean 'inflow'?" in msg
 
 
 def test_bad_expression_keeps_the_caret_of_the_expression_reader(tmp_path):
@@ -248,25 +248,26 @@ def test_a_top_level_key_of_the_wrong_type_is_named_with_its_line(tmp_path):
 
 
 @pytest.mark.parametrize("text,expected", [
-    ("[[boundary]]\ntag = \"lft\"\nkind = \"fixed\"\nvalue = 0\n",
-     "boundary[1].tag: the mesh has no facet tag 'lft'; did you mean 'left'? its tags are: "
-     "'bottom', 'boundary', 'left', 'right', 'top'"),
-    ("[[boundary]]\ntag = \"left\"\nkind = \"dirichlet\"\nvalue = 0\n",
-     "boundary[1].kind: 'dirichlet' is not one of the accepted values; a Dirichlet "
-     "condition is written kind = 'fixed' here; write one of: 'fixed', 'flux', 'convection'"),
-    ("[[boundary]]\ntag = \"left\"\nkind = \"fixd\"\nvalue = 0\n",
-     "did you mean 'fixed'?"),
-    ("[[boundary]]\ntag = \"left\"\nkind = \"convection\"\ncoefficient = 1\n",
-     "boundary[1]: kind 'convection' needs 'ambient'"),
-    ("[[boundary]]\ntag = \"left\"\nkind = \"fixed\"\nflux = 1\n",
-     "boundary[1].flux: does not apply to kind 'fixed'"),
-    ("[[boundary]]\nkind = \"fixed\"\nvalue = 1\n", "boundary[1]: has no 'tag'"),
-    ("[[boundary]]\ntag = \"left\"\nkind = \"fixed\"\nvalue = 0\n"
-     "[[boundary]]\ntag = \"left\"\nkind = \"flux\"\nflux = 0\n",
-     "boundary[2].tag: tag 'left' already has a condition (boundary entry 1)"),
-    ("[[boundary]]\ntag = \"top\"\nkind = \"convection\"\ncoefficient = -1\nambient = 0\n",
-     "boundary[1].coefficient: must not be negative"),
-    ("[boundary]\ntag = \"left\"\n", "not a single [boundary] table"),
+    ("[[boundary]]\ntag = \"xmn\"\nkind = \"dirichlet\"\nu = 0\n",
+     "boundary[1].tag: the mesh has no facet tag 'xmn'; did you mean 'xmin'? its tags are: "
+     "'boundary', 'xmax', 'xmin', 'ymax', 'ymin'"),
+    ("[[boundary]]\ntag = \"xmin\"\nkind = \"fixed\"\nu = 0\n",
+     "boundary[1].kind: 'fixed' is not one of the accepted values"),
+    ("[[boundary]]\ntag = \"xmin\"\nkind = \"dirichet\"\nu = 0\n",
+     "did you mean 'dirichlet'?"),
+    ("[[boundary]]\ntag = \"xmin\"\nkind = \"robin\"\nexchange = 1\n",
+     "boundary[1]: kind 'robin' needs 'u_outside'"),
+    ("[[boundary]]\ntag = \"xmin\"\nkind = \"dirichlet\"\ninflow = 1\n",
+     "boundary[1].inflow: does not apply to kind 'dirichlet'"),
+    ("[[boundary]]\ntag = \"xmin\"\nkind = \"dirichlet\"\nvalue = 1\n",
+     "boundary[1].value: "),
+    ("[[boundary]]\nkind = \"dirichlet\"\nu = 1\n", "boundary[1]: has no 'tag'"),
+    ("[[boundary]]\ntag = \"xmin\"\nkind = \"dirichlet\"\nu = 0\n"
+     "[[boundary]]\ntag = \"xmin\"\nkind = \"neumann\"\ninflow = 0\n",
+     "boundary[2].tag: tag 'xmin' already has a condition (boundary entry 1)"),
+    ("[[boundary]]\ntag = \"ymax\"\nkind = \"robin\"\nexchange = -1\nu_outside = 0\n",
+     "boundary[1].exchange: must not be negative"),
+    ("[boundary]\ntag = \"xmin\"\n", "not a single [boundary] table"),
 ])
 def test_boundary_mistakes_are_named(tmp_path, text, expected):
     assert expected in error_of(tmp_path, BASE + text)
@@ -307,7 +308,7 @@ def test_a_missing_problem_file_is_named(tmp_path):
 
 def test_boundary_kinds_document_their_value_keys():
     assert {k: v[0] for k, v in BOUNDARY_KINDS.items()} == {
-        "fixed": ("value",), "flux": ("flux",), "convection": ("coefficient", "ambient")}
+        "dirichlet": ("u",), "neumann": ("inflow",), "robin": ("exchange", "u_outside")}
 
 
 # ----------------------------------------------------------------------------
@@ -332,7 +333,7 @@ def test_every_example_loads(name):
 def test_block_example_source_is_minus_div_kappa_grad_of_its_exact_solution():
     # source: SymPy differentiates the exact solution of the example
     import sympy as sp
-    from galerkit.bindings.problemfile import tomllib
+    from galerkit.bindings.command.problemfile import tomllib
 
     data = tomllib.loads((EXAMPLES / "block-3d.toml").read_text())
     u, (x, y, z) = sympy_of(data["exact"]["solution"])
@@ -343,9 +344,9 @@ def test_block_example_source_is_minus_div_kappa_grad_of_its_exact_solution():
     for g, v in zip(data["exact"]["gradient"], (x, y, z)):
         assert sp.simplify(sympy_of(g)[0] - sp.diff(u, v)) == 0
     by_tag = {b["tag"]: b for b in data["boundary"]}
-    assert sp.simplify(sympy_of(by_tag["back"]["flux"])[0]
+    assert sp.simplify(sympy_of(by_tag["zmax"]["inflow"])[0]
                        - (k * sp.diff(u, z)).subs(z, 1)) == 0  # outward normal +z at z = 1
-    assert sp.simplify(sympy_of(by_tag["front"]["value"])[0] - u.subs(z, 0)) == 0
+    assert sp.simplify(sympy_of(by_tag["zmin"]["u"])[0] - u.subs(z, 0)) == 0
 
 
 def test_block_example_converges_at_the_a_priori_l2_rate():
@@ -360,7 +361,7 @@ def test_block_example_converges_at_the_a_priori_l2_rate():
 def test_pipe_wall_exact_solution_satisfies_its_conditions():
     # source: SymPy; radial conduction with a convective outer surface (Incropera & DeWitt)
     import sympy as sp
-    from galerkit.bindings.problemfile import tomllib
+    from galerkit.bindings.command.problemfile import tomllib
 
     data = tomllib.loads((EXAMPLES / "pipe-wall.toml").read_text())
     c = data["constants"]
@@ -386,18 +387,18 @@ def test_pipe_wall_example_agrees_with_the_closed_form_to_half_a_percent():
 
 def test_example_files_name_the_schema_document():
     for f in EXAMPLES.glob("*.toml"):
-        assert re.search(r"README\.md, \"Problem files\"", f.read_text()), f
+        assert re.search(r"schema: docs/problem-files\.md", f.read_text()), f
 
 
 def test_the_documented_example_is_a_valid_problem_file():
-    from galerkit.bindings.problemfile import tomllib
+    from galerkit.bindings.command.problemfile import tomllib
 
-    doc = (EXAMPLES.parent / "README.md").read_text()
-    section = doc[doc.index("## Problem files"):]
+    doc = (EXAMPLES.parent / "docs" / "problem-files.md").read_text()
+    section = doc[doc.index("## A complete example"):]
     block = re.search(r"```toml\n(.*?)```", section, re.S).group(1)
-    spec = parse_problem(tomllib.loads(block), source="README.md", base=EXAMPLES,
+    spec = parse_problem(tomllib.loads(block), source="docs/problem-files.md", base=EXAMPLES,
                          text=block)
-    assert [e.kind for e in spec.boundary] == ["fixed", "convection"]
+    assert [e.kind for e in spec.boundary] == ["dirichlet", "robin"]
     assert spec.options.exact_gradient is not None
 
 
@@ -419,15 +420,15 @@ def test_the_example_mesh_is_what_its_script_writes():
 
 
 def test_entries_on_overlapping_tags_are_refused_naming_both_entries_and_the_count(tmp_path):
-    msg = error_of(tmp_path, BASE + '[[boundary]]\ntag = "boundary"\nkind = "fixed"\nvalue = 0\n'
-                   '[[boundary]]\ntag = "left"\nkind = "flux"\nflux = 1\n')
-    assert re.search(r"line 10: boundary\[2\]\.tag: tag 'left' \(flux\) shares 4 boundary "
-                     r"facet\(s\) with tag 'boundary' \(fixed, boundary entry 1\)", msg), msg
+    msg = error_of(tmp_path, BASE + '[[boundary]]\ntag = "boundary"\nkind = "dirichlet"\nu = 0\n'
+                   '[[boundary]]\ntag = "xmin"\nkind = "neumann"\ninflow = 1\n')
+    assert re.search(r"line 10: boundary\[2\]\.tag: tag 'xmin' \(neumann\) shares 4 boundary "
+                     r"facet\(s\) with tag 'boundary' \(dirichlet, boundary entry 1\)", msg), msg
     # the same fixed value twice is one condition
-    spec = load_problem(write(tmp_path, BASE + '[[boundary]]\ntag = "boundary"\nkind = "fixed"\n'
-                              'value = "0"\n[[boundary]]\ntag = "left"\nkind = "fixed"\n'
-                              'value = 0\n', name="same.toml"))
-    assert [e.tag for e in spec.boundary] == ["boundary", "left"]
+    spec = load_problem(write(tmp_path, BASE + '[[boundary]]\ntag = "boundary"\nkind = "dirichlet"\n'
+                              'u = "0"\n[[boundary]]\ntag = "xmin"\nkind = "dirichlet"\n'
+                              'u = 0\n', name="same.toml"))
+    assert [e.tag for e in spec.boundary] == ["boundary", "xmin"]
 
 
 # ----------------------------------------------------------------------------

@@ -222,7 +222,7 @@ def test_random_arguments_to_public_entry_points_raise_only_galerkit_errors(sett
     mesh, disc, asm, K = setting
     fresh = gk.structured_triangles(2, 2)
     calls = [
-        lambda: gk.Mesh(mesh.points, mesh.cells, facet_tags=obj),
+        lambda: gk.Mesh(mesh.points, mesh.cells, facet_groups=obj),
         lambda: fresh.set_facet_tag("x", obj),
         lambda: fresh.set_facet_tag(obj, [0]),
         lambda: mesh.tagged_facets(obj),
@@ -236,8 +236,8 @@ def test_random_arguments_to_public_entry_points_raise_only_galerkit_errors(sett
         lambda: asm.mass(obj),
         lambda: asm.load(obj),
         lambda: asm.load(1.0, out=obj),
-        lambda: asm.boundary_load("left", obj),
-        lambda: asm.boundary_mass("left", obj),
+        lambda: asm.boundary_load("xmin", obj),
+        lambda: asm.boundary_mass("xmin", obj),
         lambda: asm.boundary_load(obj, 1.0),
         lambda: DirichletElimination(K, obj),
         lambda: DirichletElimination(obj, [0]),
@@ -257,7 +257,7 @@ def test_random_arguments_to_public_entry_points_raise_only_galerkit_errors(sett
         lambda: gk.PoissonProblem(mesh, source=obj, dirichlet={"boundary": 0.0}).solve(),
         lambda: gk.PoissonProblem(mesh, dirichlet={"boundary": obj}).solve(),
         lambda: gk.PoissonProblem(mesh, dirichlet=obj),
-        lambda: gk.PoissonProblem(mesh, robin={"left": (obj, 1.0)}).solve(),
+        lambda: gk.PoissonProblem(mesh, robin={"xmin": (obj, 1.0)}).solve(),
         lambda: gk.PoissonProblem(mesh, dirichlet={"boundary": 0.0}).solve(degree=obj),
     ]
     for call in calls:
@@ -277,7 +277,7 @@ def test_random_dirichlet_dofs_and_values_raise_only_galerkit_errors(dofs, value
 
 
 # ----------------------------------------------------------------------------
-# fuzzing the coefficient formulas (galerkit.bindings.expressions)
+# fuzzing the coefficient formulas (galerkit.bindings.command.expressions)
 # ----------------------------------------------------------------------------
 FORMULAS = [
     "1 + 0.5*sin(pi*x)*y^2",
@@ -313,7 +313,7 @@ def mutated_formula(draw):
 @settings(max_examples=100, deadline=None)
 @given(text=mutated_formula())
 def test_mutated_formulas_compile_or_raise_input_error(text):
-    from galerkit.bindings.expressions import compile_expression
+    from galerkit.bindings.command.expressions import compile_expression
 
     x = np.array([[0.1, 0.5, 0.9], [0.2, 0.4, 0.8]])
     try:
@@ -391,20 +391,20 @@ def test_damaged_mesh_files_give_input_error_or_a_valid_mesh(mesh_files, data):
         except InputError:  # MeshError is an InputError too
             return
     assert isinstance(mesh, gk.Mesh)
-    assert (mesh.cell_volumes > 0).all() and "boundary" in mesh.facet_tags
+    assert (mesh.cell_volumes > 0).all() and "boundary" in mesh.facet_groups
 
 
 # ----------------------------------------------------------------------------
-# fuzzing problem files (galerkit.bindings.problemfile.load_problem)
+# fuzzing problem files (galerkit.bindings.command.problemfile.load_problem)
 # ----------------------------------------------------------------------------
 EXAMPLES = Path(__file__).parent.parent / "examples"
 
 
 @pytest.fixture(scope="module")
 def problem_files():
-    problemfile = pytest.importorskip("galerkit.bindings.problemfile")
+    problemfile = pytest.importorskip("galerkit.bindings.command.problemfile")
     if not hasattr(problemfile, "load_problem"):
-        pytest.skip("galerkit.bindings.problemfile has no load_problem")
+        pytest.skip("galerkit.bindings.command.problemfile has no load_problem")
     folder = Path(tempfile.mkdtemp(prefix="galerkit-toml-fuzz-"))
     texts = {}
     for p in sorted(EXAMPLES.glob("*.toml")):

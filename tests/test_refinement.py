@@ -190,9 +190,9 @@ def test_refined_mesh_is_conforming(name):
 def _check_tags_carried(coarse, fine):
     d = coarse.dim
     vp = np.asarray(fine.vertex_parents)
-    assert set(fine.facet_tags) == set(coarse.facet_tags)
-    for tag, cids in coarse.facet_tags.items():
-        fids = fine.facet_tags[tag]
+    assert set(fine.facet_groups) == set(coarse.facet_groups)
+    for tag, cids in coarse.facet_groups.items():
+        fids = fine.facet_groups[tag]
         assert len(fids) == 2 ** (d - 1) * len(cids), tag
         # every child facet lies on a parent facet of the same tag: its
         # vertices' parents are vertices of that facet, and its centroid has
@@ -215,7 +215,7 @@ def _check_tags_carried(coarse, fine):
 
 
 @pytest.mark.parametrize("name", list(COARSE))
-def test_facet_tags_carry_over_to_the_child_facets(name):
+def test_facet_groups_carry_over_to_the_child_facets(name):
     coarse = COARSE[name]()
     coarse.tag_boundary("custom", lambda x: x[0] + 0.3 * x[1] > np.median(x[0] + 0.3 * x[1]))
     for _ in range(3):
@@ -224,10 +224,11 @@ def test_facet_tags_carry_over_to_the_child_facets(name):
         coarse = fine
 
 
-def test_refining_a_mesh_without_tags_gives_no_tags():
+def test_refining_a_mesh_from_arrays_gives_the_boundary_group_of_the_fine_mesh():
     mesh = Mesh([[0, 0], [1, 0], [0, 1]], [[0, 1, 2]])
     fine = refine_uniform(mesh)
-    assert fine.facet_tags == {}
+    assert list(fine.facet_groups) == ["boundary"]
+    np.testing.assert_array_equal(fine.facet_groups["boundary"], np.arange(6))  # 3 edges x 2
     assert fine.n_cells == 4 and fine.n_vertices == 6
 
 

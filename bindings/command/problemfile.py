@@ -5,8 +5,8 @@ element degree, the conductivity, the source, the boundary conditions by
 facet tag, the solver, the outputs and, optionally, an exact solution to
 measure the error against.  Coefficients are short formulas of the
 coordinates ``x``, ``y``, ``z`` read by
-:func:`galerkit.bindings.expressions.compile_expression` (never run as Python).
-The schema is documented in the README section "Problem files"; in short::
+:func:`galerkit.bindings.command.expressions.compile_expression` (never run as Python).
+The schema is documented in docs/problem-files.md; in short::
 
     title = "..."                      # optional
     [constants]   name = number, ...   # usable in every formula
@@ -15,8 +15,9 @@ The schema is documented in the README section "Problem files"; in short::
     [discretization]  degree = 1..4
     [material]    conductivity = number | "formula" | [[kxx, kxy], [kxy, kyy]]
     [source]      value = number | "formula"
-    [[boundary]]  tag = "name", kind = "fixed" (value) | "flux" (flux)
-                  | "convection" (coefficient, ambient)
+    [[boundary]]  tag = "name", kind = "dirichlet" (u) | "neumann" (inflow)
+                  | "robin" (exchange, u_outside); untagged facets:
+                  homogeneous Neumann
     [solver]      method = "auto" | registered name, rtol, maxiter
     [output]      folder, name, vtu, plot, mesh_overlay, units, length_unit
     [exact]       solution = "formula", gradient = ["d/dx", "d/dy", ...]
@@ -43,8 +44,8 @@ Examples
 ... value = "2*pi^2*sin(pi*x)*sin(pi*y)"
 ... [[boundary]]
 ... tag = "boundary"
-... kind = "fixed"
-... value = 0
+... kind = "dirichlet"
+... u = 0
 ... [exact]
 ... solution = "sin(pi*x)*sin(pi*y)"
 ... ''')
@@ -89,22 +90,23 @@ SECTIONS = {
     "discretization": ("degree",),
     "material": ("conductivity",),
     "source": ("value",),
-    "boundary": ("tag", "kind", "value", "flux", "coefficient", "ambient"),
+    "boundary": ("tag", "kind", "u", "inflow", "exchange", "u_outside"),
     "solver": ("method", "rtol", "maxiter"),
     "output": ("folder", "name", "vtu", "plot", "mesh_overlay", "units", "length_unit"),
     "exact": ("solution", "gradient"),
 }
 
 #: ``kind -> (value keys, meaning)`` of the boundary conditions.
+#: ``n`` is the outward unit normal; facets in no entry get homogeneous Neumann
+#: (conductivity * du/dn = 0: no flux through them).
 BOUNDARY_KINDS = {
-    "fixed": (("value",), "u = value (Dirichlet)"),
-    "flux": (("flux",), "conductivity * du/dn = flux, the flux into the domain (Neumann)"),
-    "convection": (("coefficient", "ambient"),
-                   "conductivity * du/dn = coefficient * (ambient - u) (Robin)"),
+    "dirichlet": (("u",), "u = u, the prescribed value"),
+    "neumann": (("inflow",), "conductivity * du/dn = inflow, the flux into the domain "
+                "through the facet (n the outward normal)"),
+    "robin": (("exchange", "u_outside"),
+              "conductivity * du/dn = exchange * (u_outside - u), an exchange with the "
+              "outside proportional to the difference"),
 }
-
-#: the trade's names of the conditions, for hints
-_TRADE_WORDS = {"dirichlet": "fixed", "neumann": "flux", "robin": "convection"}
 
 #: mesh file suffixes whose files name other files (XDMF's HDF5 data): refused
 #: under ``stay_in_folder``, which cannot follow them
@@ -122,7 +124,7 @@ class BoundaryEntry:
     """One ``[[boundary]]`` entry, checked.
 
     ``values`` maps the kind's value keys to a float or a compiled
-    :class:`~galerkit.bindings.expressions.Expression`.
+    :class:`~galerkit.bindings.command.expressions.Expression`.
     """
 
     index: int  # counts from 1, as in messages
@@ -222,12 +224,12 @@ class ProblemSpec:
         dirichlet, neumann, robin = {}, {}, {}
         for e in self.boundary:
             v = {k: _kernel_value(x) for k, x in e.values.items()}
-            if e.kind == "fixed":
-                dirichlet[e.tag] = v["value"]
-            elif e.kind == "flux":
-                neumann[e.tag] = v["flux"]
+            if e.kind == "dirichlet":
+                dirichlet[e.tag] = v["u"]
+            elif e.kind == "neumann":
+                neumann[e.tag] = v["inflow"]
             else:
-                robin[e.tag] = (v["coefficient"], v["ambient"])
+                robin[e.tag] = (v["exchange"], v["u_outside"])
         problem = PoissonProblem(self.mesh, conductivity=_kernel_value(self.conductivity),
                                  source=_kernel_value(self.source_term), dirichlet=dirichlet,
                                  neumann=neumann, robin=robin)
@@ -250,7 +252,7 @@ def load_problem(path, *, stay_in_folder=False) -> ProblemSpec:
     Parameters
     ----------
     path : str or path-like
-        A TOML file in the schema of this module (the README section "Problem files").
+        A TOML file in the schema of this module (docs/problem-files.md).
     stay_in_folder : bool, default False
         Refuse a ``[mesh] file`` or ``[output] folder`` that resolves (after
         symbolic links, ``..`` and absolute paths) outside the problem file's
@@ -600,7 +602,7 @@ def _read_mesh_section(r: _Reader, t, base: Path):
                    "convert the mesh to .msh or .vtu")
         merge = (r.boolean(t["merge_duplicates"], ("mesh", "merge_duplicates"))
                  if "merge_duplicates" in t else False)
-        from .files import _read_mesh
+        from ..files.readwrite import _read_mesh
 
         try:
             mesh, joined = _read_mesh(fpath, merge_duplicates=merge)
@@ -696,29 +698,24 @@ def _boundary_entries(r: _Reader, entries, mesh, dim, constants):
         r.fail(("boundary",), f"must be a list of [[boundary]] entries, got {_type_word(entries)}")
     out = []
     seen = {}
-    tags = sorted(mesh.facet_tags)
+    tags = sorted(mesh.facet_groups)
     for i, e in enumerate(entries):
         path = ("boundary", i)
         r.table(e, path, SECTIONS["boundary"])
         for k in ("tag", "kind"):
             if k not in e:
                 r.fail(path, f"has no {k!r}",
-                       "each [[boundary]] entry needs tag = \"...\" and kind = \"fixed\", "
-                       "\"flux\" or \"convection\"")
+                       "each [[boundary]] entry needs tag = \"...\" and kind = \"dirichlet\", "
+                       "\"neumann\" or \"robin\"")
         tag = e["tag"]
         if isinstance(tag, int) and not isinstance(tag, bool):
             tag = str(tag)  # Gmsh physical ids without a name
         tag = r.string(tag, path + ("tag",))
-        if tag not in mesh.facet_tags:
+        if tag not in mesh.facet_groups:
             near = difflib.get_close_matches(tag, tags, n=1)
             hint = f"did you mean {near[0]!r}? " if near else ""
             r.fail(path + ("tag",), f"the mesh has no facet tag {tag!r}",
                    f"{hint}its tags are: {', '.join(repr(t) for t in tags)}")
-        if isinstance(e["kind"], str) and e["kind"].lower() in _TRADE_WORDS:
-            word = _TRADE_WORDS[e["kind"].lower()]
-            r.fail(path + ("kind",), f"{e['kind']!r} is not one of the accepted values",
-                   f"a {e['kind'].capitalize()} condition is written kind = {word!r} here; "
-                   f"write one of: {', '.join(repr(c) for c in BOUNDARY_KINDS)}")
         kind = r.string(e["kind"], path + ("kind",), tuple(BOUNDARY_KINDS))
         keys, _ = BOUNDARY_KINDS[kind]
         for k in SECTIONS["boundary"][2:]:
@@ -732,10 +729,10 @@ def _boundary_entries(r: _Reader, entries, mesh, dim, constants):
                        f"add {k} = <number or formula>; kind {kind!r} means "
                        f"{BOUNDARY_KINDS[kind][1]}")
             values[k] = r.formula(e[k], path + (k,), dim, constants)
-        if kind == "convection" and values["coefficient"].is_constant \
-                and values["coefficient"].value < 0:
-            r.fail(path + ("coefficient",), f"must not be negative, got "
-                   f"{values['coefficient'].value}", "a heat transfer coefficient is >= 0")
+        if kind == "robin" and values["exchange"].is_constant \
+                and values["exchange"].value < 0:
+            r.fail(path + ("exchange",), f"must not be negative, got "
+                   f"{values['exchange'].value}", "an exchange coefficient is >= 0")
         if tag in seen:
             r.fail(path + ("tag",), f"tag {tag!r} already has a condition (boundary entry "
                    f"{seen[tag] + 1})", "give each tag one condition; split the facets into "

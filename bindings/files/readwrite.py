@@ -29,7 +29,7 @@ Writing
 -------
 :func:`write_solution` writes a :class:`~galerkit.problem.Solution` as one
 VTU file; see its docstring for the arrays.  Both writers here and the PNG
-writers in :mod:`galerkit.bindings.plots` write a temporary file next to the
+writers in :mod:`galerkit.bindings.files.plots` write a temporary file next to the
 target and rename it (:func:`atomic_path` then :func:`os.replace`), so a
 reader never sees half a file.
 """
@@ -130,7 +130,7 @@ def read_mesh(path, *, merge_duplicates=False) -> Mesh:
     ...                "gmsh:geometrical": [np.array([1]), np.array([1, 1])]},
     ...     field_data={"floor": np.array([3, 1])}), file_format="gmsh22")
     >>> mesh = read_mesh(f)
-    >>> sorted(mesh.facet_tags), len(mesh.facet_tags["floor"])
+    >>> sorted(mesh.facet_groups), len(mesh.facet_groups["floor"])
     (['boundary', 'floor'], 1)
     """
     return _read_mesh(path, merge_duplicates)[0]
@@ -250,9 +250,7 @@ def _mesh_from_meshio(m, where: str, merge_duplicates=False):
         raise MeshError(f"{where}: {exc} (cell and vertex numbers count the "
                         f"{_CELL_OF_DIM[dim]} cells of the file from 0, and the vertices "
                         "after unused points were dropped)") from None
-    _read_tags(m, mesh, dim, old_to_new, where)
-    if "boundary" not in mesh.facet_tags:
-        mesh.set_facet_tag("boundary", np.arange(mesh.boundary_facets.shape[0]))
+    _read_tags(m, mesh, dim, old_to_new, where)  # a group named "boundary" replaces Mesh's own
     return mesh, joined
 
 
@@ -648,10 +646,10 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
     for key, f in (extra_cell_data or {}).items():
         cell_data[xml_name(key)] = [np.asarray(f(np.asarray(s.parent_cells)))]
     point_data = {xml_name(name): np.asarray(s.values, dtype=np.float64)}
-    for tag in (mesh.facet_tags if tags is None else tags):
+    for tag in (mesh.facet_groups if tags is None else tags):
         member = np.zeros(mesh.n_vertices, dtype=np.uint8)
-        if tag in mesh.facet_tags:
-            member[mesh.boundary_facets[mesh.facet_tags[tag]].ravel()] = 1
+        if tag in mesh.facet_groups:
+            member[mesh.boundary_facets[mesh.facet_groups[tag]].ravel()] = 1
         point_data[xml_name(TAG_ARRAY_PREFIX + tag)] = member
     out = meshio.Mesh(pts, [(_CELL_OF_DIM[d], np.asarray(mesh.cells))], point_data=point_data,
                       cell_data=cell_data)

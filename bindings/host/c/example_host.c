@@ -1,15 +1,15 @@
 /*
  * example_host.c -- a C host that assembles P1 matrices through galerkit's C entry points.
  *
- * It starts an embedded Python, imports galerkit.bindings.cfuncs, reads the
+ * It starts an embedded Python, imports galerkit.bindings.host.cfuncs, reads the
  * function addresses from cfuncs.addresses(), builds a structured triangle
  * mesh of the unit square in C, assembles on its own arrays through the
  * function pointers and checks the results against exact values.  Prints one
  * line per check and PASS or FAIL; exit status 0 only when every check passes.
  *
  * Build (flags of the Python that has galerkit installed):
- *   cc -std=c99 -O2 -I bindings/c $(python3-config --embed --cflags) \
- *      bindings/c/example_host.c $(python3-config --embed --ldflags) -o example_host
+ *   cc -std=c99 -O2 -I bindings/host/c $(python3-config --embed --cflags) \
+ *      bindings/host/c/example_host.c $(python3-config --embed --ldflags) -o example_host
  * Run:
  *   GALERKIT_SITE_DIRS=<site-packages of that Python, os.pathsep-separated> ./example_host
  *   (PYTHONHOME=<its base prefix> if the interpreter does not find its standard library)
@@ -52,10 +52,10 @@ static int load_api(struct galerkit_api *api, int32_t *n_threads)
         "        site.addsitedir(d)\n";
     if (PyRun_SimpleString(setup) != 0)
         return -1;
-    PyObject *module = PyImport_ImportModule("galerkit.bindings.cfuncs");
+    PyObject *module = PyImport_ImportModule("galerkit.bindings.host.cfuncs");
     if (module == NULL) {
         PyErr_Print();
-        fprintf(stderr, "cannot import galerkit.bindings.cfuncs: set GALERKIT_SITE_DIRS to the "
+        fprintf(stderr, "cannot import galerkit.bindings.host.cfuncs: set GALERKIT_SITE_DIRS to the "
                         "site-packages where galerkit is installed\n");
         return -1;
     }

@@ -5,7 +5,7 @@ Subcommands
 ``demo``       a built-in scenario (cooling plate); writes VTU and PNG
 ``verify``     a manufactured-solution convergence study; writes a PNG
 ``mesh-info``  counts, tags and quality of a mesh file
-``solve``      solve a problem file (TOML, see the README section "Problem files")
+``solve``      solve a problem file (TOML, see docs/problem-files.md)
 ``bench``      every registered solver on one assembled system
 
 ``--quiet`` (no progress bars, no headings, no caution: the result lines only)
@@ -156,14 +156,14 @@ def _demo(args) -> int:
     """Steady temperature in a battery-pack cooling plate (a scenario of our own).
 
     An aluminium plate 0.30 m x 0.20 m carries six cells that each dissipate
-    heat into it; the bottom edge is cooled by a coolant channel (convective,
-    Robin), the other edges are insulated.  All numbers are invented for the
+    heat into it; the edge y = 0 (``ymin``) is cooled by a coolant channel (a Robin
+    condition), the other edges carry no flux (homogeneous Neumann).  All numbers are invented for the
     demonstration.
     """
     import galerkit as gk
     from galerkit.errors import InputError
-    from .files import write_solution
-    from .plots import plot_field
+    from ..files import write_solution
+    from ..files.plots import plot_field
 
     if args.size < 3:
         raise InputError(f"demo: --size must be at least 3, got {args.size}")
@@ -186,7 +186,7 @@ def _demo(args) -> int:
     # coolant film coefficient 1500 W/(m^2 K) per unit plate thickness, at 25 deg C
     h_coolant, t_coolant = 1500.0 / thickness, 25.0
     problem = gk.PoissonProblem(mesh, conductivity=kappa, source=source,
-                                robin={"bottom": (h_coolant, t_coolant)})
+                                robin={"ymin": (h_coolant, t_coolant)})
     t0 = time.perf_counter()
     sol = problem.solve(degree=1, method=args.method, rtol=1e-10)
     total = time.perf_counter() - t0
@@ -232,7 +232,7 @@ def _demo(args) -> int:
 def _verify(args) -> int:
     import galerkit as gk
     from galerkit.errors import InputError
-    from .plots import plot_convergence
+    from ..files.plots import plot_convergence
 
     if args.levels < 2:
         raise InputError(f"verify: --levels must be at least 2 (an order needs two meshes), "
@@ -283,13 +283,14 @@ def _verify(args) -> int:
     png = Path(args.output)
     if png.parent != Path("."):
         _folder(png.parent)
-    plot_convergence(png, table, title=f"P{k} on {args.cell}s: u = prod sin(pi x_i)")
+    plot_convergence(png, table, title=f"P{k} on {_plural(args.cell)}: u = prod sin(pi x_i)")
     if args.json:
         _print_json({"rows": table.rows, "eoc_l2": l2, "eoc_h1": h1, "pass_l2": ok_l2,
                      "pass_h1": ok_h1, "plot": str(png), "caution": CAUTION})
     else:
         say = _Report(args)
-        say.head(f"galerkit verify: manufactured solution prod sin(pi x_i), P{k} on {args.cell}s")
+        say.head(f"galerkit verify: manufactured solution prod sin(pi x_i), P{k} on "
+                 f"{_plural(args.cell)}")
         say.result(table.to_markdown())
         say.result(f"  L2 order {l2:.2f} (theory {k + 1}): {'pass' if ok_l2 else 'FAIL'}")
         say.result(f"  H1 order {h1:.2f} (theory {k}): {'pass' if ok_h1 else 'FAIL'}")
@@ -303,7 +304,7 @@ def tag_overlaps(mesh) -> list:
     """One line per pair of facet tags that share facets (a tag holding the whole
     boundary, such as ``boundary``, is left out: it overlaps every tag)."""
     n = mesh.boundary_facets.shape[0]
-    tags = [(k, v) for k, v in mesh.facet_tags.items() if len(v) < n]
+    tags = [(k, v) for k, v in mesh.facet_groups.items() if len(v) < n]
     out = []
     for i, (a, fa) in enumerate(tags):
         for b, fb in tags[i + 1:]:
@@ -314,22 +315,42 @@ def tag_overlaps(mesh) -> list:
     return out
 
 
+#: the quality quantiles ``mesh-info`` shows: (name, probability)
+QUALITY_QUANTILES = (("min", 0.0), ("1%", 0.01), ("5%", 0.05), ("50%", 0.5))
+
+
+def worst_cells(mesh, quality, n) -> list:
+    """The ``n`` cells of lowest shape quality, worst first (ties: lower cell id first),
+    each as ``{"cell", "quality", "centroid"}``."""
+    n = min(max(int(n), 0), mesh.n_cells)
+    if n == 0:
+        return []
+    ids = np.lexsort((np.arange(mesh.n_cells), quality))[:n]
+    centroids = mesh.points[mesh.cells[ids]].mean(axis=1)
+    return [{"cell": int(c), "quality": float(quality[c]), "centroid": [float(v) for v in x]}
+            for c, x in zip(ids, centroids)]
+
+
 def _mesh_info(args) -> int:
-    from .files import read_mesh
+    from ..files import read_mesh
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         mesh = read_mesh(args.file)
     notes = [str(w.message) for w in caught] + tag_overlaps(mesh)
     q = mesh.quality()
-    hist, edges = np.histogram(mesh.cell_quality(), bins=10, range=(0.0, 1.0))
+    quality = mesh.cell_quality()
+    # quantiles by rank: each is the quality of an actual cell (numpy's "lower" method)
+    quantiles = {name: float(np.quantile(quality, p, method="lower"))
+                 for name, p in QUALITY_QUANTILES}
+    worst = worst_cells(mesh, quality, args.worst)
     info = {"file": args.file, "cell_type": mesh.cell_type, "cells": mesh.n_cells,
             "vertices": mesh.n_vertices, "boundary_facets": int(mesh.boundary_facets.shape[0]),
             "reoriented_cells": mesh.n_reoriented,
-            "tags": {k: int(len(v)) for k, v in mesh.facet_tags.items()},
+            "tags": {k: int(len(v)) for k, v in mesh.facet_groups.items()},
             "volume": float(mesh.cell_volumes.sum()),
             "min_shape_quality": q.min_shape_quality, "mean_shape_quality": q.mean_shape_quality,
-            "quality_histogram": hist.tolist(), "warnings": notes}
+            "quality_quantiles": quantiles, "worst_cells": worst, "warnings": notes}
     if args.json:
         _print_json(info)
         return 0
@@ -343,9 +364,12 @@ def _mesh_info(args) -> int:
     for n in notes:
         say.result(f"  warning: {n}")
     say.result(f"  shape quality min {q.min_shape_quality:.3f}, mean {q.mean_shape_quality:.3f}")
-    top = max(hist.max(), 1)
-    for count, lo in zip(hist, edges[:-1]):
-        say.result(f"  {lo:3.1f}-{lo + 0.1:3.1f} {count:9d} " + "#" * int(40 * count / top))
+    say.result("  quality quantiles: " + ", ".join(f"{k} {v:.3f}" for k, v in quantiles.items()))
+    if worst:
+        say.result(f"  the {len(worst)} worst cells (quality, cell id, centroid):")
+    for w in worst:
+        at = ", ".join(f"{c:.6g}" for c in w["centroid"])
+        say.result(f"    {w['quality']:.3f}  cell {w['cell']:>9d}  at ({at})")
     return 0
 
 
@@ -430,8 +454,8 @@ def _solve(args) -> int:
         raise InputError("--petsc-options applies to --engine petsc only; add --engine petsc "
                          "(under mpiexec) or remove it")
     from galerkit.errors import InputError
-    from .files import write_solution
-    from .plots import plot_field
+    from ..files import write_solution
+    from ..files.plots import plot_field
     from .problemfile import load_problem
 
     bar = _progress(args, 4, "solve")
@@ -498,7 +522,7 @@ def _solve(args) -> int:
         "problem": str(args.problem), "title": opts.title,
         "mesh": {"source": spec.mesh_description, "cell_type": mesh.cell_type,
                  "cells": mesh.n_cells, "vertices": mesh.n_vertices,
-                 "tags": {k: int(len(v)) for k, v in mesh.facet_tags.items()}},
+                 "tags": {k: int(len(v)) for k, v in mesh.facet_groups.items()}},
         "degree": sol.disc.degree, "dofs": sol.disc.n_dofs,
         "solver": {"requested": opts.method, "method": rep.method,
                    "iterations": rep.iterations, "relative_residual": rep.final_residual,
@@ -532,7 +556,7 @@ def _solve_distributed(args) -> int:
     import os
 
     from galerkit.errors import InputError
-    from .petsc_engine import _modules, _on_root, solve_distributed, write_pieces
+    from ..distributed.petsc_engine import _modules, _on_root, solve_distributed, write_pieces
     from .problemfile import load_problem
 
     MPI, _ = _modules()
@@ -715,7 +739,7 @@ def _generated_problem(kind, size, degree):
     data = {"mesh": {"generator": kind, "cells": size},
             "discretization": {"degree": degree or 1},
             "source": {"value": f"{d}*pi^2*{u}"},
-            "boundary": [{"tag": "boundary", "kind": "fixed", "value": 0}],
+            "boundary": [{"tag": "boundary", "kind": "dirichlet", "u": 0}],
             "exact": {"solution": u, "gradient": grad}}
     return parse_problem(data, source=f"--generate {kind} --size {size}", stem=f"bench-{kind}")
 
@@ -724,7 +748,7 @@ def _bench(args) -> int:
     from galerkit.errors import InputError
     from galerkit.solvers import available_solvers, prepare_solver, register_solver, \
         unregister_solver
-    from .plots import plot_residuals
+    from ..files.plots import plot_residuals
     from .problemfile import load_problem
 
     if (args.problem is None) == (args.generate is None):
@@ -886,7 +910,7 @@ def _warm(args) -> int:
 
     import galerkit as gk
     from galerkit.compilation import cache_folder, compile_count, compile_seconds
-    from .files import write_solution
+    from ..files import write_solution
 
     t0 = time.perf_counter()
     c0, n0 = compile_seconds(), compile_count()
@@ -906,8 +930,8 @@ def _warm(args) -> int:
                 t = time.perf_counter()
                 problem = gk.PoissonProblem(mesh, conductivity=lambda x: 1.0 + x[0] ** 2,
                                             source=lambda x: 1.0 + x[0] * x[1],
-                                            dirichlet={"left": 0.0}, neumann={"top": 1.0},
-                                            robin={"right": (2.0, 1.0)})
+                                            dirichlet={"xmin": 0.0}, neumann={"ymax": 1.0},
+                                            robin={"xmax": (2.0, 1.0)})
                 sol = problem.solve(degree=degree, method=method, rtol=1e-8)
                 gk.l2_error(sol.disc, sol.u, lambda x: 0 * x[0])
                 gk.h1_seminorm_error(sol.disc, sol.u, lambda x: 0 * x)
@@ -968,12 +992,15 @@ def build_parser() -> argparse.ArgumentParser:
     v.set_defaults(run=_verify)
     m = sub.add_parser("mesh-info", parents=[common],
                        help="counts, tags and quality of a mesh file")
-    m.add_argument("file")
+    m.add_argument("file", help="the mesh file (any format meshio reads, e.g. .msh, .vtu)")
+    m.add_argument("--worst", type=int, default=5, metavar="N",
+                   help="list the N cells of lowest shape quality with their ids and "
+                        "centroids (default 5; 0 lists none)")
     m.set_defaults(run=_mesh_info)
     s = sub.add_parser("solve", parents=[common],
                        help="solve a problem file (TOML); writes VTU and, with --plot, PNG",
                        description="Solve the problem of a TOML problem file (see "
-                       "README, Problem files). Flags override the file.")
+                       "docs/problem-files.md). Flags override the file.")
     s.add_argument("problem", help="the problem file (.toml)")
     s.add_argument("--degree", type=int, choices=[1, 2, 3, 4], help="element degree")
     s.add_argument("--method", help="solver name, or auto")

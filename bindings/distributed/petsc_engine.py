@@ -10,8 +10,8 @@ Flow (every rank runs :func:`solve_distributed`; SPMD)
 ------------------------------------------------------
 1. Rank 0 holds the problem (its global mesh), numbers the global dofs
    (:class:`~galerkit.Discretization`), finds the Dirichlet dofs and values,
-   partitions the cells (:mod:`galerkit.bindings.partition`) and sends each
-   rank its :class:`~galerkit.bindings.partition.LocalPart` and the
+   partitions the cells (:mod:`galerkit.bindings.distributed.partition`) and sends each
+   rank its :class:`~galerkit.bindings.distributed.partition.LocalPart` and the
    problem's data (coefficients pickled; per-cell and per-dof arrays cut to
    the rank's cells and dofs), one part at a time.
 2. Each rank builds its own :class:`~galerkit.Mesh` and
@@ -73,8 +73,8 @@ def _modules():
     except ImportError as exc:
         raise InputError(
             f"the petsc engine needs mpi4py and petsc4py ({exc}); install them with "
-            "`make mpi` (builds PETSc from source, 11-20 minutes the first time), or run "
-            "without --engine petsc") from None
+            "`make mpi` (builds PETSc from source, about 25 minutes on 2 cores the first "
+            "time), or run without --engine petsc") from None
     if not petsc4py.__dict__.get("_galerkit_init"):
         # keep the command line's own flags out of PETSc's option database
         petsc4py.init([sys.argv[0] if sys.argv else "galerkit"])
@@ -333,8 +333,8 @@ def _problem_data(problem, n_dofs, part):
     return {
         "conductivity": _cut(problem.conductivity, m, n_dofs, c, d, "conductivity"),
         "source": _cut(problem.source, m, n_dofs, c, d, "source"),
-        "neumann": {t: v for t, v in problem.neumann.items() if t in part.facet_tags},
-        "robin": {t: v for t, v in problem.robin.items() if t in part.facet_tags},
+        "neumann": {t: v for t, v in problem.neumann.items() if t in part.facet_groups},
+        "robin": {t: v for t, v in problem.robin.items() if t in part.facet_groups},
     }
 
 
@@ -388,12 +388,15 @@ def _local_mesh(part, dim):
     from galerkit.elements import REFERENCE_FACETS
 
     mesh = Mesh(part.points, part.local_cells)
+    # the rank's own boundary includes the cuts between ranks: only the global
+    # groups (part.facet_groups, "boundary" among them) name facets here
+    del mesh.facet_groups["boundary"]
     if part.points.shape[1] != dim:
         raise SolverError("local mesh of another dimension")
     nf = len(REFERENCE_FACETS[dim])
     keys = mesh.boundary_facet_cells.astype(np.int64) * nf + mesh.boundary_facet_local
     order = np.argsort(keys, kind="stable")
-    for tag, pairs in part.facet_tags.items():
+    for tag, pairs in part.facet_groups.items():
         want = pairs[:, 0] * nf + pairs[:, 1]
         pos = np.searchsorted(keys[order], want)
         ok = (pos < keys.size) & (keys[order][np.minimum(pos, keys.size - 1)] == want)
@@ -465,7 +468,7 @@ def prepare_parts(problem, degree, n_parts, *, exact=None, exact_gradient=None):
     n_comp = int(dof_label.max()) + 1
     header = {"dim": problem.mesh.dim, "n_dofs": disc.n_dofs,
               "n_cells": problem.mesh.n_cells, "n_vertices": problem.mesh.n_vertices,
-              "tags": list(problem.mesh.facet_tags),
+              "tags": list(problem.mesh.facet_groups),
               "n_global": layout.n_global, "partition": quality,
               "floating": int(floating.size), "components": n_comp,
               "exact": (exact, exact_gradient)}
@@ -841,7 +844,7 @@ def write_pieces(folder, stem, sol: DistributedSolution, *, name="u"):
 
     from galerkit.problem import Solution
 
-    from .files import write_parallel_index, write_solution
+    from ..files.readwrite import write_parallel_index, write_solution
 
     folder = Path(folder)
     comm = sol._comm

@@ -1,7 +1,7 @@
 """C-callable entry points: numba ``cfunc`` s for host codes written in C, C++ or Fortran.
 
 Each function here is a native function with a plain C signature (declared
-in ``bindings/c/galerkit.h``); :func:`addresses` returns their addresses, so
+in ``bindings/host/c/galerkit.h``); :func:`addresses` returns their addresses, so
 a host that embeds Python (``Py_Initialize``) -- or Python itself, through
 ``ctypes`` -- calls them directly on its own arrays, with no Python objects
 involved.  The bodies call the numba kernels of :mod:`galerkit.assembly` and
@@ -29,7 +29,7 @@ Design (symbolic and numeric phases, as in the kernel)
 Conventions: indices are 0-based ``int32_t`` (meshes below 2**31 dofs and
 entries), arrays row-major; degree 1..4 (the generic degree needs the cell
 -> dof table in galerkit's local node order, e.g. ``plan["cell_dofs"]`` of
-:func:`galerkit.bindings.embed.pattern`; for degree 1 ``cell_dofs`` is not
+:func:`galerkit.bindings.host.embed.pattern`; for degree 1 ``cell_dofs`` is not
 read and the cells are the dofs).
 
 Validation: every call checks counts, index ranges (cells, dofs, pattern,
@@ -328,7 +328,7 @@ def _kernel_stamp():
     """
     h = hashlib.sha256()
     for name in ("assembly", "functionals", "geometry", "mesh", "topology", "elements",
-                 "quadrature", "bindings.embed"):
+                 "quadrature", "bindings.host.embed"):
         module = importlib.import_module(f"galerkit.{name}")
         with open(module.__file__, "rb") as f:
             h.update(f.read())

@@ -65,7 +65,7 @@ at a time.
 Examples
 --------
 >>> import numpy as np
->>> from galerkit.bindings import embed
+>>> from galerkit.bindings.host import embed
 >>> points = np.array([[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [1.0, 1.0]])
 >>> cells = np.array([[0, 1, 2], [1, 3, 2]], dtype=np.int32)
 >>> indptr, indices, plan = embed.pattern(cells)
@@ -115,7 +115,7 @@ _PLAN_KEYS = ("dim", "degree", "n_vertices", "n_cells", "n_dofs", "nnz", "cells"
 
 
 # ----------------------------------------------------------------------------
-# validation kernels (shared with galerkit.bindings.cfuncs)
+# validation kernels (shared with galerkit.bindings.host.cfuncs)
 # ----------------------------------------------------------------------------
 @nb.njit(cache=True)
 def _first_nonfinite(a):

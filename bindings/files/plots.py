@@ -15,7 +15,7 @@ import numpy as np  # noqa: E402
 
 from galerkit.errors import InputError  # noqa: E402
 
-from .files import sample_solution, write_atomically  # noqa: E402
+from .readwrite import sample_solution, write_atomically  # noqa: E402
 
 __all__ = ["plot_field", "plot_convergence", "plot_residuals", "PNG_SIGNATURE"]
 

@@ -1,7 +1,7 @@
 """Partitioning a discretization across ranks: cells, dof ownership, local maps.
 
 Everything here is plain NumPy and numba on one process: no MPI.  The
-distributed engine (:mod:`galerkit.bindings.petsc_engine`) calls it on rank 0
+distributed engine (:mod:`galerkit.bindings.distributed.petsc_engine`) calls it on rank 0
 and sends each rank its :class:`LocalPart`; the tests and the scaling report
 call it for any number of parts without running that many ranks.
 
@@ -294,7 +294,7 @@ class LocalPart:
     row_range : (int, int)
         The distributed rows this rank owns.
     n_global : int
-    facet_tags : dict
+    facet_groups : dict
         ``tag -> (local cell, local facet)`` pairs of the rank's tagged
         boundary facets, shape (k, 2).
     """
@@ -312,7 +312,7 @@ class LocalPart:
     global_index: np.ndarray
     row_range: tuple
     n_global: int
-    facet_tags: dict
+    facet_groups: dict
 
     @property
     def n_ghosts(self) -> int:
@@ -345,7 +345,7 @@ def local_part(disc, layout: DofLayout, rank: int, fixed_values=None) -> LocalPa
     if fixed_values is not None:
         values[layout.fixed[dofs]] = np.asarray(fixed_values)[dofs[layout.fixed[dofs]]]
     tags = {}
-    for name, ids in mesh.facet_tags.items():
+    for name, ids in mesh.facet_groups.items():
         fc = mesh.boundary_facet_cells[ids].astype(np.int64)
         keep = layout.parts[fc] == rank
         if keep.any():
@@ -359,7 +359,7 @@ def local_part(disc, layout: DofLayout, rank: int, fixed_values=None) -> LocalPa
         owned=layout.owner[dofs] == rank, fixed=layout.fixed[dofs].copy(),
         fixed_values=values, global_index=layout.global_index[dofs],
         row_range=(int(layout.offsets[rank]), int(layout.offsets[rank + 1])),
-        n_global=layout.n_global, facet_tags=tags)
+        n_global=layout.n_global, facet_groups=tags)
 
 
 # ----------------------------------------------------------------------------

@@ -2,10 +2,10 @@
  * galerkit.h -- C entry points of galerkit: finite element assembly on a host's arrays.
  *
  * The functions are numba cfuncs compiled inside an embedded Python
- * interpreter (module galerkit.bindings.cfuncs); there is no library to link.
- * A host starts Python (Py_Initialize), imports galerkit.bindings.cfuncs,
+ * interpreter (module galerkit.bindings.host.cfuncs); there is no library to link.
+ * A host starts Python (Py_Initialize), imports galerkit.bindings.host.cfuncs,
  * calls its addresses() function -- a dict {name: address} -- and casts each
- * address to the function pointer types below (bindings/c/example_host.c
+ * address to the function pointer types below (bindings/host/c/example_host.c
  * shows the 40 lines it takes).  The addresses stay valid until Py_Finalize.
  *
  * Conventions
@@ -17,7 +17,7 @@
  *   - degree 1: the dofs are the vertices, n_dofs == n_vertices, and
  *     cell_dofs is not read (pass cells).  Degree > 1: cell_dofs in galerkit's
  *     local node order (vertices, then edge, face and interior nodes), for
- *     example plan["cell_dofs"] of galerkit.bindings.embed.pattern();
+ *     example plan["cell_dofs"] of galerkit.bindings.host.embed.pattern();
  *   - no pointer may be NULL, except cell_dofs for degree 1 (not read);
  *   - the matrix is CSR: row i holds columns indices[indptr[i] .. indptr[i+1]-1],
  *     sorted, values in data[] at the same positions.
@@ -32,7 +32,7 @@
  *      galerkit_load (into out[n_dofs])                       every time values change
  *   4. galerkit_p1_l2_error / galerkit_p1_h1_seminorm_error  any time
  *   n_chunks is the number of row ranges assembled in parallel (use numba's
- *   thread count: galerkit.bindings.cfuncs.num_threads()); pass the same
+ *   thread count: galerkit.bindings.host.cfuncs.num_threads()); pass the same
  *   value to the count, fill and numeric calls.
  *
  * Ownership: the caller allocates and frees every array; galerkit keeps no
@@ -61,7 +61,7 @@
 extern "C" {
 #endif
 
-/* status codes (galerkit.bindings.cfuncs.STATUS, describe_status()) */
+/* status codes (galerkit.bindings.host.cfuncs.STATUS, describe_status()) */
 #define GALERKIT_OK             0   /* success */
 #define GALERKIT_E_ARGUMENT    -1   /* a count or option out of range: fix the call */
 #define GALERKIT_E_INDEX       -2   /* a cell / cell_dofs index outside 0..n-1 or repeated */

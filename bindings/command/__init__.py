@@ -1,0 +1,2 @@
+"""People: the ``galerkit`` command (:mod:`.cli`), problem files
+(:mod:`.problemfile`) and the coefficient formulas in them (:mod:`.expressions`)."""
