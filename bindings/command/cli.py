@@ -20,14 +20,12 @@ names the problem, and with ``--json`` stdout carries it as one JSON object).
 from __future__ import annotations
 
 import argparse
-import gc
 import json
 import math
 import re
 import resource
 import sys
 import time
-import tracemalloc
 import warnings
 from dataclasses import replace
 from pathlib import Path
@@ -41,11 +39,6 @@ CAUTION = (
 )
 
 #: What the memory column of ``bench`` measures.
-BENCH_MEMORY_MEASURE = (
-    "peak of the memory traced by tracemalloc (Python and NumPy allocations, which in "
-    "SciPy include the SuperLU factors) during set-up and solve of each method, "
-    "beyond what was allocated before it; timings are taken with tracemalloc on"
-)
 
 
 #: control characters (C0 but newline, DEL, C1) and the bidirectional overrides:
@@ -229,17 +222,8 @@ def _demo(args) -> int:
 
 
 # -- verify ------------------------------------------------------------------------
-def _verify(args) -> int:
-    import galerkit as gk
-    from galerkit.errors import InputError
-    from ..files.plots import plot_convergence
-
-    if args.levels < 2:
-        raise InputError(f"verify: --levels must be at least 2 (an order needs two meshes), "
-                         f"got {args.levels}")
+def _manufactured(d):
     pi = np.pi
-    d = 2 if args.cell == "triangle" else 3
-    k = args.degree
 
     def exact(x):
         return np.prod(np.sin(pi * x), axis=0)
@@ -254,49 +238,110 @@ def _verify(args) -> int:
     def source(x):
         return d * pi * pi * exact(x)
 
-    n = args.start_size
-    if not 1 <= n <= 1000:
-        raise InputError(f"verify: --start-size must be 1..1000 cells per axis, got {n}")
-    if k * n < 2:
-        raise InputError(
-            f"verify: --start-size {n} gives a first mesh without interior unknowns for "
-            f"P{k} (all its dofs lie on the boundary, where u = 0 is fixed); use "
-            f"--start-size {-(-2 // k)} or more")
-    mesh = gk.structured_triangles(n, n) if d == 2 else gk.structured_tetrahedra(n, n, n)
-    problem = gk.PoissonProblem(mesh, source=source, dirichlet={"boundary": 0.0})
-    bar = _progress(args, args.levels, "verify: levels")
+    return exact, grad, source
 
-    def progress(msg):
-        if bar is not None:
-            bar.set_postfix_str(msg)
-            bar.update(1)
 
-    try:
-        table = gk.convergence_study(problem, args.levels, k, exact, grad, progress=progress)
-    finally:
-        if bar is not None:
-            bar.close()
-    l2 = table.column("eoc_l2")[-1]
-    h1 = table.column("eoc_h1")[-1]
-    ok_l2 = abs(l2 - (k + 1)) <= args.tolerance
-    ok_h1 = abs(h1 - k) <= args.tolerance
-    png = Path(args.output)
-    if png.parent != Path("."):
-        _folder(png.parent)
-    plot_convergence(png, table, title=f"P{k} on {_plural(args.cell)}: u = prod sin(pi x_i)")
-    if args.json:
-        _print_json({"rows": table.rows, "eoc_l2": l2, "eoc_h1": h1, "pass_l2": ok_l2,
-                     "pass_h1": ok_h1, "plot": str(png), "caution": CAUTION})
+def _verify(args) -> int:
+    import galerkit as gk
+    from galerkit.errors import InputError
+    from ..files import write_atomically
+    from ..files.plots import plot_convergence
+    from .problemfile import load_problem
+
+    if args.levels < 2:
+        raise InputError(f"verify: --levels must be at least 2 (an order needs two meshes), "
+                         f"got {args.levels}")
+    degrees = _int_list(args.degrees, "--degrees") if args.degrees else None
+    for k in degrees or ():
+        if k not in (1, 2, 3, 4):
+            raise InputError(f"verify: --degrees: degree {k} is not one of 1, 2, 3, 4")
+    method, rtol = "auto", 1e-12
+    if args.problem is not None:
+        if args.cell is not None or args.start_size is not None:
+            raise InputError("verify: --cell and --start-size apply to the manufactured "
+                             "problem; a problem file gives its own mesh")
+        spec = load_problem(args.problem, stay_in_folder=args.stay_in_folder)
+        problem, opts = spec.build()
+        if opts.exact is None or opts.exact_gradient is None:
+            raise InputError(f"verify: {args.problem}: the problem file needs an [exact] "
+                             "section with solution and gradient (the errors are measured "
+                             "against them)")
+        exact, grad = opts.exact, opts.exact_gradient
+        degrees = degrees or [opts.degree]
+        method, rtol = opts.method, min(opts.rtol, 1e-10)
+        folder = _folder(args.output or opts.folder)
+        stem, what = opts.stem, f"{args.problem}"
+        cell = spec.mesh.cell_type
     else:
-        say = _Report(args)
-        say.head(f"galerkit verify: manufactured solution prod sin(pi x_i), P{k} on "
-                 f"{_plural(args.cell)}")
+        cell = args.cell or "triangle"
+        d = 2 if cell == "triangle" else 3
+        n = 2 if args.start_size is None else args.start_size
+        if not 1 <= n <= 1000:
+            raise InputError(f"verify: --start-size must be 1..1000 cells per axis, got {n}")
+        degrees = degrees or [1]
+        for k in degrees:
+            if k * n < 2:
+                raise InputError(
+                    f"verify: --start-size {n} gives a first mesh without interior unknowns "
+                    f"for P{k} (all its dofs lie on the boundary, where u = 0 is fixed); use "
+                    f"--start-size {-(-2 // k)} or more")
+        exact, grad, source = _manufactured(d)
+        mesh = gk.structured_triangles(n, n) if d == 2 else gk.structured_tetrahedra(n, n, n)
+        problem = gk.PoissonProblem(mesh, source=source, dirichlet={"boundary": 0.0})
+        folder = _folder(args.output or "galerkit-out")
+        stem, what = f"verify-{cell}", "manufactured solution prod sin(pi x_i)"
+    tables, results = [], []
+    for k in degrees:
+        bar = _progress(args, args.levels, f"verify: P{k} levels")
+        if not (args.quiet or args.json):
+            print(f"verify: P{k}, {args.levels} levels ...", file=sys.stderr, flush=True)
+
+        def progress(msg, bar=bar):
+            if bar is not None:
+                bar.set_postfix_str(msg)
+                bar.update(1)
+
+        try:
+            table = gk.convergence_study(problem, args.levels, k, exact, grad, method=method,
+                                         rtol=rtol, progress=progress)
+        finally:
+            if bar is not None:
+                bar.close()
+        l2, h1 = table.column("eoc_l2")[-1], table.column("eoc_h1")[-1]
+        results.append({"degree": k, "rows": table.rows, "eoc_l2": l2, "eoc_h1": h1,
+                        "pass_l2": bool(abs(l2 - (k + 1)) <= args.tolerance),
+                        "pass_h1": bool(abs(h1 - k) <= args.tolerance)})
+        tables.append(table)
+    png = plot_convergence(folder / f"{stem}.png", tables,
+                           title=f"{', '.join(f'P{k}' for k in degrees)} on {_plural(cell)}")
+    csv_path = folder / f"{stem}.csv"
+    text = "degree," + tables[0].to_csv().split("\n", 1)[0] + "\n" + "".join(
+        "".join(f"{t.degree},{line}\n" for line in t.to_csv().strip().split("\n")[1:])
+        for t in tables)
+    write_atomically(csv_path, lambda tmp: Path(tmp).write_text(text))
+    ok = all(r["pass_l2"] and r["pass_h1"] for r in results)
+    if args.json:
+        out = {"degrees": results, "plot": str(png), "csv": str(csv_path), "pass": ok,
+               "caution": CAUTION}
+        if len(results) == 1:  # one degree: its numbers at the top level too
+            out.update({k: v for k, v in results[0].items() if k != "degree"})
+        _print_json(out)
+        return 0 if ok else 1
+    say = _Report(args)
+    say.head(f"galerkit verify: {what}, {', '.join(f'P{k}' for k in degrees)} on "
+             f"{_plural(cell)}")
+    for r, table in zip(results, tables):
+        k = r["degree"]
+        say.result(f"P{k}:")
         say.result(table.to_markdown())
-        say.result(f"  L2 order {l2:.2f} (theory {k + 1}): {'pass' if ok_l2 else 'FAIL'}")
-        say.result(f"  H1 order {h1:.2f} (theory {k}): {'pass' if ok_h1 else 'FAIL'}")
-        say.result(f"  wrote {png}")
-        say.caution()
-    return 0 if (ok_l2 and ok_h1) else 1
+        say.result(f"  L2 order {r['eoc_l2']:.2f} (theory {k + 1}): "
+                   f"{'pass' if r['pass_l2'] else 'FAIL'}")
+        say.result(f"  H1 order {r['eoc_h1']:.2f} (theory {k}): "
+                   f"{'pass' if r['pass_h1'] else 'FAIL'}")
+    say.result(f"  wrote {png}")
+    say.result(f"  wrote {csv_path}")
+    say.caution()
+    return 0 if ok else 1
 
 
 # -- mesh-info ------------------------------------------------------------------------
@@ -652,203 +697,84 @@ def _solve_distributed(args) -> int:
 
 
 # -- bench ------------------------------------------------------------------------
-class _Recorder:
-    """A registered 'solver' that keeps the constrained system and solves nothing."""
+def _int_list(text, flag):
+    from galerkit.errors import InputError
 
-    def __init__(self):
-        self.A = None
-        self.b = None
-
-    def factory(self, A):
-        self.A = A.copy()  # the kernel's own matrix stays the kernel's
-        return self
-
-    def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
-        from galerkit.solvers import SolveReport
-
-        self.b = np.array(b, dtype=np.float64)
-        return SolveReport(x=np.zeros_like(self.b), converged=True, iterations=0,
-                           residuals=np.array([1.0]))
-
-
-class _Replay:
-    """A registered 'solver' that hands back a report computed earlier."""
-
-    def __init__(self):
-        self.report = None
-
-    def factory(self, A):
-        return self
-
-    def solve(self, b, x0=None, rtol=1e-10, maxiter=None, callback=None):
-        return self.report
-
-
-def _bench_one(m, A, b, dim, degree, opts, prepare_solver):
-    """Set up and solve with one method under tracemalloc: (row, report or None)."""
-    from galerkit.errors import GalerkitError
-
-    row = {"method": m, "setup_seconds": None, "solve_seconds": None, "iterations": None,
-           "final_residual": None, "converged": False, "peak_mb": None, "l2_error": None,
-           "h1_error": None, "message": "", "facts": {}}
-    gc.collect()
-    tracemalloc.start()
     try:
-        prepared = prepare_solver(A, m, dim=dim, degree=degree)
-        rep = prepared.solve(b, rtol=opts.rtol, maxiter=opts.maxiter)
-    except GalerkitError as exc:
-        row["message"] = f"{type(exc).__name__}: {exc}"
-        return row, None
-    finally:
-        row["peak_mb"] = tracemalloc.get_traced_memory()[1] / 2**20
-        tracemalloc.stop()
-    row.update(setup_seconds=rep.setup_seconds, solve_seconds=rep.solve_seconds,
-               iterations=rep.iterations, final_residual=rep.final_residual,
-               converged=rep.converged, message=rep.message,
-               facts={k: v for k, v in rep.options.items()
-                      if isinstance(v, (int, float, str, bool)) or v is None})
-    return row, rep
-
-
-def _warm_up(methods, prepare_solver):
-    """Set up and solve a small system with each method, so imports and compilation
-    (PyAMG, numba) are not part of the timings.  1000 unknowns: above cg-amg's
-    coarsest-level size, so its aggregation and Galerkin kernels run too."""
-    import scipy.sparse as sp
-
-    from galerkit.errors import GalerkitError
-
-    n = 1000
-    A = sp.csr_array(sp.diags([-1.0, 2.0, -1.0], [-1, 0, 1], shape=(n, n)))
-    for m in methods:
-        try:
-            prepare_solver(A, m).solve(np.ones(n), rtol=1e-6)
-        except GalerkitError:
-            pass  # the real run reports it
-
-
-def _generated_problem(kind, size, degree):
-    """The manufactured problem of ``bench --generate``: u = prod sin(pi x_i)."""
-    from .problemfile import parse_problem
-
-    d = 2 if kind == "square" else 3
-    coords = "xyz"[:d]
-    u = "*".join(f"sin(pi*{c})" for c in coords)
-    grad = ["*".join((f"pi*cos(pi*{c})" if c == a else f"sin(pi*{c})") for c in coords)
-            for a in coords]
-    data = {"mesh": {"generator": kind, "cells": size},
-            "discretization": {"degree": degree or 1},
-            "source": {"value": f"{d}*pi^2*{u}"},
-            "boundary": [{"tag": "boundary", "kind": "dirichlet", "u": 0}],
-            "exact": {"solution": u, "gradient": grad}}
-    return parse_problem(data, source=f"--generate {kind} --size {size}", stem=f"bench-{kind}")
+        out = [int(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise InputError(f"{flag}: give comma-separated integers, got {text!r}") from None
+    if not out:
+        raise InputError(f"{flag}: the list is empty")
+    return out
 
 
 def _bench(args) -> int:
     from galerkit.errors import InputError
-    from galerkit.solvers import available_solvers, prepare_solver, register_solver, \
-        unregister_solver
-    from ..files.plots import plot_residuals
-    from .problemfile import load_problem
+    from .bench import BENCH_MEMORY_MEASURE, bench
 
-    if (args.problem is None) == (args.generate is None):
-        raise InputError("bench: give a problem file or --generate square|box, not "
-                         + ("both" if args.problem else "neither"))
-    if args.generate is None and args.size is not None:
-        raise InputError("bench: --size applies to --generate only; the problem file "
-                         "gives its own mesh")
-    known = available_solvers()
-    if args.methods:
+    if args.generate is None and (args.size is not None or args.sizes is not None):
+        raise InputError("bench: --size and --sizes apply to --generate only; the problem "
+                         "file gives its own mesh")
+    if args.size is not None and args.sizes is not None:
+        raise InputError("bench: give --size or --sizes, not both")
+    sizes = None
+    if args.sizes is not None:
+        sizes = _int_list(args.sizes, "--sizes")
+    elif args.size is not None:
+        sizes = [args.size]
+    methods = None
+    if args.methods is not None:
         methods = [m.strip() for m in args.methods.split(",") if m.strip()]
-        for m in methods:
-            if m not in known:
-                raise InputError(f"bench: --methods: {m!r} is not a registered solver; "
-                                 f"available: {', '.join(known)}")
         if not methods:
             raise InputError("bench: --methods is empty; give names such as direct,cg-amg")
-    else:
-        methods = known
+    modules = [m.strip() for m in (args.solvers_module or []) if m.strip()]
+    _check_rtol(args.rtol)
+
+    def progress(msg):
+        if not (args.quiet or args.json):
+            print(printable(msg), file=sys.stderr, flush=True)
+
+    table = bench(args.problem, generate=args.generate, sizes=sizes, degree=args.degree,
+                  methods=methods, rtol=args.rtol, maxiter=args.maxiter, repeat=args.repeat,
+                  budget_seconds=args.budget_seconds, budget_mb=args.budget_mb,
+                  solvers_module=modules, stay_in_folder=args.stay_in_folder,
+                  progress=progress)
     if args.generate is not None:
-        size = args.size if args.size is not None else {"square": 64, "box": 10}[args.generate]
-        if size < 1:
-            raise InputError(f"bench: --size must be at least 1, got {size}")
-        spec = _generated_problem(args.generate, size, args.degree)
-        where = f"generated {args.generate}"
+        stem, where = f"bench-{args.generate}", f"generated {args.generate}"
     else:
-        spec = load_problem(args.problem, stay_in_folder=args.stay_in_folder)
-        where = str(args.problem)
-    problem, opts = spec.build()
-    opts = _apply_overrides(args, opts)
-    recorder, replay = _Recorder(), _Replay()
-    record_name, replay_name = "bench:record", "bench:replay"
-    register_solver(record_name, recorder.factory, overwrite=True)
-    register_solver(replay_name, replay.factory, overwrite=True)
-    rows, histories = [], {}
-    try:
-        base = problem.solve(degree=opts.degree, method=record_name, rtol=opts.rtol)
-        A, b = recorder.A, recorder.b
-        dim, degree = spec.mesh.dim, base.disc.degree
-        _warm_up(methods, prepare_solver)
-        bar = _progress(args, len(methods), "bench")
-        for m in methods:
-            if bar is not None:
-                bar.set_postfix_str(m)
-            row, rep = _bench_one(m, A, b, dim, degree, opts, prepare_solver)
-            if rep is not None:
-                histories[m] = rep.residuals
-                if opts.exact is not None:
-                    replay.report = rep
-                    sol = problem.solve(assembler=base.assembler, method=replay_name,
-                                        rtol=opts.rtol)
-                    errs = _errors(sol, opts)
-                    row["l2_error"] = errs["l2"]
-                    row["h1_error"] = errs.get("h1_seminorm")
-            rows.append(row)
-            if bar is not None:
-                bar.update(1)
-        if bar is not None:
-            bar.close()
-    finally:
-        unregister_solver(record_name)
-        unregister_solver(replay_name)
-    folder = _folder(opts.folder)
-    png = plot_residuals(folder / f"{opts.stem}-residuals.png", histories, rtol=opts.rtol,
-                         title=f"{where}: P{degree}, {A.shape[0]} unknowns")
-    ok = all(r["converged"] for r in rows)
-    info = {"problem": where, "mesh": {"source": spec.mesh_description,
-                                       "cell_type": spec.mesh.cell_type,
-                                       "cells": spec.mesh.n_cells},
-            "degree": degree, "dofs": base.disc.n_dofs, "unknowns": int(A.shape[0]),
-            "matrix_nonzeros": int(A.nnz), "rtol": opts.rtol,
-            "assemble_seconds": {k: base.seconds[k] for k in ("discretize", "assemble",
-                                                              "constrain")},
-            "rows": rows, "memory_measure": BENCH_MEMORY_MEASURE, "plot": str(png),
-            "peak_rss_mb": _peak_rss_mb(), "all_converged": ok}
+        stem, where = Path(args.problem).stem, str(args.problem)
+    folder = _folder(args.output or "galerkit-out")
+    outputs = [table.plot_residuals(folder / f"{stem}-residuals.png",
+                                    title=f"{where}: residual histories")]
+    if len({r["unknowns"] for r in table.rows}) > 1:
+        outputs.append(table.plot(folder / f"{stem}-times.png",
+                                  title=f"{where}: time against unknowns"))
+    csv_path = folder / f"{stem}-bench.csv"
+    from ..files import write_atomically
+
+    write_atomically(csv_path, lambda tmp: Path(tmp).write_text(table.to_csv()))
+    outputs.append(csv_path)
+    ok = table.all_converged
     if args.json:
-        _print_json({**info, "caution": CAUTION})
+        _print_json({"problem": where, "rows": table.rows, "skipped": table.skipped,
+                     "repeat": args.repeat, "memory_measure": BENCH_MEMORY_MEASURE,
+                     "outputs": [str(o) for o in outputs], "all_converged": ok,
+                     "caution": CAUTION})
         return 0 if ok else 1
     say = _Report(args)
-    say.head(f"galerkit bench: {where} ({spec.mesh_description})")
-    say.result(f"  system      {A.shape[0]} unknowns ({base.disc.n_dofs} dofs, P{degree}), "
-               f"{A.nnz} stored entries, assembled once in "
-               f"{sum(info['assemble_seconds'].values()):.3f} s; rtol {opts.rtol:g}")
-    head = (f"  {'method':<12s}{'setup s':>9s}{'solve s':>9s}{'iter.':>7s}{'residual':>11s}"
-            f"{'peak MB':>9s}{'L2 error':>11s}{'H1 error':>11s}  converged")
-    say.result(head)
-
-    def fmt(v, spec_):
-        return format(v, spec_) if v is not None else "-"
-
-    for r in rows:
-        say.result(f"  {r['method']:<12s}{fmt(r['setup_seconds'], '9.3f'):>9s}"
-                   f"{fmt(r['solve_seconds'], '9.3f'):>9s}{fmt(r['iterations'], '7d'):>7s}"
-                   f"{fmt(r['final_residual'], '11.2e'):>11s}{fmt(r['peak_mb'], '9.1f'):>9s}"
-                   f"{fmt(r['l2_error'], '11.3e'):>11s}{fmt(r['h1_error'], '11.3e'):>11s}  "
-                   f"{'yes' if r['converged'] else 'NO'}")
+    say.head(f"galerkit bench: {where}, {args.repeat} run(s) per method, each in its own process")
+    cols = ["unknowns", "method", "setup_min", "setup_median", "solve_min", "solve_median",
+            "iterations", "final_residual", "peak_mb", "estimate_seconds", "estimate_mb",
+            "l2_error", "h1_error", "converged"]
+    say.result(table.to_markdown(cols))
+    for r in table.rows:
         if r["message"]:
-            say.result(f"    {r['method']}: {r['message']}")
-    say.head(f"  peak MB: {BENCH_MEMORY_MEASURE}")
-    say.result(f"  wrote       {png}")
+            say.result(f"  {r['method']}: {r['message']}")
+    say.head(f"  peak_mb: {BENCH_MEMORY_MEASURE}; estimates come from a pilot run on a "
+             "patch of the system (docs/bench.md)")
+    for o in outputs:
+        say.result(f"  wrote       {o}")
     say.caution()
     return 0 if ok else 1
 
@@ -981,14 +907,34 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--method", default="auto", help="solver name (default auto)")
     d.set_defaults(run=_demo)
     v = sub.add_parser("verify", parents=[common],
-                       help="manufactured-solution convergence study")
-    v.add_argument("--cell", choices=["triangle", "tetrahedron"], default="triangle")
-    v.add_argument("--degree", type=int, choices=[1, 2, 3, 4], default=1)
-    v.add_argument("--levels", type=int, default=5)
-    v.add_argument("--start-size", type=int, default=2, metavar="N",
-                   help="cells per axis of the first (coarsest) mesh (default 2)")
-    v.add_argument("--tolerance", type=float, default=0.1, help="allowed order deviation")
-    v.add_argument("--output", default="galerkit-verify.png", help="PNG of error versus h")
+                       help="convergence study against an exact solution, several degrees",
+                       description="Solve on uniformly refined meshes, tabulate the L2, H1 "
+                       "and energy errors with their observed orders, check them against "
+                       "the a priori orders k+1 (L2) and k (H1), and plot every degree on "
+                       "one picture. Without a problem file: the manufactured solution "
+                       "u = prod sin(pi x_i) on the unit square or cube.")
+    v.add_argument("problem", nargs="?",
+                   help="a problem file (.toml) with an [exact] section (solution and "
+                   "gradient); its mesh is the coarsest level (default: the manufactured "
+                   "problem)")
+    v.add_argument("--cell", choices=["triangle", "tetrahedron"], default=None,
+                   help="cells of the manufactured problem (default triangle)")
+    v.add_argument("--degrees", default=None, metavar="K,K,...",
+                   help="element degrees, comma-separated, e.g. 1,2,3,4 (default 1, or the "
+                   "problem file's degree)")
+    v.add_argument("--levels", type=int, default=5,
+                   help="number of meshes: the coarsest and L-1 uniform refinements "
+                   "(default 5)")
+    v.add_argument("--start-size", type=int, default=None, metavar="N",
+                   help="cells per axis of the first (coarsest) mesh of the manufactured "
+                   "problem (default 2)")
+    v.add_argument("--tolerance", type=float, default=0.1,
+                   help="allowed deviation of the last observed order from the a priori "
+                   "order (default 0.1)")
+    v.add_argument("--output", default=None, metavar="DIR",
+                   help="folder for the plot and the CSV table (default: the problem "
+                   "file's [output] folder, else galerkit-out)")
+    v.add_argument("--stay-in-folder", action="store_true", help=STAY_IN_FOLDER_HELP)
     v.set_defaults(run=_verify)
     m = sub.add_parser("mesh-info", parents=[common],
                        help="counts, tags and quality of a mesh file")
@@ -1020,20 +966,40 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--stay-in-folder", action="store_true", help=STAY_IN_FOLDER_HELP)
     s.set_defaults(run=_solve)
     b = sub.add_parser("bench", parents=[common],
-                       help="run every registered solver on one assembled system",
-                       description="Assemble one system, then set up and solve it with "
-                       "every registered solver (or --methods); prints a table and writes "
-                       "a PNG of the residual histories.")
+                       help="compare solvers on one assembled system (estimates, budgets, "
+                       "repeats)",
+                       description="Assemble one system, estimate each registered solver's "
+                       "time and memory from a pilot run, skip those over budget (unless "
+                       "named in --methods), then run each method --repeat times, each run "
+                       "in its own process; prints a table (minimum and median times, peak "
+                       "memory, errors) and writes PNG plots and a CSV table "
+                       "(docs/bench.md).")
     b.add_argument("problem", nargs="?", help="a problem file (.toml); or use --generate")
     b.add_argument("--generate", choices=["square", "box"],
                    help="a manufactured problem u = prod sin(pi x_i) on the unit square/cube")
     b.add_argument("--size", type=int, help="cells per axis for --generate (default 64 "
                    "square, 10 box)")
+    b.add_argument("--sizes", metavar="N,N,...",
+                   help="several cells-per-axis counts for --generate: a time-against-"
+                   "unknowns study and plot, one line per method")
     b.add_argument("--degree", type=int, choices=[1, 2, 3, 4], help="element degree")
-    b.add_argument("--methods", help="comma-separated solver names (default: all registered)")
+    b.add_argument("--methods", help="comma-separated solver names; these run even over "
+                   "budget (default: every registered solver within the budgets)")
+    b.add_argument("--repeat", type=int, default=1, metavar="N",
+                   help="runs per method, each in a fresh process; the table gives the "
+                   "minimum and the median (default 1)")
+    b.add_argument("--budget-seconds", type=float, default=None, metavar="S",
+                   help="skip a method whose estimated seconds per run exceed S (default 60)")
+    b.add_argument("--budget-mb", type=float, default=None, metavar="MB",
+                   help="skip a method whose estimated memory exceeds MB (default: half "
+                   "the available memory)")
+    b.add_argument("--solvers-module", action="append", metavar="MODULE",
+                   help="import MODULE (repeatable), which registers solvers with "
+                   "galerkit.register_solver; entry points of the group "
+                   "'galerkit.solvers' are loaded too")
     b.add_argument("--rtol", type=float, help="relative residual tolerance")
     b.add_argument("--maxiter", type=int, help="iteration limit of iterative solvers")
-    b.add_argument("--output", help="folder for the PNG (default galerkit-out)")
+    b.add_argument("--output", help="folder for the plots and the CSV (default galerkit-out)")
     b.add_argument("--stay-in-folder", action="store_true", help=STAY_IN_FOLDER_HELP)
     b.set_defaults(run=_bench)
     w = sub.add_parser("warm-up", parents=[common],

@@ -17,7 +17,7 @@ from galerkit.errors import InputError  # noqa: E402
 
 from .readwrite import sample_solution, write_atomically  # noqa: E402
 
-__all__ = ["plot_field", "plot_convergence", "plot_residuals", "PNG_SIGNATURE"]
+__all__ = ["plot_field", "plot_convergence", "plot_residuals", "plot_times", "PNG_SIGNATURE"]
 
 #: The first eight bytes of every PNG file (PNG specification, section 5.2).
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
@@ -86,24 +86,59 @@ def plot_field(path, solution, *, title="", units="", show_mesh=False, length_un
     return _save(fig, path)
 
 
-def plot_convergence(path, table, *, title=""):
-    """Log-log error versus h with the reference slopes k+1 (L2) and k (H1)."""
-    h = table.column("h")
-    k = table.degree
-    fig, ax = plt.subplots(figsize=(6, 4.5))
-    for col, label, rate in (("l2_error", "L2 error", k + 1), ("h1_error", "H1 seminorm error", k)):
-        e = table.column(col)
-        ok = np.isfinite(e) & (e > 0)
-        if not ok.any():
-            continue
-        line, = ax.loglog(h[ok], e[ok], "o-", label=label)
-        ref = e[ok][-1] * (h[ok] / h[ok][-1]) ** rate
-        ax.loglog(h[ok], ref, "--", color=line.get_color(), alpha=0.6, label=f"slope {rate}")
+def plot_convergence(path, tables, *, title=""):
+    """Log-log error versus h with the reference slopes k+1 (L2) and k (H1).
+
+    ``tables``: one RateTable, or several (one per degree) drawn on one plot.
+    """
+    if not isinstance(tables, (list, tuple)):
+        tables = [tables]
+    fig, ax = plt.subplots(figsize=(6.5, 4.8))
+    for table in tables:
+        h = table.column("h")
+        k = table.degree
+        for col, label, rate, mark in (("l2_error", "L2", k + 1, "o-"),
+                                       ("h1_error", "H1", k, "s-")):
+            e = table.column(col)
+            ok = np.isfinite(e) & (e > 0)
+            if not ok.any():
+                continue
+            line, = ax.loglog(h[ok], e[ok], mark, ms=4, label=f"P{k} {label} error")
+            ref = e[ok][-1] * (h[ok] / h[ok][-1]) ** rate
+            ax.loglog(h[ok], ref, "--", color=line.get_color(), alpha=0.5, lw=1,
+                      label=f"slope {rate}")
     ax.set_xlabel("h (longest edge)")
     ax.set_ylabel("error")
     ax.grid(True, which="both", alpha=0.3)
-    ax.legend()
-    ax.set_title(title or f"P{k} convergence")
+    ax.legend(fontsize=7, ncol=2 if len(tables) > 1 else 1)
+    degrees = ", ".join(f"P{t.degree}" for t in tables)
+    ax.set_title(title or f"{degrees} convergence")
+    return _save(fig, path)
+
+
+def plot_times(path, lines, *, title=""):
+    """Seconds against unknowns (log-log), one line per method, each point labelled
+    with its iteration count.
+
+    ``lines``: ``method -> [(unknowns, seconds, iterations), ...]``.
+    """
+    fig, ax = plt.subplots(figsize=(6.5, 4.8))
+    for method, pts in lines.items():
+        pts = sorted(p for p in pts if p[1] is not None and p[1] > 0)
+        if not pts:
+            continue
+        n = [p[0] for p in pts]
+        s = [p[1] for p in pts]
+        line, = ax.loglog(n, s, "o-", label=method)
+        for x, y, it in pts:
+            if it is not None:
+                ax.annotate(f"{int(it)} it", (x, y), textcoords="offset points", xytext=(4, 4),
+                            fontsize=7, color=line.get_color())
+    ax.set_xlabel("unknowns")
+    ax.set_ylabel("set-up + solve seconds (minimum of the runs)")
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=8)
+    ax.set_title(title or "time against unknowns")
     return _save(fig, path)
 
 
