@@ -32,6 +32,8 @@ from .functionals import (l2_error, h1_seminorm_error, energy_error, l2_norm, h1
                           h1_seminorm, energy, nested_error)
 from .problem import PoissonProblem, Solution
 from .convergence import convergence_study, RateTable
+from .estimators import ErrorEstimate, estimate_error
+from .bisection import refine_marked, min_angles
 
 #: Mesh files from Python: ``galerkit.read_mesh`` and ``galerkit.write_solution`` are
 #: ``galerkit.bindings.files.read_mesh`` / ``write_solution``.  This is the one place

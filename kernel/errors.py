@@ -15,6 +15,9 @@ class                     built-in base       raised for
 ``SolverError``           ``RuntimeError``    a solver that failed or cannot run
 ``ResourceError``         ``RuntimeError``    estimated memory beyond what exists
 ========================  ==================  ======================================
+
+``UnsupportedError`` (built-in base ``NotImplementedError``) is raised for a
+valid request that galerkit does not implement; it names what is missing.
 """
 
 from __future__ import annotations
@@ -26,6 +29,7 @@ __all__ = [
     "ProblemError",
     "SolverError",
     "ResourceError",
+    "UnsupportedError",
 ]
 
 
@@ -51,3 +55,8 @@ class SolverError(GalerkitError, RuntimeError):
 
 class ResourceError(GalerkitError, RuntimeError):
     """The estimated memory of a step exceeds the memory available."""
+
+
+class UnsupportedError(GalerkitError, NotImplementedError):
+    """A valid request that galerkit does not implement (yet); the message names
+    what is missing and what is supported instead."""

@@ -1,0 +1,780 @@
+"""A posteriori error estimates: a guaranteed energy-error bound and the residual estimator.
+
+For ``-div(K grad u) = f`` with Dirichlet, Neumann (``K du/dn = g``) and Robin
+(``K du/dn = alpha (u_ext - u)``) data and a P1 solution ``u_h`` on triangles,
+:func:`estimate_error` returns
+
+* ``bound``: a computable upper bound of the energy error
+  ``||K^(1/2) grad(u - u_h)||``, built from an equilibrated flux (Prager &
+  Synge 1947): a lowest-order Raviart--Thomas field ``sigma_h`` with
+  ``div sigma_h`` equal to the cell means of ``f`` and ``sigma_h . n`` equal to
+  the facet means of ``-g`` on Neumann/Robin facets.  ``sigma_h`` is the sum of
+  local fluxes on vertex patches (Braess & Schoeberl 2008; Ern & Vohralik
+  2015): on the patch of vertex ``a``, the Raviart--Thomas field closest (in
+  the ``K^-1`` norm) to ``-Pi_a K grad u_h`` -- the field with half the fluxes
+  of ``-K grad u_h`` through the edges at ``a`` -- among those with zero flux
+  through the patch boundary and the hat-weighted residual
+  ``(f, psi_a)_K - (K grad u_h, grad psi_a)_K`` as divergence on each cell.
+  The halves sum to ``-K grad u_h``, so a solution that P1 reproduces gives a
+  zero bound (the patch test).  In 2D the
+  patch problem of a vertex is solved exactly by one sweep around the vertex
+  plus the minimisation over the one free circulation (when there is one).
+  Then, cell by cell,
+
+      eta_K = ||K^(-1/2)(sigma_h + K grad u_h)||_K                    (flux)
+            + h_K / pi * lambda_K^(-1/2) ||f - Pi_0 f||_K              (oscillation)
+            + sum over Neumann/Robin facets F of K of
+              C_F lambda_K^(-1/2) ||g - Pi_0 g||_F                      (boundary data)
+
+  with ``lambda_K`` the smallest eigenvalue of K on the cell, ``h_K`` the
+  cell diameter, ``h_K / pi`` the Poincare constant of a convex cell (Payne &
+  Weinberger 1960), and ``C_F = h_K (|F| / |K| (1/pi**2 + 2/(d pi)))**(1/2)``
+  the constant of the trace inequality for mean-free functions (from the
+  divergence theorem applied to ``v**2 (x - x_F)``, ``x_F`` the vertex
+  opposite F, and the Poincare inequality above).  ``bound**2 = sum eta_K**2``.
+  For Robin facets ``g = alpha (u_ext - u_h)``; the bound then also bounds the
+  Robin energy norm ``(||K^(1/2) grad e||**2 + ||alpha^(1/2) e||_R**2)**(1/2)``.
+
+* the algebraic and quadrature residual: the patch problems need the
+  Galerkin equations to hold exactly, which an iterative solve (or a load
+  integrated by a coarser quadrature than ours) does not give.  The residual
+  of each patch is taken out of it and carried, as a Raviart--Thomas flux
+  along a spanning tree of the cells, to a Dirichlet facet (where the flux is
+  free).  The routed flux is part of ``sigma_h``, so the bound stays
+  guaranteed whatever the solver tolerance; its size is reported as the term
+  ``"algebraic"``.
+
+* ``residual_estimate``: the classical residual estimator (Babuska &
+  Rheinboldt 1978; Verfuerth 2013), element residuals ``h_K**2 / lambda_K
+  ||f||_K**2`` and flux jumps ``h_E / (2 lambda_E) ||[K grad u_h . n]||_E**2``
+  (``g - K grad u_h . n`` on Neumann/Robin facets), with constants set to 1:
+  an indicator, not a bound.
+
+When the bound is guaranteed
+----------------------------
+``estimate.guaranteed`` is True, and ``bound >= ||K^(1/2) grad(u - u_h)||``
+holds for the exact solution ``u``, when all of the following hold (up to
+floating-point round-off):
+
+* P1 elements on triangles, conductivity constant on each cell (a number, one
+  value per cell, or a (2, 2) / (n_cells, 2, 2) SPD tensor);
+* Dirichlet data in the discrete space (a number, a dof vector, or a callable
+  that is affine along every Dirichlet facet, checked);
+* the source ``f`` and boundary data integrated exactly by the quadrature of
+  degree ``quadrature_degree`` (default 10; exact for polynomial data up to
+  that degree, constants and dof vectors); for other callables the difference
+  of two quadratures is reported as ``terms["quadrature_gap"]`` and is not
+  part of the bound;
+* every part of the mesh without a Dirichlet facet is pure Neumann with
+  compatible data, or the residual left there (``terms["unrouted"]``) is at
+  round-off level; otherwise ``guaranteed`` is False and a note says why.
+
+Other cases (P2-P4, tetrahedra, conductivity varying inside cells, Dirichlet
+data outside the discrete space) raise :class:`~galerkit.errors.UnsupportedError`.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field
+
+import numba as nb
+import numpy as np
+
+from .coefficients import evaluate_callable, scalar_values, tensor_values
+from .errors import InputError, UnsupportedError
+from .quadrature import simplex_quadrature
+from .regions import RegionCoefficient
+from .topology import enumerate_entities
+
+__all__ = ["ErrorEstimate", "estimate_error", "cell_diameters"]
+
+#: 1D Gauss--Legendre points on [0, 1] for facet integrals (exact to degree 19)
+_GL_T, _GL_W = np.polynomial.legendre.leggauss(10)
+_GL_T = 0.5 * (_GL_T + 1.0)
+_GL_W = 0.5 * _GL_W
+
+_INTERIOR, _DIRICHLET, _FLUX = 0, 1, 2
+
+
+@dataclass
+class ErrorEstimate:
+    """An a posteriori estimate of the energy error of one solution.
+
+    Attributes
+    ----------
+    bound : float
+        Guaranteed upper bound of ``||K^(1/2) grad(u - u_h)||`` (see the module
+        docstring for when it is guaranteed; ``guaranteed`` says it).
+    indicators : ndarray (n_cells,)
+        ``eta_K`` of every cell; ``bound = sqrt(sum(indicators**2))``.
+    residual_estimate : float
+        The classical residual estimator (constants 1), for comparison.
+    residual_indicators : ndarray (n_cells,)
+    terms : dict
+        ``"flux"``, ``"oscillation"``, ``"boundary_data"`` (each the root of the
+        sum of squares of its per-cell part), ``"algebraic"`` (the norm of the
+        routed residual flux, included in ``"flux"``), ``"unrouted"`` and
+        ``"quadrature_gap"`` (named, not in the bound).
+    energy_norm : float
+        ``||K^(1/2) grad u_h||``.
+    guaranteed : bool
+    error, effectivity : float or None
+        The exact energy error and ``bound / error`` when an exact gradient was
+        given.
+    notes : list of str
+    seconds : float
+    """
+
+    bound: float
+    indicators: np.ndarray
+    residual_estimate: float
+    residual_indicators: np.ndarray
+    terms: dict
+    energy_norm: float
+    guaranteed: bool
+    error: float | None = None
+    effectivity: float | None = None
+    residual_effectivity: float | None = None
+    notes: list = field(default_factory=list)
+    seconds: float = 0.0
+
+    def __repr__(self) -> str:
+        eff = "" if self.effectivity is None else f", effectivity {self.effectivity:.3f}"
+        return (f"ErrorEstimate(bound {self.bound:.4e}{eff}, residual estimate "
+                f"{self.residual_estimate:.4e}, guaranteed {self.guaranteed})")
+
+
+def cell_diameters(mesh) -> np.ndarray:
+    """Longest edge of every cell, shape (n_cells,)."""
+    P = mesh.points[mesh.cells]
+    d = mesh.dim
+    h = np.zeros(mesh.n_cells)
+    for i in range(d + 1):
+        for j in range(i + 1, d + 1):
+            h = np.maximum(h, np.sqrt(((P[:, i] - P[:, j]) ** 2).sum(axis=1)))
+    return h
+
+
+# -- compiled kernels ---------------------------------------------------------------
+@nb.njit(cache=True, parallel=True)
+def _patch_fluxes(points, cells, area, kinv, flux_h, vptr, vcell, vloc, draw, bkind, gout,
+                  P, corr):
+    """Local equilibrated fluxes on every vertex patch (2D, lowest order).
+
+    ``draw[c, l]``: target integral of the divergence of the patch flux of
+    local vertex ``l`` over cell ``c`` (hat-weighted residual).  ``bkind[c, i]``:
+    0 interior facet, 1 Dirichlet (free flux), 2 prescribed flux; ``gout[c, i, l]``
+    the prescribed outward flux of patch ``l`` through boundary facet ``i``.
+    Writes ``P[c, l, i]``: outward flux of patch ``l`` through facet ``i`` of ``c``,
+    and ``corr[c, l]``: the part of ``draw`` taken out to make the patch solvable.
+    Each (c, l) belongs to one vertex, so the writes never collide.
+    """
+    n = vptr.shape[0] - 1
+    for a in nb.prange(n):
+        s0 = vptr[a]
+        k = vptr[a + 1] - s0
+        nxt = np.full(k, -1, np.int64)
+        has_prev = np.zeros(k, np.bool_)
+        done = np.zeros(k, np.bool_)
+        order = np.empty(k, np.int64)
+        cum = np.empty(k)
+        for p in range(k):
+            c = vcell[s0 + p]
+            la = vloc[s0 + p]
+            cc = cells[c, (la + 2) % 3]
+            for q in range(k):
+                c2 = vcell[s0 + q]
+                l2 = vloc[s0 + q]
+                if q != p and cells[c2, (l2 + 1) % 3] == cc:
+                    nxt[p] = q
+                    has_prev[q] = True
+                    break
+        for phase in range(2):
+            for p0 in range(k):
+                if done[p0] or (phase == 0 and has_prev[p0]):
+                    continue
+                m = 0
+                p = p0
+                while p >= 0 and not done[p]:
+                    order[m] = p
+                    m += 1
+                    done[p] = True
+                    p = nxt[p]
+                loop = phase == 1
+                _solve_chain(points, cells, area, kinv, flux_h, vcell, vloc, s0, order, m,
+                             loop, draw, bkind, gout, P, corr, cum)
+
+
+@nb.njit(cache=True, inline="always")
+def _edge_flux(points, cells, c, i, v):
+    """Outward flux of the constant vector ``v[c]`` through the edge opposite local
+    vertex ``i`` of the (positively oriented) triangle ``c``."""
+    p = cells[c, (i + 1) % 3]
+    q = cells[c, (i + 2) % 3]
+    dx = points[q, 0] - points[p, 0]
+    dy = points[q, 1] - points[p, 1]
+    return v[c, 0] * dy - v[c, 1] * dx
+
+
+@nb.njit(cache=True)
+def _solve_chain(points, cells, area, kinv, flux_h, vcell, vloc, s0, order, m, loop, draw,
+                 bkind, gout, P, corr, cum):
+    c0 = vcell[s0 + order[0]]
+    l0 = vloc[s0 + order[0]]
+    cn = vcell[s0 + order[m - 1]]
+    ln = vloc[s0 + order[m - 1]]
+    kind0 = 0
+    kindn = 0
+    g0 = 0.0
+    gn = 0.0
+    if not loop:
+        kind0 = bkind[c0, (l0 + 2) % 3]
+        kindn = bkind[cn, (ln + 1) % 3]
+        if kind0 == 2:
+            g0 = gout[c0, (l0 + 2) % 3, l0]
+        if kindn == 2:
+            gn = gout[cn, (ln + 1) % 3, ln]
+    dsum = 0.0
+    asum = 0.0
+    for j in range(m):
+        c = vcell[s0 + order[j]]
+        dsum += draw[c, vloc[s0 + order[j]]]
+        asum += area[c]
+    compat = loop or (kind0 == 2 and kindn == 2)
+    r = 0.0
+    if compat:
+        r = dsum - g0 - gn if not loop else dsum
+    run = 0.0
+    for j in range(m):
+        c = vcell[s0 + order[j]]
+        la = vloc[s0 + order[j]]
+        cj = r * area[c] / asum
+        corr[c, la] = cj
+        run += draw[c, la] - cj
+        cum[j] = run
+    free = False
+    t0 = 0.0
+    if loop:
+        free = True
+    elif kind0 == 2:
+        t0 = -g0
+    elif kindn == 2:
+        t0 = gn - cum[m - 1]
+    else:
+        free = True
+    if free:
+        # minimise sum_j ||K^-1/2 (Pi_a K grad u_h + tau_j)||^2 over t0, with
+        # tau_j = (t0 + cum_j) phi_out - (t0 + cum_{j-1}) phi_in and Pi_a K grad u_h the
+        # Raviart-Thomas field with half the fluxes of K grad u_h through the two edges
+        # at the vertex (these halves sum to K grad u_h over the three vertices);
+        # edge-midpoint rule (exact for the quadratic integrand)
+        aa = 0.0
+        bb = 0.0
+        for j in range(m):
+            c = vcell[s0 + order[j]]
+            la = vloc[s0 + order[j]]
+            io = (la + 1) % 3
+            ii = (la + 2) % 3
+            cin = cum[j - 1] if j > 0 else (cum[m - 1] if loop else 0.0)
+            A = area[c]
+            sx = points[cells[c, 0], 0] + points[cells[c, 1], 0] + points[cells[c, 2], 0]
+            sy = points[cells[c, 0], 1] + points[cells[c, 1], 1] + points[cells[c, 2], 1]
+            # half the outward flux of K grad u_h through each edge at the vertex
+            # (edge opposite i runs from x_{i+1} to x_{i+2}; outward normal (dy, -dx))
+            q_o = 0.5 * _edge_flux(points, cells, c, io, flux_h)
+            q_i = 0.5 * _edge_flux(points, cells, c, ii, flux_h)
+            for q in range(3):
+                mx = 0.5 * (sx - points[cells[c, q], 0])
+                my = 0.5 * (sy - points[cells[c, q], 1])
+                pox = (mx - points[cells[c, io], 0]) / (2.0 * A)
+                poy = (my - points[cells[c, io], 1]) / (2.0 * A)
+                pix = (mx - points[cells[c, ii], 0]) / (2.0 * A)
+                piy = (my - points[cells[c, ii], 1]) / (2.0 * A)
+                zx = pox - pix
+                zy = poy - piy
+                wx = q_o * pox + q_i * pix + cum[j] * pox - cin * pix
+                wy = q_o * poy + q_i * piy + cum[j] * poy - cin * piy
+                kzx = kinv[c, 0, 0] * zx + kinv[c, 0, 1] * zy
+                kzy = kinv[c, 1, 0] * zx + kinv[c, 1, 1] * zy
+                aa += A / 3.0 * (kzx * zx + kzy * zy)
+                bb += A / 3.0 * (kzx * wx + kzy * wy)
+        t0 = -bb / aa
+    for j in range(m):
+        c = vcell[s0 + order[j]]
+        la = vloc[s0 + order[j]]
+        cin = cum[j - 1] if j > 0 else (cum[m - 1] if loop else 0.0)
+        P[c, la, la] = 0.0
+        P[c, la, (la + 1) % 3] = t0 + cum[j]
+        P[c, la, (la + 2) % 3] = -(t0 + cin)
+
+
+@nb.njit(cache=True)
+def _bfs(neighbors, parent, order, head, tail):
+    k = neighbors.shape[1]
+    while head < tail:
+        c = order[head]
+        head += 1
+        for i in range(k):
+            nb_ = neighbors[c, i]
+            if nb_ >= 0 and parent[nb_] == -2:
+                parent[nb_] = c
+                order[tail] = nb_
+                tail += 1
+    return tail
+
+
+@nb.njit(cache=True)
+def _route(neighbors, bkind, amount, area, T, parent, order, n_floating):
+    """Carry ``amount[c]`` (an integral of divergence per cell) along a spanning
+    tree of the cells (breadth first from the cells with a Dirichlet facet) to
+    the Dirichlet facets: fluxes ``T[c, i]`` (outward through facet ``i``) with
+    ``sum_i T[c, i] = amount[c]`` and opposite values on the two sides of every
+    facet.  A part of the mesh that no Dirichlet facet reaches keeps its total:
+    its mean is taken out of ``amount`` (modified in place) and the absolute
+    totals are returned; ``n_floating[0]`` counts such parts."""
+    m = neighbors.shape[0]
+    k = neighbors.shape[1]
+    for c in range(m):
+        parent[c] = -2  # unvisited
+    tail = 0
+    for c in range(m):
+        for i in range(k):
+            if bkind[c, i] == 1:
+                parent[c] = -1  # root: its flux leaves through a Dirichlet facet
+                order[tail] = c
+                tail += 1
+                break
+    tail = _bfs(neighbors, parent, order, 0, tail)
+    unrouted = 0.0
+    scan = 0
+    while tail < m:
+        while parent[scan] != -2:
+            scan += 1
+        first = tail
+        parent[scan] = -3  # root of a part without Dirichlet facets
+        order[tail] = scan
+        tail = _bfs(neighbors, parent, order, tail, tail + 1)
+        tot = 0.0
+        asum = 0.0
+        for j in range(first, tail):
+            tot += amount[order[j]]
+            asum += area[order[j]]
+        for j in range(first, tail):
+            amount[order[j]] -= tot * area[order[j]] / asum
+        unrouted += abs(tot)
+        n_floating[0] += 1
+    X = amount.copy()
+    for j in range(m - 1, -1, -1):
+        c = order[j]
+        pc = parent[c]
+        if pc == -1:
+            for i in range(k):
+                if bkind[c, i] == 1:
+                    T[c, i] += X[c]
+                    break
+        elif pc >= 0:
+            for i in range(k):
+                if neighbors[c, i] == pc:
+                    T[c, i] += X[c]
+                    break
+            for i in range(k):
+                if neighbors[pc, i] == c:
+                    T[pc, i] -= X[c]
+                    break
+            X[pc] += X[c]
+    return unrouted
+
+
+# -- the estimator ------------------------------------------------------------------
+def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> ErrorEstimate:
+    """Guaranteed energy-error bound and residual estimate of a solution.
+
+    Parameters
+    ----------
+    solution : Solution
+        From :meth:`PoissonProblem.solve` (P1 on triangles).
+    exact_gradient : callable, optional
+        ``exact_gradient(x)`` with x (2, n) -> (2, n); then ``error`` and
+        ``effectivity`` (bound / error) are filled in.
+    quadrature_degree : int
+        Degree of the cell rule for the source (the facet rule is 10-point
+        Gauss--Legendre, exact to degree 19).
+
+    Returns
+    -------
+    ErrorEstimate
+
+    Raises
+    ------
+    UnsupportedError
+        Degree above 1, tetrahedra, a conductivity given as a callable (varying
+        inside cells), Dirichlet data not affine along a Dirichlet facet.
+    InputError
+        Not a solution, a bad exact gradient or quadrature degree.
+
+    Notes
+    -----
+    See the module docstring (:mod:`galerkit.estimators`) for the construction
+    and the precise conditions under which ``bound`` is guaranteed.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from galerkit import PoissonProblem, structured_triangles
+    >>> mesh = structured_triangles(8, 8)
+    >>> u = lambda x: np.sin(np.pi * x[0]) * np.sin(np.pi * x[1])
+    >>> grad = lambda x: np.pi * np.array([np.cos(np.pi * x[0]) * np.sin(np.pi * x[1]),
+    ...                                    np.sin(np.pi * x[0]) * np.cos(np.pi * x[1])])
+    >>> f = lambda x: 2 * np.pi**2 * u(x)
+    >>> sol = PoissonProblem(mesh, source=f, dirichlet={"boundary": 0.0}).solve()
+    >>> est = estimate_error(sol, exact_gradient=grad)
+    >>> est.guaranteed, est.bound >= est.error, 1.0 < est.effectivity < 1.5
+    (True, True, True)
+    """
+    t_start = time.perf_counter()
+    disc = getattr(solution, "disc", None)
+    problem = getattr(solution, "problem", None)
+    if disc is None or problem is None or not hasattr(solution, "u"):
+        raise InputError(f"estimate_error: expected a Solution (from PoissonProblem.solve), got "
+                         f"{type(solution).__name__}")
+    mesh = disc.mesh
+    if mesh.dim != 2:
+        raise UnsupportedError(
+            "estimate_error: the equilibrated-flux bound is implemented for triangles only; "
+            "tetrahedra (3D patch problems) are not implemented yet. Use the exact error "
+            "(energy_error) or nested meshes (nested_error) in 3D")
+    if disc.degree != 1:
+        raise UnsupportedError(
+            f"estimate_error: the bound is implemented for P1 only, this solution is "
+            f"P{disc.degree}; higher-degree Raviart-Thomas patch problems are not implemented "
+            "yet. Solve with degree=1 to get a bound")
+    if isinstance(quadrature_degree, bool) or not isinstance(quadrature_degree, (int, np.integer)) \
+            or not 2 <= quadrature_degree <= 20:
+        raise InputError(f"estimate_error: quadrature_degree must be an integer in 2..20, got "
+                         f"{quadrature_degree!r}")
+    kappa = problem.conductivity
+    if callable(kappa) or (isinstance(kappa, RegionCoefficient) and kappa.has_callable):
+        raise UnsupportedError(
+            "estimate_error: the conductivity is a callable (it may vary inside cells); the "
+            "bound needs a conductivity constant on each cell: give one value per cell "
+            "(an array of shape (n_cells,)) or a tensor per cell")
+    u = np.asarray(solution.u, dtype=np.float64)
+    if u.shape != (disc.n_dofs,) or not np.isfinite(u).all():
+        raise InputError(f"estimate_error: the solution vector has shape {u.shape} or non-finite "
+                         f"values; expected {disc.n_dofs} finite values")
+    notes = []
+    m = mesh.n_cells
+    pts = mesh.points
+    cells = np.ascontiguousarray(mesh.cells)
+    X = pts[cells]  # (m, 3, 2)
+    area = np.ascontiguousarray(mesh.cell_volumes, dtype=np.float64)
+    # gradients of the barycentric coordinates: grad l_i = rot(x_{i+2} - x_{i+1}) / (2A)
+    glam = np.empty((m, 3, 2))
+    for i in range(3):
+        e = X[:, (i + 2) % 3] - X[:, (i + 1) % 3]
+        glam[:, i, 0] = -e[:, 1] / (2 * area)
+        glam[:, i, 1] = e[:, 0] / (2 * area)
+    K = _conductivity_tensor(kappa, m)
+    kinv = np.ascontiguousarray(np.linalg.inv(K))
+    lam_min = np.linalg.eigvalsh(K)[:, 0]
+    grad_uh = np.einsum("ci,cij->cj", u[cells], glam)
+    flux_h = np.ascontiguousarray(np.einsum("cij,cj->ci", K, grad_uh))
+    energy_norm = float(np.sqrt(max((area * (flux_h * grad_uh).sum(axis=1)).sum(), 0.0)))
+    h = cell_diameters(mesh)
+
+    # cell moments of the source and its oscillation
+    fmom, osc, fnorm2, gap = _source_moments(problem.source, disc, X, area, cells,
+                                             quadrature_degree)
+    stiff = area[:, None] * np.einsum("ci,cli->cl", flux_h, glam)  # (K grad u_h, grad l_a)_K
+    draw = np.ascontiguousarray(fmom - stiff)
+
+    # boundary facets: kinds and prescribed outward fluxes
+    neighbors = _neighbors(cells, mesh.n_vertices)
+    bkind = np.where(neighbors < 0, _FLUX, _INTERIOR).astype(np.int8)
+    gout = np.zeros((m, 3, 3))
+    bosc = np.zeros(m)  # sum over flux facets of C_F ||g - Pi_0 g||_F
+    bres = np.zeros(m)  # residual estimator: h_F ||g - K grad u_h . n||_F^2
+    fcell = np.asarray(mesh.boundary_facet_cells, dtype=np.int64)
+    floc = np.asarray(mesh.boundary_facet_local, dtype=np.int64)
+    nbf = fcell.size
+    dirichlet = np.zeros(nbf, dtype=bool)
+    for tag, value in problem.dirichlet.items():
+        ids = mesh.tagged_facets(tag)
+        dirichlet[ids] = True
+        _check_dirichlet(tag, value, disc, mesh, ids)
+    bkind[fcell[dirichlet], floc[dirichlet]] = _DIRICHLET
+    # g at the Gauss points of every boundary facet (flux into the domain)
+    a_loc = (floc + 1) % 3
+    b_loc = (floc + 2) % 3
+    xa = pts[cells[fcell, a_loc]]
+    xb = pts[cells[fcell, b_loc]]
+    gq = np.zeros((nbf, _GL_T.size))
+    for tag, flux in problem.neumann.items():
+        ids = mesh.tagged_facets(tag)
+        gq[ids] += _facet_values(flux, ids, xa, xb, f"neumann[{tag!r}]")
+    for tag, (alpha, uext) in problem.robin.items():
+        ids = mesh.tagged_facets(tag)
+        av = _facet_values(alpha, ids, xa, xb, f"robin[{tag!r}] alpha")
+        uv = _facet_values(uext, ids, xa, xb, f"robin[{tag!r}] u_ext")
+        uh = (1 - _GL_T)[None, :] * u[cells[fcell[ids], a_loc[ids]]][:, None] \
+            + _GL_T[None, :] * u[cells[fcell[ids], b_loc[ids]]][:, None]
+        gq[ids] += av * (uv - uh)
+    flen = np.sqrt(((xb - xa) ** 2).sum(axis=1))
+    fl = ~dirichlet
+    sel = np.flatnonzero(fl)
+    mom_a = flen * (gq * ((1 - _GL_T) * _GL_W)[None, :]).sum(axis=1)
+    mom_b = flen * (gq * (_GL_T * _GL_W)[None, :]).sum(axis=1)
+    gout[fcell[sel], floc[sel], a_loc[sel]] = -mom_a[sel]
+    gout[fcell[sel], floc[sel], b_loc[sel]] = -mom_b[sel]
+    gmean = (gq * _GL_W[None, :]).sum(axis=1)
+    goscn = np.sqrt(flen * (((gq - gmean[:, None]) ** 2) * _GL_W[None, :]).sum(axis=1))
+    c_trace = h[fcell] * np.sqrt(flen / area[fcell] * (1 / math.pi**2 + 1 / math.pi))
+    np.add.at(bosc, fcell[sel], (c_trace * goscn / np.sqrt(lam_min[fcell]))[sel])
+    nflux = _outward_normal_flux(flux_h[fcell], xa, xb, X[fcell, floc])
+    resq = flen * (((gq - nflux[:, None]) ** 2) * _GL_W[None, :]).sum(axis=1)
+    np.add.at(bres, fcell[sel], (flen * resq / lam_min[fcell])[sel])
+
+    # patch problems
+    vptr, vcell, vloc = _vertex_patches(cells, mesh.n_vertices)
+    P = np.zeros((m, 3, 3))
+    corr = np.zeros((m, 3))
+    _patch_fluxes(pts, cells, area, kinv, flux_h, vptr, vcell, vloc, draw, bkind, gout, P, corr)
+    # route the residual taken out of the patches
+    amount = np.ascontiguousarray(corr.sum(axis=1))
+    T = np.zeros((m, 3))
+    parent = np.empty(m, dtype=np.int64)
+    order = np.empty(m, dtype=np.int64)
+    n_floating = np.zeros(1, dtype=np.int64)
+    unrouted = _route(neighbors, bkind, amount, area, T, parent, order, n_floating)
+    F = P.sum(axis=1) + T  # outward flux through each facet of each cell
+    _check_equilibrium(F, fmom, amount, corr, neighbors, bkind, gout)
+
+    eta_flux = np.sqrt(np.maximum(_rt_misfit(X, area, F, flux_h, kinv), 0.0))
+    eta_alg = np.sqrt(np.maximum(_rt_misfit(X, area, T, np.zeros_like(flux_h), kinv), 0.0))
+    eta_osc = h / math.pi * osc / np.sqrt(lam_min)
+    eta = eta_flux + eta_osc + bosc
+    bound = float(np.sqrt((eta**2).sum()))
+
+    # residual estimator
+    jumps = _flux_jumps(X, flux_h, neighbors, lam_min)
+    res_ind = np.sqrt(h**2 / lam_min * fnorm2 + jumps + bres)
+    residual = float(np.sqrt((res_ind**2).sum()))
+
+    scale = float(np.abs(fmom).sum() + np.abs(gout).sum() + np.abs(stiff).sum()) or 1.0
+    guaranteed = True
+    if n_floating[0] and unrouted > 1e-12 * scale:
+        if problem.robin or problem.dirichlet:
+            guaranteed = False
+            notes.append(
+                f"{int(n_floating[0])} mesh part(s) that no Dirichlet facet reaches keep a "
+                f"residual of {unrouted:.3e} (algebraic or quadrature residual of a part "
+                "anchored by Robin terms or by a vertex only); the bound holds for the exactly "
+                "solved system only: solve with a tighter rtol")
+    if gap > 1e-10 * max(scale, 1e-300):
+        notes.append(f"source quadrature: two rules differ by {gap:.3e} in the cell integrals "
+                     "(a non-polynomial source); raise quadrature_degree if this matters")
+    est = ErrorEstimate(
+        bound=bound, indicators=eta, residual_estimate=residual, residual_indicators=res_ind,
+        terms={"flux": float(np.sqrt((eta_flux**2).sum())),
+               "oscillation": float(np.sqrt((eta_osc**2).sum())),
+               "boundary_data": float(np.sqrt((bosc**2).sum())),
+               "algebraic": float(np.sqrt((eta_alg**2).sum())),
+               "unrouted": float(unrouted), "quadrature_gap": float(gap)},
+        energy_norm=energy_norm, guaranteed=guaranteed, notes=notes)
+    if not (np.isfinite(bound) and np.isfinite(residual)):
+        raise InputError("estimate_error: the estimate is not finite (non-finite data or "
+                         "solution); check the source and boundary data")
+    if exact_gradient is not None:
+        from .functionals import energy_error
+        err = energy_error(disc, u, exact_gradient, kappa, quadrature_degree=quadrature_degree)
+        est.error = err
+        est.effectivity = bound / err if err > 0 else math.inf
+        est.residual_effectivity = residual / err if err > 0 else math.inf
+    est.seconds = time.perf_counter() - t_start
+    return est
+
+
+# -- helpers --------------------------------------------------------------------------
+def _conductivity_tensor(kappa, m):
+    t = tensor_values(kappa, m, 2, "conductivity")
+    if t is not None:
+        return np.ascontiguousarray(np.broadcast_to(t, (m, 2, 2)), dtype=np.float64)
+    v = scalar_values(kappa, m, "conductivity", positive=True)
+    v = np.broadcast_to(v[:, 0], (m,)) if v.shape[0] > 1 else np.full(m, float(v[0, 0]))
+    K = np.zeros((m, 2, 2))
+    K[:, 0, 0] = v
+    K[:, 1, 1] = v
+    return K
+
+
+def _source_moments(source, disc, X, area, cells, degree):
+    """``fmom[c, l] = int_c f l_l``, ``osc[c] = ||f - mean_c f||_c``, ``||f||_c**2`` and
+    the largest difference of the cell integrals between rules of ``degree`` and
+    ``degree + 2``."""
+    m = cells.shape[0]
+
+    def values(rule):
+        lam = np.column_stack([1 - rule.points.sum(axis=1), rule.points])  # (nq, 3)
+        if np.ndim(source) == 1 and np.shape(source) == (disc.n_dofs,):
+            fv = np.asarray(source, dtype=np.float64)[cells] @ lam.T  # (m, nq)
+        else:
+            nq = rule.n_points
+            fv = scalar_values(source, m, "source",
+                               points=lambda: np.einsum("ql,clj->jcq", lam, X).reshape(2, -1),
+                               point_shape=(m, nq))
+            fv = np.broadcast_to(fv, (m, nq)) if fv.shape[1] == nq else \
+                np.broadcast_to(fv[:, :1], (m, nq))
+        return lam, fv
+
+    rule = simplex_quadrature(2, degree)
+    lam, fv = values(rule)
+    w = 2 * area[:, None] * rule.weights[None, :]  # reference triangle has area 1/2
+    fmom = np.ascontiguousarray((w * fv) @ lam)
+    mean = (w * fv).sum(axis=1) / area
+    osc = np.sqrt(np.maximum((w * (fv - mean[:, None]) ** 2).sum(axis=1), 0.0))
+    fnorm2 = (w * fv**2).sum(axis=1)
+    gap = 0.0
+    if callable(source) or (isinstance(source, RegionCoefficient) and source.has_callable):
+        rule2 = simplex_quadrature(2, min(degree + 2, 20) if degree < 20 else degree - 2)
+        _, fv2 = values(rule2)
+        w2 = 2 * area[:, None] * rule2.weights[None, :]
+        gap = float(np.abs((w2 * fv2).sum(axis=1) - (w * fv).sum(axis=1)).sum())
+    return fmom, osc, fnorm2, gap
+
+
+def _facet_values(value, ids, xa, xb, name):
+    """Values of boundary data at the Gauss points of the facets ``ids``: (len(ids), nq)."""
+    nq = _GL_T.size
+    if callable(value):
+        x = (xa[ids][:, None, :] * (1 - _GL_T)[None, :, None]
+             + xb[ids][:, None, :] * _GL_T[None, :, None])  # (k, nq, 2)
+        v = evaluate_callable(value, np.ascontiguousarray(x.reshape(-1, 2).T), name)
+        v = np.asarray(v, dtype=np.float64).reshape(len(ids), nq)
+    else:
+        arr = np.asarray(value, dtype=np.float64)
+        if arr.ndim == 0:
+            v = np.full((len(ids), nq), float(arr))
+        elif arr.shape == (len(ids),):
+            v = np.repeat(arr[:, None], nq, axis=1)
+        else:
+            raise InputError(f"{name}: array of shape {arr.shape}; expected a number, one value "
+                             f"per tagged facet ({len(ids)},) or a callable")
+    if not np.isfinite(v).all():
+        raise InputError(f"{name}: non-finite boundary value")
+    return v
+
+
+def _check_dirichlet(tag, value, disc, mesh, ids):
+    """Dirichlet data must lie in the discrete space (affine along each facet)."""
+    if not callable(value):
+        return  # numbers and dof vectors are in the space
+    f = mesh.boundary_facets[ids]
+    xa, xb = mesh.points[f[:, 0]], mesh.points[f[:, 1]]
+    t = np.array([0.0, 0.25, 0.5, 0.75, 1.0])
+    x = xa[:, None, :] * (1 - t)[None, :, None] + xb[:, None, :] * t[None, :, None]
+    g = np.asarray(evaluate_callable(value, np.ascontiguousarray(x.reshape(-1, 2).T),
+                                     f"dirichlet[{tag!r}]"), dtype=np.float64).reshape(len(ids), 5)
+    lin = g[:, :1] * (1 - t)[None, :] + g[:, 4:] * t[None, :]
+    dev = np.abs(g - lin).max(axis=1)
+    tol = 1e-10 * max(float(np.abs(g).max()), 1e-300)
+    if (dev > tol).any():
+        i = int(np.argmax(dev))
+        raise UnsupportedError(
+            f"estimate_error: dirichlet[{tag!r}] is not affine along boundary facet "
+            f"{int(ids[i])} (deviation {dev[i]:.3e} from its P1 interpolant): Dirichlet data "
+            "outside the discrete space add a lifting term that is not implemented. Give the "
+            "condition as Neumann data (K du/dn) there, or use data affine per facet")
+
+
+def _neighbors(cells, n_vertices):
+    """Cell across each local facet (opposite local vertex i), -1 on the boundary."""
+    from .elements import REFERENCE_EDGES
+    _, cell_ent, _, _ = enumerate_entities(cells, np.array(REFERENCE_EDGES[2]), n_vertices)
+    m = cells.shape[0]
+    flat = cell_ent.ravel().astype(np.int64)
+    order = np.argsort(flat, kind="stable")
+    sf = flat[order]
+    nb_ = np.full(3 * m, -1, dtype=np.int64)
+    same = np.flatnonzero(sf[1:] == sf[:-1])
+    a, b = order[same], order[same + 1]
+    nb_[a] = b // 3
+    nb_[b] = a // 3
+    return np.ascontiguousarray(nb_.reshape(m, 3))
+
+
+def _vertex_patches(cells, n):
+    flat = cells.ravel().astype(np.int64)
+    order = np.argsort(flat, kind="stable")
+    vptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(np.bincount(flat, minlength=n), out=vptr[1:])
+    return vptr, np.ascontiguousarray(order // 3), np.ascontiguousarray(order % 3)
+
+
+def _rt_misfit(X, area, F, flux_h, kinv):
+    """``||K^-1/2 (sigma + flux_h)||_c**2`` for the RT0 field of outward facet fluxes F."""
+    s = X.sum(axis=1)  # (m, 2)
+    out = np.zeros(X.shape[0])
+    for q in range(3):
+        mq = 0.5 * (s - X[:, q])
+        sig = np.zeros_like(flux_h)
+        for i in range(3):
+            sig += F[:, i, None] * (mq - X[:, i]) / (2 * area[:, None])
+        w = sig + flux_h
+        out += area / 3 * np.einsum("ci,cij,cj->c", w, kinv, w)
+    return out
+
+
+def _outward_normal_flux(flux, xa, xb, xopp):
+    """``flux . n`` on the facet (xa, xb) with n pointing away from xopp."""
+    t = xb - xa
+    n = np.column_stack([t[:, 1], -t[:, 0]]) / np.sqrt((t**2).sum(axis=1))[:, None]
+    sgn = np.sign(((xa - xopp) * n).sum(axis=1))
+    return (flux * n).sum(axis=1) * sgn
+
+
+def _flux_jumps(X, flux_h, neighbors, lam_min):
+    """Per cell: sum over interior facets of h_F / (2 lambda_F) ||[K grad u_h . n]||_F**2."""
+    m = X.shape[0]
+    out = np.zeros(m)
+    for i in range(3):
+        nb_ = neighbors[:, i]
+        inner = np.flatnonzero(nb_ >= 0)
+        xa = X[inner, (i + 1) % 3]
+        xb = X[inner, (i + 2) % 3]
+        mine = _outward_normal_flux(flux_h[inner], xa, xb, X[inner, i])
+        # the neighbour's flux through the same facet, same normal
+        t = xb - xa
+        n = np.column_stack([t[:, 1], -t[:, 0]]) / np.sqrt((t**2).sum(axis=1))[:, None]
+        sgn = np.sign(((xa - X[inner, i]) * n).sum(axis=1))
+        other = (flux_h[nb_[inner]] * n).sum(axis=1) * sgn
+        hF = np.sqrt((t**2).sum(axis=1))
+        lamF = np.maximum(lam_min[inner], lam_min[nb_[inner]])
+        out[inner] += hF * hF * (mine - other) ** 2 / (2 * lamF)
+    return out
+
+
+def _check_equilibrium(F, fmom, amount, corr, neighbors, bkind, gout):
+    """The flux must balance the source cell by cell, be conforming, and meet the
+    boundary data (checks of what the compiled kernels returned)."""
+    scale = max(float(np.abs(F).max()), float(np.abs(fmom).max()), 1e-300)
+    div = np.abs(F.sum(axis=1) - (fmom.sum(axis=1) - corr.sum(axis=1) + amount))
+    if (div > 1e-8 * scale).any():
+        c = int(np.argmax(div))
+        raise RuntimeError(f"estimate_error: the equilibrated flux misses the source on cell "
+                           f"{c} by {div[c]:.3e}; internal error, please report with the mesh")
+    c_i, l_i = np.nonzero(neighbors >= 0)
+    other = neighbors[c_i, l_i]
+    back = np.argmax(neighbors[other] == c_i[:, None], axis=1)
+    jump = np.abs(F[c_i, l_i] + F[other, back])
+    if (jump > 1e-8 * scale).any():
+        j = int(np.argmax(jump))
+        raise RuntimeError(f"estimate_error: the equilibrated flux is not conforming across the "
+                           f"facet between cells {int(c_i[j])} and {int(other[j])} (jump "
+                           f"{jump[j]:.3e}); internal error, please report with the mesh")
+    miss = np.abs(np.where(bkind == _FLUX, F - gout.sum(axis=2), 0.0))
+    if (miss > 1e-8 * scale).any():
+        c, i = np.unravel_index(int(np.argmax(miss)), miss.shape)
+        raise RuntimeError(f"estimate_error: the equilibrated flux misses the boundary data on "
+                           f"facet {i} of cell {c} by {miss[c, i]:.3e}; internal error")
