@@ -26,7 +26,10 @@ __all__ = ["DirichletElimination", "dirichlet_values"]
 @nb.njit(cache=True, parallel=True)
 def _reduced_pattern(indptr, indices, new_index, free, rptr, rind):
     """Row lengths (first call, ``rind`` empty) or columns (second call) of
-    ``A_ff``; each free row is walked by one thread, in column order."""
+    ``A_ff``; each free row is walked by one thread, in column order.  The
+    exact construction, used when the predicted lengths of
+    :func:`_predicted_lengths` do not hold (a pattern that is not
+    structurally symmetric)."""
     n_free = free.shape[0]
     if rind.shape[0] == 0:
         for r in nb.prange(n_free):
@@ -47,18 +50,49 @@ def _reduced_pattern(indptr, indices, new_index, free, rptr, rind):
                 pos += 1
 
 
+@nb.njit(cache=True)
+def _predicted_lengths(indptr, indices, dofs, new_index, free, rptr):
+    """Row lengths of ``A_ff`` from the Dirichlet rows alone.
+
+    For a structurally symmetric pattern, the Dirichlet columns of a free row
+    ``i`` are the Dirichlet rows that hold column ``i``: walking only those
+    rows (a boundary's worth of entries) counts them, and the length of the
+    reduced row is the full length minus that count.  :func:`_reduce` checks
+    every row against it while it writes the columns; a pattern for which the
+    prediction fails falls back to :func:`_reduced_pattern`.
+    """
+    n_free = free.shape[0]
+    for r in range(n_free):
+        i = free[r]
+        rptr[r + 1] = indptr[i + 1] - indptr[i]
+    for d in dofs:
+        for j in range(indptr[d], indptr[d + 1]):
+            r = new_index[indices[j]]
+            if r >= 0:
+                rptr[r + 1] -= 1
+    for r in range(n_free):
+        rptr[r + 1] += rptr[r]
+
+
 @nb.njit(cache=True, parallel=True)
-def _reduce(indptr, indices, data, new_index, free, rptr, out, lift, b, g_full, rhs):
+def _reduce(indptr, indices, data, new_index, free, rptr, out, rind, lift, b, g_full, rhs):
     """``A_ff`` values into ``out`` and, when ``lift``, ``b_f - A_fd g`` into ``rhs``.
 
     One walk over the stored entries of every row: free rows copy their free
-    columns in order (the reduced pattern) and sum their Dirichlet columns
-    times ``g`` in column order (fixed order: the same bits for any thread
-    count).  Returns the number of non-finite entries of ``A`` (all rows).
+    columns in order (the reduced pattern; into ``rind`` too when it is not
+    empty, the first reduction) and sum their Dirichlet columns times ``g``
+    in column order (fixed order: the same bits for any thread count).
+
+    Returns ``(bad, wrong)``: the number of non-finite entries of ``A`` (all
+    rows), and the number of free rows whose free columns do not fill their
+    slots of ``rptr`` exactly (only checked while ``rind`` is written; then
+    nothing written is valid, and the caller rebuilds the exact pattern).
     """
     n = indptr.shape[0] - 1
     write = out.shape[0] > 0
+    columns = rind.shape[0] > 0
     bad = 0
+    wrong = 0
     for i in nb.prange(n):
         r = new_index[i]
         if r < 0:
@@ -67,21 +101,30 @@ def _reduce(indptr, indices, data, new_index, free, rptr, out, lift, b, g_full, 
                     bad += 1
             continue
         pos = rptr[r]
+        end = rptr[r + 1]
         s = b[i] if lift else 0.0
         for j in range(indptr[i], indptr[i + 1]):
             a = data[j]
             if not np.isfinite(a):
                 bad += 1
             c = indices[j]
-            if new_index[c] >= 0:
-                if write:
+            cnew = new_index[c]
+            if cnew >= 0:
+                if columns:
+                    if pos < end:
+                        rind[pos] = cnew
+                        out[pos] = a
+                    pos += 1
+                elif write:
                     out[pos] = a
                     pos += 1
             elif lift:
                 s -= a * g_full[c]
+        if columns and pos != end:
+            wrong += 1
         if lift:
             rhs[r] = s
-    return bad
+    return bad, wrong
 
 
 class DirichletElimination:
@@ -144,33 +187,69 @@ class DirichletElimination:
         self.free = free
         self.new_index = new_index
         self._indptr, self._indices = A.indptr, A.indices
-        # the reduced pattern, once: row lengths, then columns (no map back to
-        # the full matrix: the numeric phase walks the full rows again)
-        pdt = A.indices.dtype
+        # the reduced pattern's row lengths, predicted from the Dirichlet rows
+        # (exact for a structurally symmetric pattern); the columns are written
+        # by the first reduction, which checks every row against the prediction
         rptr = np.zeros(free.size + 1, dtype=np.int64)
-        _reduced_pattern(A.indptr, A.indices, new_index, free, rptr, np.empty(0, pdt))
-        np.cumsum(rptr, out=rptr)
-        nnz = int(rptr[-1])
-        if pdt.itemsize < 8 and nnz >= 2**31:
-            pdt = np.dtype(np.int64)
-        rind = np.empty(nnz, dtype=pdt)
-        _reduced_pattern(A.indptr, A.indices, new_index, free, rptr, rind)
-        self.reduced_indptr = rptr.astype(pdt) if pdt != rptr.dtype else rptr
-        self.reduced_indices = rind
-        for arr in (self.reduced_indptr, rind):
-            arr.flags.writeable = False
-        self._nnz = nnz
+        _predicted_lengths(A.indptr, A.indices, dofs, new_index, free, rptr)
+        self._pdt = A.indices.dtype
+        self._set_lengths(rptr)
+        self._rind = None
         self._no_rhs = np.empty(0)
+        if self._nnz == 0:
+            self._exact_pattern()
+
+    def _set_lengths(self, rptr):
+        self._rptr = rptr
+        self._nnz = int(rptr[-1])
+        if self._pdt.itemsize < 8 and self._nnz >= 2**31:
+            self._pdt = np.dtype(np.int64)
+
+    def _store_pattern(self, rind):
+        rptr = self._rptr
+        self._indptr_out = rptr.astype(self._pdt) if self._pdt != rptr.dtype else rptr
+        self._rind = rind
+        for arr in (self._indptr_out, rind):
+            arr.flags.writeable = False
+
+    def _exact_pattern(self):
+        """The reduced pattern by counting (when the prediction does not hold)."""
+        rptr = np.zeros(self.free.size + 1, dtype=np.int64)
+        _reduced_pattern(self._indptr, self._indices, self.new_index, self.free, rptr,
+                         np.empty(0, self._pdt))
+        np.cumsum(rptr, out=rptr)
+        self._set_lengths(rptr)
+        rind = np.empty(self._nnz, dtype=self._pdt)
+        _reduced_pattern(self._indptr, self._indices, self.new_index, self.free, rptr, rind)
+        self._store_pattern(rind)
+
+    @property
+    def reduced_indptr(self):
+        """Row pointer of the reduced matrix (read-only, shared by every result)."""
+        if self._rind is None:
+            self._exact_pattern()
+        return self._indptr_out
+
+    @property
+    def reduced_indices(self):
+        """Column indices of the reduced matrix (read-only, shared by every result)."""
+        if self._rind is None:
+            self._exact_pattern()
+        return self._rind
 
     @property
     def nnz(self) -> int:
         """Stored entries of the reduced matrix."""
+        if self._rind is None:
+            self._exact_pattern()
         return self._nnz
 
     def memory_bytes(self) -> int:
         """Bytes held by the elimination (maps and the reduced pattern)."""
-        return int(sum(a.nbytes for a in (self.dofs, self.free, self.new_index,
-                                          self.reduced_indptr, self.reduced_indices)))
+        held = [self.dofs, self.free, self.new_index, self._rptr]
+        if self._rind is not None:
+            held += [self._rind] + ([self._indptr_out] if self._indptr_out is not self._rptr else [])
+        return int(sum(a.nbytes for a in held))
 
     @property
     def n_free(self) -> int:
@@ -222,14 +301,19 @@ class DirichletElimination:
                 f"dof given), got shape {v.shape}")
         return g_full
 
-    def _run(self, A, out, b=None, g_full=None, rhs=None):
-        """One pass of the numeric kernel; refuses non-finite entries of ``A``."""
+    def _run(self, A, out, b=None, g_full=None, rhs=None, rind=None):
+        """One pass of the numeric kernel; refuses non-finite entries of ``A``.
+
+        Returns the number of rows that did not fit the predicted pattern
+        (only counted while ``rind`` is written)."""
         data = A.data if A.data.dtype == np.float64 else A.data.astype(np.float64)
         lift = rhs is not None
         if not lift:
             b = g_full = rhs = self._no_rhs
-        bad = _reduce(self._indptr, self._indices, data, self.new_index, self.free,
-                      self.reduced_indptr, out, lift, b, g_full, rhs)
+        if rind is None:
+            rind = self._no_rhs.astype(self._pdt)
+        bad, wrong = _reduce(self._indptr, self._indices, data, self.new_index, self.free,
+                             self._rptr, out, rind, lift, b, g_full, rhs)
         if bad:
             k = int(np.flatnonzero(~np.isfinite(data[:int(self._indptr[-1])]))[0])
             row = int(np.searchsorted(self._indptr, k, side="right") - 1)
@@ -237,6 +321,24 @@ class DirichletElimination:
                 f"DirichletElimination: the matrix has a non-finite entry "
                 f"{float(data[k])!r} in row {row} ({int(bad)} such entries); check the "
                 "coefficients that produced it")
+        return wrong
+
+    def _new_values(self, A, b=None, g_full=None, rhs=None):
+        """The reduced values in a new array (the first call writes the pattern too)."""
+        if self._rind is not None:
+            data = np.empty(self._nnz)
+            self._run(A, data, b, g_full, rhs)
+            return data
+        data = np.empty(self._nnz)
+        rind = np.empty(self._nnz, dtype=self._pdt)
+        if self._run(A, data, b, g_full, rhs, rind) == 0:
+            self._store_pattern(rind)
+            return data
+        del data, rind  # not structurally symmetric: count the pattern exactly
+        self._exact_pattern()
+        data = np.empty(self._nnz)
+        self._run(A, data, b, g_full, rhs)
+        return data
 
     def _new_matrix(self, data):
         R = sp.csr_array((data, self.reduced_indices, self.reduced_indptr),
@@ -266,9 +368,7 @@ class DirichletElimination:
         """
         self._check(A)
         if out is None:
-            data = np.empty(self._nnz)
-            self._run(A, data)
-            return self._new_matrix(data)
+            return self._new_matrix(self._new_values(A))
         self._check_out(out)
         self._run(A, out.data)
         return out
@@ -306,9 +406,7 @@ class DirichletElimination:
         b, g_full = self._rhs_inputs(b, values)
         rhs = np.empty(self.n_free)
         if out is None:
-            data = np.empty(self._nnz)
-            self._run(A, data, b, g_full, rhs)
-            return self._new_matrix(data), rhs
+            return self._new_matrix(self._new_values(A, b, g_full, rhs)), rhs
         self._check_out(out)
         self._run(A, out.data, b, g_full, rhs)
         return out, rhs

@@ -65,7 +65,7 @@ import scipy.sparse as sp
 from numba.typed import List
 
 from .errors import InputError
-from .sparse import (cg_update, dot, matvec_add_into, matvec_into, residual_into,
+from .sparse import (_chunks, cg_update, dot, matvec_add_into, matvec_into, residual_into,
                      spgemm, transpose, xpby_into)
 
 __all__ = ["Hierarchy", "build_hierarchy", "p1_interpolation", "p1_coarse_space", "DEFAULTS"]
@@ -206,17 +206,69 @@ def _aggregate(indptr, indices, data, diag, theta):
     return agg, na
 
 
+def _smoothed_prolongator(indptr, indices, data, l1, omega, agg, n_agg):
+    """``P = (I - omega D1^{-1} A) P0`` with ``P0`` the aggregates' constants.
+
+    Row ``i`` of ``P`` holds, for each aggregate ``J`` met in row ``i`` of
+    ``A``, the sum of ``delta_ij - omega a_ij / l1_i`` over the columns ``j``
+    of ``J``.  Two passes over chunks of rows (count, then columns and values
+    together), neither the smoothing operator nor ``P0`` is stored; the
+    columns and the summation order are those of the product of the two
+    (first appearance in A's row), the same for any thread count.
+    """
+    nchunk = _chunks(indptr.shape[0] - 1)
+    p_ptr = _prolongator_count(indptr, indices, agg, n_agg, nchunk)
+    p_ind = np.empty(p_ptr[-1], dtype=np.int32)
+    p_val = np.empty(p_ptr[-1], dtype=np.float64)
+    _prolongator_fill(indptr, indices, data, l1, omega, agg, n_agg, nchunk, p_ptr, p_ind, p_val)
+    return p_ptr, p_ind, p_val
+
+
 @nb.njit(cache=True, parallel=True)
-def _smoothing_operator(indptr, indices, data, l1, omega, out):
-    """Values of ``S = I - omega D1^{-1} A`` on the pattern of A."""
+def _prolongator_count(indptr, indices, agg, n_agg, nchunk):
     n = indptr.shape[0] - 1
-    for i in nb.prange(n):
-        c = omega / l1[i]
-        for k in range(indptr[i], indptr[i + 1]):
-            v = -c * data[k]
-            if indices[k] == i:
-                v += 1.0
-            out[k] = v
+    csize = (n + nchunk - 1) // nchunk
+    counts = np.zeros(n + 1, dtype=np.int64)
+    for c in nb.prange(nchunk):
+        mark = np.full(max(n_agg, 1), -1, dtype=np.int32)
+        for i in range(c * csize, min((c + 1) * csize, n)):
+            m = 0
+            for k in range(indptr[i], indptr[i + 1]):
+                J = agg[indices[k]]
+                if mark[J] != i:
+                    mark[J] = i
+                    m += 1
+            counts[i + 1] = m
+    p_ptr = np.empty(n + 1, dtype=np.int64)
+    p_ptr[0] = 0
+    for i in range(n):
+        p_ptr[i + 1] = p_ptr[i] + counts[i + 1]
+    return p_ptr
+
+
+@nb.njit(cache=True, parallel=True)
+def _prolongator_fill(indptr, indices, data, l1, omega, agg, n_agg, nchunk, p_ptr, p_ind, p_val):
+    n = indptr.shape[0] - 1
+    csize = (n + nchunk - 1) // nchunk
+    for c in nb.prange(nchunk):
+        slot = np.full(max(n_agg, 1), -1, dtype=np.int64)
+        for i in range(c * csize, min((c + 1) * csize, n)):
+            scale = omega / l1[i]
+            start = p_ptr[i]
+            m = start
+            for k in range(indptr[i], indptr[i + 1]):
+                v = -scale * data[k]
+                if indices[k] == i:
+                    v += 1.0
+                J = agg[indices[k]]
+                q = slot[J]
+                if q < start:
+                    slot[J] = m
+                    p_ind[m] = J
+                    p_val[m] = 0.0 + v
+                    m += 1
+                else:
+                    p_val[q] += v
 
 
 # ----------------------------------------------------------------------------
@@ -602,11 +654,8 @@ class Hierarchy:
                 break
             nxt = self._levels[i + 1]
             if not (i == 0 and self._pk):
-                S = np.empty_like(lv.val)
-                _smoothing_operator(lv.ptr, lv.ind, lv.val, lv.l1, 4.0 / 3.0, S)
-                P0 = _tentative(lv.agg, lv.n_agg)
-                lv.P = spgemm(lv.ptr, lv.ind, S, *P0, lv.n_agg)
-                del S
+                lv.P = _smoothed_prolongator(lv.ptr, lv.ind, lv.val, lv.l1, 4.0 / 3.0,
+                                             lv.agg, lv.n_agg)
                 lv.R = transpose(*lv.P, lv.n_agg)
             AP = spgemm(lv.ptr, lv.ind, lv.val, *lv.P, nxt.n)
             nxt.ptr, nxt.ind, nxt.val = spgemm(*lv.R, *AP, nxt.n)
@@ -631,22 +680,6 @@ class Hierarchy:
             self._chol = np.zeros((0, 0))
             self.coarsest = (f"smoother only ({c.n} unknowns: coarsening stalled above the "
                              f"dense limit {_MAX_DENSE})")
-
-
-@nb.njit(cache=True)
-def _tentative_kernel(agg, ind, val):
-    for i in range(agg.shape[0]):
-        ind[i] = agg[i]
-        val[i] = 1.0
-
-
-def _tentative(agg, n_agg):
-    n = agg.shape[0]
-    ptr = np.arange(n + 1, dtype=np.int64)
-    ind = np.empty(n, dtype=np.int32)
-    val = np.empty(n, dtype=np.float64)
-    _tentative_kernel(agg, ind, val)
-    return ptr, ind, val
 
 
 def _new_level(ptr, ind, val, n, degree, lower):
@@ -753,10 +786,7 @@ def build_hierarchy(A, *, coarse_space=None, theta=DEFAULTS["theta"],
                 break
             t0 = time.perf_counter()
             lv.agg, lv.n_agg = agg, n_agg
-            S = np.empty_like(lv.val)
-            _smoothing_operator(lv.ptr, lv.ind, lv.val, lv.l1, 4.0 / 3.0, S)
-            lv.P = spgemm(lv.ptr, lv.ind, S, *_tentative(agg, n_agg), n_agg)
-            del S
+            lv.P = _smoothed_prolongator(lv.ptr, lv.ind, lv.val, lv.l1, 4.0 / 3.0, agg, n_agg)
             lv.R = transpose(*lv.P, n_agg)
             n_next = n_agg
             phases["prolongate"] += time.perf_counter() - t0

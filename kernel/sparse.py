@@ -259,8 +259,73 @@ def _spgemm_numeric(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, c_ptr, c_ind, c_va
 
 
 def spgemm(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, n_cols):
-    """``C = A @ B`` as ``(indptr, indices, values)``; symbolic then numeric phase."""
-    c_ptr, c_ind = spgemm_symbolic(a_ptr, a_ind, b_ptr, b_ind, n_cols)
-    c_val = np.empty(c_ind.shape[0], dtype=np.float64)
-    spgemm_numeric(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, c_ptr, c_ind, c_val, n_cols)
+    """``C = A @ B`` as ``(indptr, indices, values)``.
+
+    Two passes over chunks of rows: the symbolic count of
+    :func:`spgemm_symbolic`, then one pass that writes each row's columns and
+    values together (a chunk's marker holds the slot of each column in the
+    current row).  The pattern and the values are those of
+    :func:`spgemm_symbolic` + :func:`spgemm_numeric`: the columns of a row in
+    the order of their first appearance, each entry summing its products in
+    the order of A's row, then B's row, so the result is the same for any
+    thread count.
+    """
+    nchunk = _chunks(a_ptr.shape[0] - 1)
+    c_ptr = _spgemm_count(a_ptr, a_ind, b_ptr, b_ind, n_cols, nchunk)
+    c_ind = np.empty(c_ptr[-1], dtype=np.int32)
+    c_val = np.empty(c_ptr[-1], dtype=np.float64)
+    _spgemm_fill(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, c_ptr, c_ind, c_val, n_cols, nchunk)
     return c_ptr, c_ind, c_val
+
+
+@nb.njit(cache=True, parallel=True)
+def _spgemm_count(a_ptr, a_ind, b_ptr, b_ind, n_cols, nchunk):
+    """Row pointer of ``C = A @ B`` (the first pass of :func:`_spgemm_symbolic`)."""
+    n = a_ptr.shape[0] - 1
+    csize = (n + nchunk - 1) // nchunk
+    counts = np.zeros(n + 1, dtype=np.int64)
+    for c in nb.prange(nchunk):
+        mark = np.full(max(n_cols, 1), -1, dtype=np.int32)
+        for i in range(c * csize, min((c + 1) * csize, n)):
+            m = 0
+            for ka in range(a_ptr[i], a_ptr[i + 1]):
+                j = a_ind[ka]
+                for kb in range(b_ptr[j], b_ptr[j + 1]):
+                    col = b_ind[kb]
+                    if mark[col] != i:
+                        mark[col] = i
+                        m += 1
+            counts[i + 1] = m
+    c_ptr = np.empty(n + 1, dtype=np.int64)
+    c_ptr[0] = 0
+    for i in range(n):
+        c_ptr[i + 1] = c_ptr[i] + counts[i + 1]
+    return c_ptr
+
+
+@nb.njit(cache=True, parallel=True)
+def _spgemm_fill(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, c_ptr, c_ind, c_val, n_cols,
+                 nchunk):
+    """Columns and values of ``C = A @ B`` in one pass (slots grow with the row)."""
+    n = a_ptr.shape[0] - 1
+    csize = (n + nchunk - 1) // nchunk
+    for c in nb.prange(nchunk):
+        slot = np.full(max(n_cols, 1), -1, dtype=np.int64)
+        for i in range(c * csize, min((c + 1) * csize, n)):
+            start = c_ptr[i]
+            m = start
+            for ka in range(a_ptr[i], a_ptr[i + 1]):
+                j = a_ind[ka]
+                av = a_val[ka]
+                for kb in range(b_ptr[j], b_ptr[j + 1]):
+                    col = b_ind[kb]
+                    k = slot[col]
+                    if k < start:
+                        # first product of this column in row i: slots of
+                        # earlier rows of the chunk are all below ``start``
+                        slot[col] = m
+                        c_ind[m] = col
+                        c_val[m] = 0.0 + av * b_val[kb]
+                        m += 1
+                    else:
+                        c_val[k] += av * b_val[kb]

@@ -187,3 +187,37 @@ def test_dirichlet_values_from_number_callable_and_dof_array():
         dirichlet_values(disc, np.zeros(3), dofs)
     with pytest.raises(InputError, match="non-finite"):
         dirichlet_values(disc, lambda p: np.where(p[0] > 0.5, np.nan, 0.0), dofs)
+
+
+@pytest.mark.parametrize("first", ["reduce", "reduce_matrix", "pattern"])
+def test_non_symmetric_patterns_reduce_like_scipy(first):
+    # SciPy fancy indexing as the reference.  The reduced pattern's row lengths
+    # are predicted from the Dirichlet rows, which holds for structurally
+    # symmetric patterns only: here entries are added to free rows only (and
+    # removed from one Dirichlet row), so the prediction fails in both
+    # directions and the exact counting must take over.
+    rng = np.random.default_rng(7)
+    n = 60
+    A = sp.random(n, n, density=0.12, random_state=rng, format="lil") + sp.eye(n, format="lil")
+    fixed = np.array([3, 10, 11, 40, 59])
+    A[5, 10] = 2.5   # a free row with an extra Dirichlet column
+    A[10, :] = 0.0   # a Dirichlet row without its columns
+    A[10, 10] = 1.0
+    A = sp.csr_array(A)
+    assert abs(A - A.T).max() > 0  # not symmetric, also not structurally
+    b = rng.standard_normal(n)
+    g = rng.standard_normal(fixed.size)
+    elim = DirichletElimination(A, fixed)
+    if first == "pattern":
+        assert elim.reduced_indices.size == elim.nnz
+    if first == "reduce_matrix":
+        R = elim.reduce_matrix(A)
+        bf = elim.reduce_rhs(A, b, g)
+    else:
+        R, bf = elim.reduce(A, b, g)
+    Rref, bref, _ = reference(A, fixed, g, b)
+    assert R.nnz == Rref.nnz
+    assert abs(R - Rref).max() == 0.0
+    assert np.abs(bf - bref).max() <= 1e-14 * max(1.0, np.abs(bref).max())
+    R2, _ = elim.reduce(A * 2.0, b, g, out=R)
+    assert R2 is R and abs(R - 2.0 * Rref).max() == 0.0

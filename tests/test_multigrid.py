@@ -166,6 +166,29 @@ def test_spgemm_matches_scipy(dims):
 # ---------------------------------------------------------------- the hierarchy
 
 
+def test_prolongator_is_the_smoothed_tentative_prolongator():
+    # reference: P = (I - 4/3 D1^-1 A) P0 built with SciPy from the definition
+    # (Vanek, Mandel & Brezina 1996, with the l1 diagonal D1 of Baker, Falgout,
+    # Kolev & Yang 2011): P0 the 0/1 aggregate indicator, D1 the l1 row sums
+    Af, _, _ = _reduced(gk.structured_tetrahedra(7, 6, 5), 1)
+    A = sp.csr_array(Af)
+    h = mg.build_hierarchy(A, max_coarse=10)
+    fine = h._levels[0]
+    assert fine.agg is not None and fine.n_agg > 1
+    n = fine.n
+    P0 = sp.csr_array((np.ones(n), (np.arange(n), fine.agg)), shape=(n, fine.n_agg))
+    Afine = _csr(fine.ptr, fine.ind, fine.val, (n, n))
+    l1 = np.abs(Afine).sum(axis=1)
+    ref = (sp.eye_array(n) - sp.diags_array(4.0 / 3.0 / l1) @ Afine) @ P0
+    P = _csr(*fine.P, (n, fine.n_agg))
+    assert np.abs((P - ref).toarray()).max() <= 1e-14
+    for i in range(n):  # no repeated aggregate within a row
+        row = fine.P[1][fine.P[0][i]:fine.P[0][i + 1]]
+        assert row.size == np.unique(row).size
+
+
+
+
 def test_coarse_operators_are_galerkin_products():
     # A_c = R A P with R = P^T, recomputed with SciPy from the hierarchy's own P
     Af, _, _ = _reduced(gk.structured_triangles(24, 24), 1)
