@@ -34,6 +34,7 @@ from .problem import PoissonProblem, Solution
 from .convergence import convergence_study, RateTable
 from .estimators import ErrorEstimate, estimate_error
 from .bisection import refine_marked, min_angles
+from .adaptivity import adapt, AdaptiveRun, LevelTable
 
 #: Mesh files from Python: ``galerkit.read_mesh`` and ``galerkit.write_solution`` are
 #: ``galerkit.bindings.files.read_mesh`` / ``write_solution``.  This is the one place
