@@ -36,8 +36,6 @@ __all__ = [
     "cg_update",
     "xpby_into",
     "transpose",
-    "spgemm_symbolic",
-    "spgemm_numeric",
     "spgemm",
 ]
 
@@ -179,96 +177,18 @@ def _chunks(n):
     return max(1, min(n, 4 * nb.get_num_threads()))
 
 
-def spgemm_symbolic(a_ptr, a_ind, b_ptr, b_ind, n_cols):
-    """Pattern of ``C = A @ B``: ``(indptr, indices)``.
-
-    The columns of a row are in the order of their first appearance (A's row
-    order, then B's), not sorted: no kernel here needs sorted rows, and
-    sorting would cost more than the product.  Two passes over chunks of
-    rows, a few per thread; each chunk has its own marker array of ``n_cols``
-    entries (one allocation per chunk, none per row).  Rows are independent,
-    so the chunking does not change the result.
-    """
-    return _spgemm_symbolic(a_ptr, a_ind, b_ptr, b_ind, n_cols,
-                            _chunks(a_ptr.shape[0] - 1))
-
-
-@nb.njit(cache=True, parallel=True)
-def _spgemm_symbolic(a_ptr, a_ind, b_ptr, b_ind, n_cols, nchunk):
-    n = a_ptr.shape[0] - 1
-    csize = (n + nchunk - 1) // nchunk
-    counts = np.zeros(n + 1, dtype=np.int64)
-    for c in nb.prange(nchunk):
-        mark = np.full(n_cols, -1, dtype=np.int32)
-        for i in range(c * csize, min((c + 1) * csize, n)):
-            m = 0
-            for ka in range(a_ptr[i], a_ptr[i + 1]):
-                j = a_ind[ka]
-                for kb in range(b_ptr[j], b_ptr[j + 1]):
-                    col = b_ind[kb]
-                    if mark[col] != i:
-                        mark[col] = i
-                        m += 1
-            counts[i + 1] = m
-    c_ptr = np.empty(n + 1, dtype=np.int64)
-    c_ptr[0] = 0
-    for i in range(n):
-        c_ptr[i + 1] = c_ptr[i] + counts[i + 1]
-    c_ind = np.empty(c_ptr[n], dtype=np.int32)
-    for c in nb.prange(nchunk):
-        mark = np.full(n_cols, -1, dtype=np.int32)
-        for i in range(c * csize, min((c + 1) * csize, n)):
-            m = c_ptr[i]
-            for ka in range(a_ptr[i], a_ptr[i + 1]):
-                j = a_ind[ka]
-                for kb in range(b_ptr[j], b_ptr[j + 1]):
-                    col = b_ind[kb]
-                    if mark[col] != i:
-                        mark[col] = i
-                        c_ind[m] = col
-                        m += 1
-    return c_ptr, c_ind
-
-
-def spgemm_numeric(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, c_ptr, c_ind, c_val, n_cols):
-    """Values of ``C = A @ B`` into the pattern of :func:`spgemm_symbolic`.
-
-    Each entry sums its products in the order of A's row, then B's row: the
-    same for any thread count.
-    """
-    _spgemm_numeric(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, c_ptr, c_ind, c_val, n_cols,
-                    _chunks(a_ptr.shape[0] - 1))
-
-
-@nb.njit(cache=True, parallel=True)
-def _spgemm_numeric(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, c_ptr, c_ind, c_val, n_cols,
-                    nchunk):
-    n = a_ptr.shape[0] - 1
-    csize = (n + nchunk - 1) // nchunk
-    for c in nb.prange(nchunk):
-        where = np.empty(max(n_cols, 1), dtype=np.int64)
-        for i in range(c * csize, min((c + 1) * csize, n)):
-            for k in range(c_ptr[i], c_ptr[i + 1]):
-                where[c_ind[k]] = k
-                c_val[k] = 0.0
-            for ka in range(a_ptr[i], a_ptr[i + 1]):
-                j = a_ind[ka]
-                av = a_val[ka]
-                for kb in range(b_ptr[j], b_ptr[j + 1]):
-                    c_val[where[b_ind[kb]]] += av * b_val[kb]
-
-
 def spgemm(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, n_cols):
     """``C = A @ B`` as ``(indptr, indices, values)``.
 
-    Two passes over chunks of rows: the symbolic count of
-    :func:`spgemm_symbolic`, then one pass that writes each row's columns and
-    values together (a chunk's marker holds the slot of each column in the
-    current row).  The pattern and the values are those of
-    :func:`spgemm_symbolic` + :func:`spgemm_numeric`: the columns of a row in
-    the order of their first appearance, each entry summing its products in
-    the order of A's row, then B's row, so the result is the same for any
-    thread count.
+    Two passes over chunks of rows, a few per thread, each chunk with a
+    marker array of ``n_cols`` entries (one allocation per chunk, none per
+    row): a count of every row's distinct columns, then one pass that writes
+    each row's columns and values together (the marker holds the slot of each
+    column in the current row).  The columns of a row are in the order of
+    their first appearance (A's row order, then B's), not sorted: no kernel
+    here needs sorted rows, and sorting would cost more than the product.
+    Each entry sums its products in the order of A's row, then B's row; rows
+    are independent, so the result is the same for any thread count.
     """
     nchunk = _chunks(a_ptr.shape[0] - 1)
     c_ptr = _spgemm_count(a_ptr, a_ind, b_ptr, b_ind, n_cols, nchunk)
@@ -280,7 +200,7 @@ def spgemm(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, n_cols):
 
 @nb.njit(cache=True, parallel=True)
 def _spgemm_count(a_ptr, a_ind, b_ptr, b_ind, n_cols, nchunk):
-    """Row pointer of ``C = A @ B`` (the first pass of :func:`_spgemm_symbolic`)."""
+    """Row pointer of ``C = A @ B``: the distinct columns of every row, counted."""
     n = a_ptr.shape[0] - 1
     csize = (n + nchunk - 1) // nchunk
     counts = np.zeros(n + 1, dtype=np.int64)
