@@ -137,10 +137,8 @@ def run_all(folder):
         ghost_ids = sol.global_dofs[~sol.owned]
         ghost_vals = sol.u[~sol.owned]
         gathered = comm.gather((ghost_ids, ghost_vals), root=0)
-        if comm.rank == 0:
-            (folder / name).mkdir(parents=True, exist_ok=True)
-        comm.barrier()
-        index = write_pieces(folder / name, name, sol)
+        # the piece folder does not exist yet: write_pieces creates it
+        index = write_pieces(folder / name / "pieces", name, sol)
         if comm.rank == 0:
             ghost_gap = max([float(np.abs(u[i] - v).max()) if len(i) else 0.0
                              for i, v in gathered] or [0.0])

@@ -842,6 +842,9 @@ def _reason_name(PETSc, reason: int) -> str:
 def write_pieces(folder, stem, sol: DistributedSolution, *, name="u"):
     """Each rank writes ``stem_pRANK.vtu``; rank 0 writes ``stem.pvtu`` listing them.
 
+    ``folder`` is created (with its parents) when it does not exist, as the
+    command line's ``--output`` folder is.
+
     Returns
     -------
     pathlib.Path
@@ -858,6 +861,13 @@ def write_pieces(folder, stem, sol: DistributedSolution, *, name="u"):
     piece = folder / f"{stem}_p{sol.rank}.vtu"
     local = Solution(u=sol.u, disc=sol.disc, report=None, seconds={}, assembler=None,
                      problem=sol.problem)
+    with _together(comm, "create the output folder"):
+        if sol.rank == 0:
+            try:
+                folder.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise InputError(f"cannot create the output folder {str(folder)!r}: "
+                                 f"{exc.strerror or exc}; choose a writable place") from None
     with _together(comm, "write pieces"):
         write_solution(piece, local, name=name, tags=sol.tags, extra_cell_data={
             "rank": lambda parent: np.full(parent.size, sol.rank, dtype=np.int32),
