@@ -505,3 +505,66 @@ def test_stay_in_folder_names_a_loop_of_links(job):
     with pytest.raises(InputError, match=r"mesh\.file: the mesh file '.*loop/x\.vtu' cannot be "
                        r"resolved \(a loop of symbolic links\?\)"):
         load_problem(write(job, '[mesh]\nfile = "loop/x.vtu"\n'), stay_in_folder=True)
+
+
+# ----------------------------------------------------------------------------
+# [adapt]
+# ----------------------------------------------------------------------------
+def test_adapt_section_becomes_the_keyword_arguments_of_adapt(tmp_path):
+    spec = load_problem(write(tmp_path, BASE + """
+[adapt]
+relative_tol = 0.01
+tol = 1e-3
+max_dofs = 5000
+max_levels = 12
+bulk = 0.3
+"""))
+    assert spec.build()[1].adapt == {"relative_tol": 0.01, "tol": 1e-3, "max_dofs": 5000,
+                                     "max_levels": 12, "bulk": 0.3}
+    spec = load_problem(write(tmp_path, BASE + "[adapt]\n"))
+    assert spec.options.adapt == {"max_dofs": 200_000, "max_levels": 30, "bulk": 0.5}
+    assert load_problem(write(tmp_path, BASE)).options.adapt is None
+
+
+@pytest.mark.parametrize("text,expected", [
+    ("[adapt]\nrel_tol = 0.1\n", "adapt.rel_tol: unknown key 'rel_tol'; did you mean "
+     "'relative_tol'? valid keys here: tol, relative_tol, max_dofs, max_levels, bulk"),
+    ("[adapt]\ntol = \"small\"\n", "adapt.tol: must be a number, got a string ('small')"),
+    ("[adapt]\ntol = 0\n", "adapt.tol: must be positive, got 0.0"),
+    ("[adapt]\nrelative_tol = 2\n", "adapt.relative_tol: must be below 1, got 2.0"),
+    ("[adapt]\nmax_dofs = 1.5e4\n", "adapt.max_dofs: must be an integer, got a number"),
+    ("[adapt]\nmax_levels = 0\n", "adapt.max_levels: must be 1 to 1000, got 0"),
+    ("[adapt]\nbulk = 1.5\n", "adapt.bulk: must be at most 1, got 1.5"),
+    ("[adapt]\nbulk = true\n", "adapt.bulk: must be a number, got true/false"),
+    ("adapt = 1\n", "adapt: must be a table"),
+    ("[discretization]\ndegree = 2\n[adapt]\n", "adapt: adaptive refinement runs on P1"),
+    ("[material]\nconductivity = \"1 + x\"\n[adapt]\n",
+     "material.conductivity: the formula '1 + x' varies inside cells"),
+])
+def test_adapt_mistakes_are_named_with_file_line_key_and_what_to_do(tmp_path, text, expected):
+    if text.startswith("adapt ="):
+        msg = error_of(tmp_path, text + BASE)
+    else:
+        msg = error_of(tmp_path, BASE + text)
+    assert "p.toml" in msg and expected in msg, msg
+    if "[adapt]" in text and "unknown" not in expected:
+        assert ", line " in msg
+
+
+def test_adapt_on_tetrahedra_is_refused_naming_the_section(tmp_path):
+    msg = error_of(tmp_path, "[mesh]\ngenerator = \"box\"\ncells = 2\n[adapt]\n")
+    assert "adapt: adaptive refinement is implemented for triangles only" in msg
+    assert "remove the [adapt] section" in msg
+
+
+def test_adapt_accepts_conductivity_constant_per_region(tmp_path):
+    spec = load_problem(write(tmp_path, """
+[mesh]
+generator = "square"
+cells = 4
+regions = { core = "x < 0.5" }
+[material]
+conductivity = { core = 10, default = "2*3" }
+[adapt]
+"""))
+    assert spec.options.adapt is not None
