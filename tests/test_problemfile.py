@@ -324,7 +324,8 @@ def sympy_of(text, constants=None):
     return sp.sympify(str(text).replace("^", "**"), locals=names), (x, y, z)
 
 
-@pytest.mark.parametrize("name", ["wall-corner-2d.toml", "block-3d.toml", "pipe-wall.toml"])
+@pytest.mark.parametrize("name", ["wall-corner-2d.toml", "block-3d.toml", "pipe-wall.toml",
+                                  "lshape-adaptive.toml"])
 def test_every_example_loads(name):
     spec = load_problem(EXAMPLES / name)
     assert spec.boundary and spec.mesh.n_cells > 0
@@ -347,6 +348,30 @@ def test_block_example_source_is_minus_div_kappa_grad_of_its_exact_solution():
     assert sp.simplify(sympy_of(by_tag["zmax"]["inflow"])[0]
                        - (k * sp.diff(u, z)).subs(z, 1)) == 0  # outward normal +z at z = 1
     assert sp.simplify(sympy_of(by_tag["zmin"]["u"])[0] - u.subs(z, 0)) == 0
+
+
+def test_lshape_example_is_the_corner_singularity_and_its_flux():
+    # source: u = r^(2/3) sin(2 theta/3), theta in [0, 3 pi/2] (Strang & Fix, An Analysis
+    # of the Finite Element Method, 1973), written here in closed form with NumPy
+    spec = load_problem(EXAMPLES / "lshape-adaptive.toml")
+    problem, opts = spec.build()
+    rng = np.random.default_rng(1)
+    x = rng.uniform(-1, 1, (2, 400))
+    x = x[:, ~((x[0] > 0) & (x[1] < 0))]  # the L-shape leaves out the quadrant x > 0, y < 0
+    r, t = np.hypot(x[0], x[1]), np.mod(np.arctan2(x[1], x[0]), 2 * np.pi)
+    assert np.allclose(opts.exact(x), r ** (2 / 3) * np.sin(2 * t / 3), rtol=1e-12)
+    grad = 2 / 3 * r ** (-1 / 3) * np.array([-np.sin(t / 3), np.cos(t / 3)])
+    assert np.allclose(opts.exact_gradient(x), grad, rtol=1e-12)
+    s = np.linspace(0.01, 0.99, 7)
+    sides = {"xmin": (np.array([-np.ones(7), 2 * s - 1]), (-1, 0)),
+             "xmax": (np.array([np.ones(7), s]), (1, 0)),
+             "ymin": (np.array([-s, -np.ones(7)]), (0, -1)),
+             "ymax": (np.array([2 * s - 1, np.ones(7)]), (0, 1))}
+    for tag, (pts, n) in sides.items():  # inflow = grad u . n, n the outward normal
+        r, t = np.hypot(pts[0], pts[1]), np.mod(np.arctan2(pts[1], pts[0]), 2 * np.pi)
+        g = 2 / 3 * r ** (-1 / 3) * np.array([-np.sin(t / 3), np.cos(t / 3)])
+        assert np.allclose(problem.neumann[tag](pts), n[0] * g[0] + n[1] * g[1], rtol=1e-12)
+    assert problem.dirichlet == {"reentrant": 0.0} and opts.adapt["relative_tol"] == 0.02
 
 
 def test_block_example_converges_at_the_a_priori_l2_rate():
