@@ -68,14 +68,40 @@ FLUX_BAL = "tests/test_fluxes.py::test_consistent_fluxes_of_all_tags_sum_to_minu
 REG_K = "tests/test_regions.py::test_region_dict_stiffness_equals_per_cell_values"
 FOLD = ("tests/test_bad_input.py::test_inverted_cell_overlapping_its_neighbour_is_refused_"
         "naming_both_cells")
+FOLD3 = ("tests/test_bad_input.py::test_inverted_tetrahedron_overlapping_its_neighbour_is_"
+         "refused_naming_both_cells")
+_FNP = "tests/test_mesh.py::test_boundary_facets_equal_a_numpy_count_of_all_facet_occurrences"
+FACETS_NP, FACETS_NP_RING = f"{_FNP}[0]", f"{_FNP}[3]"
+_M = "tests/test_mesh.py::test_"
+NONMANIFOLD = f"{_M}three_triangles_sharing_one_edge_are_non_manifold"
+REORIENT = f"{_M}negatively_oriented_cells_are_reoriented_and_counted"
+CELL_TABLES = f"{_M}generators_write_the_cell_tables_counted_by_hand"
+SIDE_TAGS = f"{_M}side_tags_have_the_right_sizes_and_lie_on_their_side"
+TAG_IDS = f"{_M}facet_tags_are_sorted_unique_copies_whatever_the_ids_given"
 
 # (name, file relative to kernel/, old text, new text[, test to run first]); old must
 # occur exactly once.  The test to run first is the one seen to kill the fault: it saves
 # running the selection up to it; the whole selection still runs if it passes.
 MUTANTS = [
-    ("folded facets never detected (two cells on the same side pass)", "topology.py",
-     "if (occ[i] & 1) == (occ[i + 1] & 1):", "if (occ[i] & 1) == (occ[i + 1] & 1) + 2:",
-     FOLD),
+    ("facet pass: folded facets never detected (two cells on the same side pass)", "topology.py",
+     "same[h] = 1 if side == side0[h] else 0", "same[h] = 0", FOLD),
+    ("facet pass: a facet of exactly three cells not counted as shared", "topology.py",
+     "else:\n                    shared_here += 1", "elif cnt > 3:\n                    shared_here += 1",
+     NONMANIFOLD),
+    ("facet pass: boundary facets with the wrong local index", "topology.py",
+     "facet_local[out] = o % k", "facet_local[out] = (o + 1) % k", FACETS_NP),
+    ("facet pass: large facet buckets sorted in reverse", "topology.py",
+     "tmp_keys[i] = keys[order[i]]\n        tmp_occ[i] = occ[order[i]]",
+     "tmp_keys[i] = keys[order[n - 1 - i]]\n        tmp_occ[i] = occ[order[n - 1 - i]]",
+     FACETS_NP_RING),
+    ("cell check: re-oriented cells not counted", "mesh.py",
+     "n_negative += 1 if negative else 0", "n_negative += 0", REORIENT),
+    ("generator: second triangle of each square listed clockwise", "generators.py",
+     "[0, nx + 2, nx + 1]]", "[0, nx + 1, nx + 2]]", CELL_TABLES),
+    ("side tags: the upper sides never tagged", "generators.py",
+     "if abs(x - upper[a]) <= tol:", "if abs(x - upper[a]) < -tol:", SIDE_TAGS),
+    ("set_facet_tag: unsorted ids kept as given", "mesh.py",
+     "if ids.size > 1 and not (ids[1:] > ids[:-1]).all():", "if False:", TAG_IDS),
     ("l2_error scaled by 1.03", "functionals.py",
      "t = _integrate(disc, u, _L2, exact=exact, quadrature_degree=quadrature_degree)\n"
      "    return t if per_cell else float(np.sqrt(max(t.sum(), 0.0)))",
@@ -206,7 +232,7 @@ SELECTION = [
     *(f"{_F}norms_and_energy_of_an_interpolated_polynomial_equal_sympy_integrals[{c}]"
       for c in ("2-1", "2-2", "3-2")),
     *(f"{_F}zero_against_products_of_sines_gives_the_closed_forms[{c}]" for c in ("2-1", "3-1")),
-    FOLD,
+    FOLD, FOLD3, _FNP, NONMANIFOLD, REORIENT, CELL_TABLES, SIDE_TAGS, TAG_IDS,
     "tests/test_boundary.py",
     "tests/test_regions.py",
     "tests/test_fluxes.py",
