@@ -14,6 +14,23 @@ process (so peak RSS belongs to it alone):
   smoothed-aggregation hierarchy with PyAMG's defaults, and SciPy's ``cg``
   preconditioned by it.
 
+A second table puts each of our phases beside the memory-bandwidth probe
+(a NumPy copy of a 256 MB array in the same process, as ``compare.py``
+does): ``floor MB`` is the least memory traffic the phase's inputs and
+outputs need (each array it must read or write touched once), ``floor s``
+that traffic at the probe's rate, ``x floor`` the measured time over it.
+The floors per phase:
+
+* mesh: the points and cells written, then read once (validation);
+* discretize is left out: the P1 numbering is the cells themselves;
+* assemble: the matrix (values, column indices, row pointers) and the load
+  vector written, points and cells read;
+* constrain: the matrix read, the reduced matrix written;
+* solver_setup: the reduced matrix read, the hierarchy written;
+* solve: per iteration, the reduced matrix once (the CG product) and each
+  level's operator ``2 * smoother degree + 1`` times (smoothing and the
+  residual), transfers and vectors left out.
+
 Usage::
 
     python benchmarks/compare_poisson.py              # ~1M dofs, 3D and 2D
@@ -33,7 +50,8 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 from compare import cells_per_axis, markdown_rows, peak_rss_bytes  # noqa: E402
 
-CASES = {"3D": (3, 99), "2D": (2, 999)}
+CASES = {"3D": (3, 99), "2D": (2, 999), "3D-274k": (3, 64)}
+PROBE_BYTES = 256 * 2**20
 
 
 def _mesh(dim, n):
@@ -62,10 +80,34 @@ def run_ours(dim, n):
     t = time.perf_counter()
     elim.reduce(A, np.ones(A.shape[0]), 0.0, out=Af)
     t_re = time.perf_counter() - t
+    opts = sol.report.options
+    csr = A.data.nbytes + A.indices.nbytes + A.indptr.nbytes
+    red = Af.data.nbytes + Af.indices.nbytes + Af.indptr.nbytes
+    geo = mesh.points.nbytes + mesh.cells.nbytes
+    levels = sum((2 * opts.get("smoother_degree", 2) + 1) * (12 * nnz + 8 * m)
+                 for m, nnz in zip(opts["level_sizes"], opts["level_nonzeros"]))
+    floors = {"mesh": 2 * geo,
+              "assemble": csr + 8 * A.shape[0] + geo, "constrain": csr + red,
+              "solver_setup": red + opts["hierarchy_bytes"],
+              "solve": sol.report.iterations * (red + levels)}
+    src = np.ones(PROBE_BYTES // 8)
+    dst = np.empty_like(src)
+    t_copy = min(_timed(lambda: np.copyto(dst, src)) for _ in range(5))
+    probe = 2 * src.nbytes / t_copy
+    phases = {"mesh": t_mesh, **sol.seconds}
+    traffic = [{"phase": k, "seconds": phases[k], "floor_mb": b / 2**20, "floor_s": b / probe,
+                "x_floor": phases[k] / (b / probe)} for k, b in floors.items() if k in phases]
     return {"pipeline": "ours", "dofs": sol.disc.n_dofs, "mesh": t_mesh, **sol.seconds,
+            "probe_gbs": probe / 1e9, "traffic": traffic,
             "reconstrain": t_re, "peak_rss_mb": rss / 2**20, "bytes_per_dof": rss / sol.disc.n_dofs,
             "total": total, "iterations": sol.report.iterations,
             "residual": sol.report.final_residual, "u_max": float(sol.u.max())}
+
+
+def _timed(fn):
+    t = time.perf_counter()
+    fn()
+    return time.perf_counter() - t
 
 
 def run_by_hand(dim, n):
@@ -141,6 +183,12 @@ def main(argv=None):
                                  capture_output=True, text=True, check=True)
             rows.append(json.loads(out.stdout.strip().splitlines()[-1]))
     print(markdown_rows(rows, COLS))
+    for r in rows:
+        if "traffic" in r:
+            print(f"\n{r['case']}, ours, phase by phase against the probe's "
+                  f"{r['probe_gbs']:.1f} GB/s:\n")
+            print(markdown_rows(r["traffic"], ["phase", "seconds", "floor_mb", "floor_s",
+                                               "x_floor"]))
     by = {(r["case"], r["pipeline"]): r for r in rows}
     for name in args.cases.split(","):
         if (name, "by hand") in by:

@@ -92,10 +92,19 @@ class PhaseSeconds(dict):
 
 def cache_folder() -> str:
     """Where numba keeps galerkit's compiled kernels (see the module notes)."""
+    return _cache_folder_for(os.path.dirname(os.path.abspath(__file__)))
+
+
+def _cache_folder_for(source_folder) -> str:
+    """numba's cache folder for kernels whose sources lie in ``source_folder``.
+
+    ``NUMBA_CACHE_DIR`` when set; else ``__pycache__`` beside the sources when it
+    can be created and written; else the user-wide folder numba falls back to
+    (it keeps a subfolder per source folder below it).
+    """
     if _config.CACHE_DIR:
         return str(_config.CACHE_DIR)
-    here = os.path.dirname(os.path.abspath(__file__))
-    pycache = os.path.join(here, "__pycache__")
+    pycache = os.path.join(str(source_folder), "__pycache__")
     try:
         os.makedirs(pycache, exist_ok=True)
         probe = os.path.join(pycache, f".write-probe-{os.getpid()}")

@@ -62,6 +62,7 @@ import time
 import numba as nb
 import numpy as np
 import scipy.sparse as sp
+from numba import types as _nbt
 from numba.typed import List
 
 from .errors import InputError
@@ -76,7 +77,10 @@ DEFAULTS = {
     "max_coarse": 400,      # dense Cholesky at or below this size
     "max_levels": 20,
     "smoother_degree": 2,   # Chebyshev degree (matrix-vector products per sweep)
-    "smoother_lower": 0.12,  # lower end of the Chebyshev interval, fraction of lambda
+    # lower end of the Chebyshev interval, fraction of lambda; measured on the
+    # 1M-dof unit square / cube (benchmarks/compare_solvers.py): 0.12 -> 16 / 14
+    # CG iterations, 0.15 -> 15 / 14, 0.18 and 0.22 -> 15 / 15
+    "smoother_lower": 0.15,
     "fine_smoother_degree": 3,  # the same on a P_k level of p-multigrid (degree >= 2)
 }
 
@@ -487,6 +491,46 @@ class _Level:
                  "P", "R", "lower", "degree", "n")
 
 
+# -- typed lists of per-level arrays, built by cached kernels -------------------
+_I64_1D = _nbt.Array(_nbt.int64, 1, "C")
+_I32_1D = _nbt.Array(_nbt.int32, 1, "C")
+_F64_1D = _nbt.Array(_nbt.float64, 1, "C")
+
+
+@nb.njit(cache=True)
+def _new_i64():
+    return List.empty_list(_I64_1D)
+
+
+@nb.njit(cache=True)
+def _new_i32():
+    return List.empty_list(_I32_1D)
+
+
+@nb.njit(cache=True)
+def _new_f64():
+    return List.empty_list(_F64_1D)
+
+
+def _checked_push(kernel, dtype):
+    def push(lst, a):
+        if a.dtype != dtype or a.ndim != 1 or not a.flags.c_contiguous:
+            raise TypeError(f"multigrid level array: expected C-contiguous 1-D {dtype}, "
+                            f"got {a.dtype} {a.ndim}-D")
+        kernel(lst, a)
+    return push
+
+
+@nb.njit(cache=True)
+def _push_kernel(lst, a):
+    lst.append(a)
+
+
+_push_i64 = _checked_push(_push_kernel, np.int64)
+_push_i32 = _checked_push(_push_kernel, np.int32)
+_push_f64 = _checked_push(_push_kernel, np.float64)
+
+
 class Hierarchy:
     """A multigrid hierarchy for one SPD matrix, reusable across right-hand sides.
 
@@ -578,29 +622,34 @@ class Hierarchy:
 
     # -- set-up --------------------------------------------------------------
     def _pack(self):
-        a_ptr, a_ind, a_val, dinv = List(), List(), List(), List()
-        p_ptr, p_ind, p_val, r_ptr, r_ind, r_val = List(), List(), List(), List(), List(), List()
-        xs, bs, rs, ds = List(), List(), List(), List()
+        # typed lists are built by cached kernels (_new_*, _push): List() and
+        # List.append called from Python compile numba's own list code afresh in
+        # every process (about a second), cached kernels load it from the cache
+        a_ptr, a_ind, a_val, dinv = _new_i64(), _new_i32(), _new_f64(), _new_f64()
+        p_ptr, p_ind, p_val = _new_i64(), _new_i32(), _new_f64()
+        r_ptr, r_ind, r_val = _new_i64(), _new_i32(), _new_f64()
+        xs, bs, rs, ds = _new_f64(), _new_f64(), _new_f64(), _new_f64()
         for lv in self._levels:
-            a_ptr.append(lv.ptr)
-            a_ind.append(lv.ind)
-            a_val.append(lv.val)
-            dinv.append(lv.dinv)
+            _push_i64(a_ptr, lv.ptr)
+            _push_i32(a_ind, lv.ind)
+            _push_f64(a_val, lv.val)
+            _push_f64(dinv, lv.dinv)
             for lst in (xs, bs, rs, ds):
-                lst.append(np.zeros(lv.n))
+                _push_f64(lst, np.zeros(lv.n))
         for lv in self._levels[:-1]:
-            p_ptr.append(lv.P[0])
-            p_ind.append(lv.P[1])
-            p_val.append(lv.P[2])
-            r_ptr.append(lv.R[0])
-            r_ind.append(lv.R[1])
-            r_val.append(lv.R[2])
-        if len(self._levels) == 1:  # typed lists must know their type
-            empty_p = np.zeros(1, dtype=np.int64)
-            for lst, arr in ((p_ptr, empty_p), (r_ptr, empty_p),
-                             (p_ind, np.zeros(0, np.int32)), (r_ind, np.zeros(0, np.int32)),
-                             (p_val, np.zeros(0)), (r_val, np.zeros(0))):
-                lst.append(arr)
+            _push_i64(p_ptr, lv.P[0])
+            _push_i32(p_ind, lv.P[1])
+            _push_f64(p_val, lv.P[2])
+            _push_i64(r_ptr, lv.R[0])
+            _push_i32(r_ind, lv.R[1])
+            _push_f64(r_val, lv.R[2])
+        if len(self._levels) == 1:  # the kernels index no transfer, but take one
+            _push_i64(p_ptr, np.zeros(1, dtype=np.int64))
+            _push_i64(r_ptr, np.zeros(1, dtype=np.int64))
+            _push_i32(p_ind, np.zeros(0, np.int32))
+            _push_i32(r_ind, np.zeros(0, np.int32))
+            _push_f64(p_val, np.zeros(0))
+            _push_f64(r_val, np.zeros(0))
         lower = np.array([lv.lower for lv in self._levels])
         degree = np.array([lv.degree for lv in self._levels], dtype=np.int64)
         self._packed = (a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_val, r_ptr, r_ind, r_val,

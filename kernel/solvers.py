@@ -1409,6 +1409,7 @@ def _cg_pyamg(A, *, amg_options: dict | None = None):
     options = {
         "amg_options": dict(keywords),
         "levels": len(hierarchy.levels),
+        "level_nonzeros": [int(lv.A.nnz) for lv in hierarchy.levels],
         "operator_complexity": float(hierarchy.operator_complexity()),
     }
     backend = _CGSolver(A, "cg-pyamg", cycle.matvec, 500, options)

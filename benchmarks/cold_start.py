@@ -1,0 +1,139 @@
+"""First run after install: what numba compiles, and how long a cold and a warm run take.
+
+Runs a galerkit command (default ``demo``) in a child process whose numba cache is a
+fresh temporary folder (cold), then again on that same folder (warm), and prints per
+run: wall seconds, compile seconds, and every kernel signature compiled with its
+seconds (numba's ``numba:compile`` events; nested compiles are charged to the
+kernel that triggered them and also listed on their own).
+
+    .venv/bin/python benchmarks/cold_start.py                 # demo, cold then warm
+    .venv/bin/python benchmarks/cold_start.py --repeat 3      # min over 3 cold/warm pairs
+    .venv/bin/python benchmarks/cold_start.py -- warm-up      # any galerkit command
+    .venv/bin/python benchmarks/cold_start.py --top 50 -- demo --size 300
+
+Other work on the machine slows compilation; the load average is printed with each
+run and the minimum over repeats is the figure to quote.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+
+CHILD = r"""
+import json, os, sys, time
+from numba.core import event
+
+records, stack = [], []
+
+class L(event.Listener):
+    def on_start(self, ev):
+        d = ev.data or {}
+        disp = d.get("dispatcher")
+        name = getattr(getattr(disp, "py_func", None), "__qualname__", repr(disp))
+        mod = getattr(getattr(disp, "py_func", None), "__module__", "?")
+        sig = ",".join(str(a) for a in d.get("args", ()))
+        stack.append([mod.rsplit(".", 1)[-1] + "." + name, sig, time.perf_counter(), 0.0, len(stack)])
+
+    def on_end(self, ev):
+        name, sig, t0, child, depth = stack.pop()
+        dt = time.perf_counter() - t0
+        if stack:
+            stack[-1][3] += dt
+        records.append({"kernel": name, "sig": sig, "seconds": dt, "self": dt - child,
+                        "depth": depth})
+
+event.register("numba:compile", L())
+t0 = time.perf_counter()
+from galerkit.bindings.command.cli import main
+try:
+    rc = main(sys.argv[1:])
+finally:
+    wall = time.perf_counter() - t0
+    with open(os.environ["COLD_START_OUT"], "w") as f:
+        json.dump({"wall": wall, "records": records}, f)
+sys.exit(rc)
+"""
+
+
+def run_once(command, cache, env_extra=None):
+    out = os.path.join(cache, f"record-{time.time_ns()}.json")
+    env = dict(os.environ, NUMBA_CACHE_DIR=os.path.join(cache, "numba"), COLD_START_OUT=out)
+    env.pop("GALERKIT_CACHE_DIR", None)
+    env.update(env_extra or {})
+    load = os.getloadavg()[0]
+    t0 = time.perf_counter()
+    proc = subprocess.run([sys.executable, "-c", CHILD, *command], env=env,
+                          capture_output=True, text=True)
+    elapsed = time.perf_counter() - t0
+    if proc.returncode != 0:
+        sys.stderr.write(proc.stdout + proc.stderr)
+        raise SystemExit(f"cold_start: `galerkit {' '.join(command)}` failed ({proc.returncode})")
+    with open(out) as f:
+        rec = json.load(f)
+    rec["process"] = elapsed
+    rec["load"] = load
+    rec["stdout"] = proc.stdout
+    rec["stderr"] = proc.stderr
+    return rec
+
+
+def summary(rec):
+    top = [r for r in rec["records"] if r["depth"] == 0]
+    return {"process_s": round(rec["process"], 2), "wall_s": round(rec["wall"], 2),
+            "compile_s": round(sum(r["seconds"] for r in top), 2),
+            "signatures": len(rec["records"]), "outermost": len(top),
+            "load": round(rec["load"], 2)}
+
+
+def table(rec, n):
+    rows = sorted(rec["records"], key=lambda r: -r["self"])
+    lines = [f"  {'self s':>7s} {'incl s':>7s}  kernel (signature)"]
+    for r in rows[:n]:
+        sig = r["sig"] if len(r["sig"]) < 110 else r["sig"][:107] + "..."
+        lines.append(f"  {r['self']:7.2f} {r['seconds']:7.2f}  {'  ' * r['depth']}{r['kernel']}({sig})")
+    if len(rows) > n:
+        lines.append(f"  ... {len(rows) - n} more, {sum(r['self'] for r in rows[n:]):.2f} s self")
+    return "\n".join(lines)
+
+
+def main(argv=None):
+    p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    p.add_argument("--repeat", type=int, default=1, help="cold/warm pairs (min is reported)")
+    p.add_argument("--top", type=int, default=25, help="kernels listed per cold run")
+    p.add_argument("--json", action="store_true", help="print the summaries as JSON")
+    p.add_argument("command", nargs="*", default=["demo", "--quiet"])
+    a = p.parse_args(argv)
+    cmd = a.command or ["demo", "--quiet"]
+    results = []
+    with tempfile.TemporaryDirectory(prefix="galerkit-cold-") as tmp:
+        os.chdir(tmp)  # outputs (galerkit-out/) land in the temporary folder
+        for i in range(a.repeat):
+            cache = os.path.join(tmp, f"cache{i}")
+            os.makedirs(cache)
+            cold = run_once(cmd, cache)
+            warm = run_once(cmd, cache)
+            results.append({"cold": summary(cold), "warm": summary(warm)})
+            if not a.json:
+                print(f"run {i + 1}: galerkit {' '.join(cmd)}")
+                print(f"  cold {summary(cold)}")
+                print(table(cold, a.top))
+                print(f"  warm {summary(warm)}")
+                if warm["records"]:
+                    print(table(warm, a.top))
+                sys.stdout.flush()
+    best = {k: min(r[k]["process_s"] for r in results) for k in ("cold", "warm")}
+    if a.json:
+        print(json.dumps({"runs": results, "min_process_s": best}))
+    else:
+        print(f"min over {a.repeat}: cold {best['cold']:.2f} s, warm {best['warm']:.2f} s "
+              "(whole process, imports included)")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,136 @@
+"""Compile-time accounting (galerkit.compilation) and the command line's compile line.
+
+numba fires ``numba:compile`` events only when it really compiles a kernel (not when
+it loads one from its cache); galerkit adds them up so phases report their own time.
+A run that compiles prints one stderr line saying so and a separate ``compile`` line in
+its report; a run whose kernels all come from the cache prints neither.  No test here
+asserts a wall-clock time: only that compile time is seen, kept apart and summed.
+Where numba keeps its cache and how it falls back when the sources' folder cannot be
+written is numba's documented behaviour (numba docs, "Cache sharing" and
+``NUMBA_CACHE_DIR``); the last test checks it on this installation.
+"""
+
+from __future__ import annotations
+
+import os
+import json
+import subprocess
+import sys
+import textwrap
+import time
+
+import numba as nb
+import numpy as np
+import pytest
+
+from galerkit import assembly, compilation
+from galerkit.bindings.command.cli import main
+from galerkit.compilation import PhaseSeconds, compile_count, compile_seconds
+
+SCRIPT = os.path.join(os.path.dirname(sys.executable), "galerkit")
+
+
+def _fresh_kernel():
+    """A kernel no process has compiled: a new closure, not cached."""
+    salt = float(np.random.default_rng().integers(1, 1 << 30))
+
+    @nb.njit
+    def kernel(x):
+        s = 0.0
+        for i in range(x.shape[0]):
+            s += x[i] * salt
+        return s
+
+    return kernel, salt
+
+
+def test_compile_events_are_counted_and_kept_out_of_the_phase():
+    kernel, salt = _fresh_kernel()
+    n0, s0 = compile_count(), compile_seconds()
+    sec = PhaseSeconds()
+    t = time.perf_counter()
+    assert kernel(np.ones(3)) == 3 * salt
+    wall = time.perf_counter() - t
+    sec["work"] = wall
+    assert compile_count() == n0 + 1
+    spent = compile_seconds() - s0
+    assert spent > 0.0
+    assert list(sec) == ["work", "compile"]
+    assert sec["compile"] == pytest.approx(spent)
+    assert sec["work"] + sec["compile"] == pytest.approx(wall)
+    # a second call runs the compiled code: no event, no compile entry
+    sec2 = PhaseSeconds()
+    kernel(np.ones(3))
+    sec2["work"] = 0.5
+    assert compile_count() == n0 + 1 and dict(sec2) == {"work": 0.5}
+
+
+def test_forced_recompilation_shows_the_compile_line_and_a_warm_run_does_not(
+        monkeypatch, capsys, tmp_path):
+    args = ["demo", "--size", "12", "--method", "cg-amg", "--output", str(tmp_path)]
+    # warm this process first (from the cache or by compiling)
+    assert main(args) == 0
+    capsys.readouterr()
+    # in-process, every kernel is now loaded: no compile line, no announcement
+    assert main(args) == 0
+    out, err = capsys.readouterr()
+    assert "compile " not in out and "compiling" not in err
+    # force one kernel of the run to compile again: a new dispatcher, no cache
+    fresh = nb.njit(parallel=True)(assembly._p1_stiffness.py_func)
+    monkeypatch.setattr(assembly, "_p1_stiffness", fresh)
+    assert main(args) == 0
+    out, err = capsys.readouterr()
+    lines = [ln for ln in out.splitlines() if ln.split()[:1] == ["compile"]]
+    assert len(lines) == 1 and "first run only" in lines[0]
+    assert float(lines[0].split()[1]) > 0.0
+    assert err.count("galerkit: compiling kernels for their first use") == 1
+    assert compilation.cache_folder() in err
+
+
+def test_a_warm_process_compiles_nothing(tmp_path):
+    """Two processes: the second loads every kernel of the run from the cache.
+
+    The first may compile (cold cache); the second must print no compile line.
+    Kernels that numba cannot cache (typed lists built from Python, for one)
+    would compile again in every process and fail this.
+    """
+    cmd = [SCRIPT] if os.path.exists(SCRIPT) else [sys.executable, "-m",
+                                                     "galerkit.bindings.command.cli"]
+    cmd += ["demo", "--size", "24", "--method", "cg-amg", "--json"]
+    for attempt in range(2):
+        p = subprocess.run(cmd, capture_output=True, text=True, cwd=tmp_path, timeout=900)
+        assert p.returncode == 0, p.stderr
+    info = json.loads(p.stdout)
+    assert "compile" not in info["seconds"], info["seconds"]
+    assert "compiling" not in p.stderr
+
+
+def test_cache_falls_back_to_a_user_wide_folder_when_the_sources_cannot_hold_it(tmp_path):
+    """A read-only install: numba cannot create ``__pycache__`` beside the sources.
+
+    Simulated by a plain file named ``__pycache__`` (as root, permissions would not
+    stop a write).  The cached kernel must still run and be cached under
+    ``$XDG_CACHE_HOME/numba``, where ``galerkit.compilation`` says it is.
+    """
+    pkg = tmp_path / "site" / "kernels"
+    pkg.mkdir(parents=True)
+    (pkg / "__pycache__").write_text("not a folder")
+    (pkg / "mod.py").write_text(textwrap.dedent("""
+        import numba
+        @numba.njit(cache=True)
+        def twice(x):
+            return 2 * x
+    """))
+    cache = tmp_path / "user-cache"
+    env = {k: v for k, v in os.environ.items()
+           if k not in ("NUMBA_CACHE_DIR", "GALERKIT_CACHE_DIR")}
+    env.update(XDG_CACHE_HOME=str(cache), PYTHONPATH=str(tmp_path / "site"))
+    code = ("import sys, mod; from galerkit.compilation import _cache_folder_for; "
+            "assert mod.twice(21) == 42; print(_cache_folder_for(sys.argv[1]))")
+    p = subprocess.run([sys.executable, "-c", code, str(pkg)], capture_output=True,
+                       text=True, cwd=pkg, env=env, timeout=300)
+    assert p.returncode == 0, p.stderr
+    assert p.stdout.strip() == str(cache / "numba")
+    cached = [f for _, _, files in os.walk(cache) for f in files]
+    assert any(f.startswith("mod.twice") and f.endswith(".nbi") for f in cached), cached
+    assert (pkg / "__pycache__").read_text() == "not a folder"
