@@ -21,7 +21,8 @@ its longest edges (Mitchell 1989); the labelling lives in
 ``Mesh.refinement_cells`` (the :class:`~galerkit.Mesh` may swap two vertices
 to orient a cell, which leaves ``v0`` and the refinement edge unchanged).
 
-Tetrahedra (Maubach 1995; Stevenson 2008) are not implemented.
+Tetrahedra are bisected by the tagged rule of Maubach (1995) and Stevenson
+(2008), with the same closure (:mod:`galerkit.bisection3d`).
 """
 
 from __future__ import annotations
@@ -60,7 +61,8 @@ def refine_marked(mesh: Mesh, marked) -> Mesh:
     Parameters
     ----------
     mesh : Mesh
-        A triangle mesh.
+        A triangle or tetrahedron mesh (tetrahedra: tagged bisection, see
+        :mod:`galerkit.bisection3d`).
     marked : array_like
         Cell ids (integers) or a boolean mask of shape (n_cells,).  Each marked
         cell is bisected at least once (its refinement edge is split); cells
@@ -72,15 +74,18 @@ def refine_marked(mesh: Mesh, marked) -> Mesh:
         The refined, conforming mesh.  Facet groups follow the child facets, cell regions the parent cell;
         ``parent`` (the coarse mesh), ``parent_cells`` (child -> parent cell),
         ``vertex_parents`` ((n_fine, 2): the coarse edge whose midpoint a new
-        vertex is; ``(v, v)`` for an old vertex, which keeps its number) and
-        ``refinement_cells`` (the labelling) are attached.
+        vertex is; ``(v, v)`` for an old vertex, which keeps its number; for
+        tetrahedra the edge may join vertices made in the same call, with
+        smaller numbers) and ``refinement_cells`` (the labelling; tetrahedra
+        also ``refinement_tags`` and ``labelling``, the initial rule) are attached.
 
     Raises
     ------
     InputError
         Marks that are not cell ids or a mask of the right shape.
     UnsupportedError
-        A tetrahedral mesh.
+        A tetrahedral mesh whose initial labelling is not admissible (the closure
+        does not end; see :mod:`galerkit.bisection3d`).
 
     Examples
     --------
@@ -91,13 +96,10 @@ def refine_marked(mesh: Mesh, marked) -> Mesh:
     """
     if not isinstance(mesh, Mesh):
         raise InputError(f"refine_marked: expected a galerkit Mesh, got {type(mesh).__name__}")
-    if mesh.dim != 2:
-        raise UnsupportedError(
-            "refine_marked: local refinement of tetrahedra (the conforming bisection of "
-            "Maubach 1995 / Stevenson 2008) is not implemented; refine 3D meshes with "
-            "refine_uniform")
     m = mesh.n_cells
     mask = _marked_mask(marked, m)
+    if mesh.dim == 3:
+        return _refine_marked_tetrahedra(mesh, mask)
     lab = newest_vertex_labels(mesh)
     n = mesh.n_vertices
     edges, cell_edges, _, _ = enumerate_entities(lab, _EDGES, n)
@@ -153,6 +155,38 @@ def refine_marked(mesh: Mesh, marked) -> Mesh:
     for a in (fine.parent_cells, fine.vertex_parents, fine.refinement_cells):
         a.flags.writeable = False
     _carry_facet_tags(mesh, fine, vparents, n)
+    _carry_cell_data(mesh, fine, parent_cells)
+    return fine
+
+
+def _refine_marked_tetrahedra(mesh, mask):
+    from .bisection3d import refine_tetrahedra
+    points, lab, tags, parent_cells, vparents, origin, rule = refine_tetrahedra(mesh, mask)
+    idt = mesh.cells.dtype if points.shape[0] < np.iinfo(mesh.cells.dtype).max else np.int64
+    fine = Mesh(points, lab.astype(idt), check_coincident=False)
+    fine.parent = mesh
+    fine.parent_cells = parent_cells
+    fine.vertex_parents = vparents
+    fine.refinement_cells = lab.astype(idt)
+    fine.refinement_tags = tags
+    fine.labelling = rule if rule != "carried" else getattr(mesh, "labelling", rule)
+    for a in (fine.parent_cells, fine.vertex_parents, fine.refinement_cells,
+              fine.refinement_tags):
+        a.flags.writeable = False
+    if mesh.facet_groups:
+        # the coarse facet of each fine boundary facet, through its (cell, local face)
+        fc = np.asarray(fine.boundary_facet_cells, dtype=np.int64)
+        missing = np.asarray(fine.cells, dtype=np.int64)[fc, fine.boundary_facet_local]
+        j = np.argmax(lab[fc] == missing[:, None], axis=1)
+        cid = origin[fc, j]
+        if (cid < 0).any():
+            raise RuntimeError("refine_marked: a fine boundary facet has no coarse boundary "
+                               "facet (internal error; please report with the mesh)")
+        inside = np.zeros(mesh.boundary_facets.shape[0], dtype=bool)
+        for name, ids in mesh.facet_groups.items():
+            inside[:] = False
+            inside[ids] = True
+            fine.set_facet_tag(name, np.flatnonzero(inside[cid]))
     _carry_cell_data(mesh, fine, parent_cells)
     return fine
 

@@ -95,7 +95,7 @@ def test_min_angles_of_known_triangles():
     assert t.min() == pytest.approx(45.0) and (t <= 90 + 1e-9).all()
 
 
-def test_bad_marks_and_tetrahedra_are_refused():
+def test_bad_marks_are_refused():
     mesh = gk.structured_triangles(2, 2)
     with pytest.raises(InputError, match="outside"):
         gk.refine_marked(mesh, [99])
@@ -103,8 +103,6 @@ def test_bad_marks_and_tetrahedra_are_refused():
         gk.refine_marked(mesh, np.ones(3, bool))
     with pytest.raises(InputError, match="cell ids"):
         gk.refine_marked(mesh, [0.5])
-    with pytest.raises(UnsupportedError, match="Maubach"):
-        gk.refine_marked(gk.structured_tetrahedra(1, 1, 1), [0])
     assert gk.refine_marked(mesh, []).n_cells == mesh.n_cells
 
 
