@@ -213,3 +213,40 @@ def test_dirichlet_data_not_affine_on_a_face_is_named_in_3d():
     with pytest.raises(UnsupportedError, match="not affine"):
         gk.estimate_error(gk.PoissonProblem(mesh, dirichlet={"boundary": lambda x: x[0] * x[1]})
                           .solve())
+
+
+def test_raviart_thomas_mass_and_misfit_equal_a_collapsed_gauss_rule():
+    # phi_i = (x - x_i) / (3 |T|) (unit outward flux through face i); int phi_i . A phi_j
+    # and ||A^(1/2) (sum F_i phi_i + q)||^2 against a 6^3-point collapsed Gauss-Legendre
+    # rule on the tetrahedron (Duffy map; Stroud 1971), exact for these quadratics
+    from galerkit.estimators3d import _rt_mass, _rt_misfit_3d
+    rng = np.random.default_rng(5)
+    X = np.array([[0.1, 0.0, 0.2], [1.3, 0.2, 0.1], [0.2, 0.9, 0.3], [0.4, 0.3, 1.1]])
+    B = rng.standard_normal((3, 3))
+    A = B @ B.T + np.eye(3)
+    vol = abs(np.linalg.det((X[1:] - X[0]).T)) / 6
+    t, w = np.polynomial.legendre.leggauss(6)
+    t, w = 0.5 * (t + 1), 0.5 * w
+    a, b, c = np.meshgrid(t, t, t, indexing="ij")
+    l1 = a.ravel()
+    l2 = (b * (1 - a)).ravel()
+    l3 = (c * (1 - a) * (1 - b)).ravel()
+    wq = (w[:, None, None] * w[None, :, None] * w[None, None, :]
+          * ((1 - a) ** 2 * (1 - b))).ravel()  # sums to 1/6
+    lam = np.column_stack([1 - l1 - l2 - l3, l1, l2, l3])
+    x = lam @ X  # (nq, 3)
+    phi = (x[None, :, :] - X[:, None, :]) / (3 * vol)  # (4, nq, 3)
+    M = 6 * vol * np.einsum("q,iqa,ab,jqb->ij", wq, phi, A, phi)
+    assert np.allclose(_rt_mass(X[None], np.array([vol]), A[None])[0], M, rtol=1e-12)
+    F = rng.standard_normal(4)
+    q = rng.standard_normal(3)
+    wv = np.einsum("i,iqa->qa", F, phi) + q
+    ref = 6 * vol * np.einsum("q,qa,ab,qb->", wq, wv, A, wv)
+    got = _rt_misfit_3d(X[None], np.array([vol]), F[None], q[None], A[None])[0]
+    assert got == pytest.approx(ref, rel=1e-12)
+    # unit outward flux: the flux of phi_0 through face 0 is 1, through the others 0
+    for i in range(4):
+        f = [k for k in range(4) if k != i]
+        nrm = np.cross(X[f[1]] - X[f[0]], X[f[2]] - X[f[0]]) / 2
+        nrm *= np.sign(nrm @ (X[f[0]] - X[i]))
+        assert (X[f].mean(axis=0) - X[0]) / (3 * vol) @ nrm == pytest.approx(float(i == 0))
