@@ -29,7 +29,7 @@ from .estimators import estimate_error
 from .problem import PoissonProblem
 from .regions import RegionCoefficient
 
-__all__ = ["adapt", "AdaptiveRun", "LevelTable", "doerfler_marking"]
+__all__ = ["adapt", "AdaptiveRun", "LevelTable", "doerfler_marking", "cell_levels"]
 
 
 def doerfler_marking(indicators, bulk=0.5):
@@ -63,11 +63,14 @@ class LevelTable:
                         dtype=float)
 
     def to_markdown(self) -> str:
-        lines = ["| " + " | ".join(self.COLUMNS) + " |",
-                 "|" + "|".join("---:" for _ in self.COLUMNS) + "|"]
+        """A markdown table; columns empty on every row (error and effectivity without
+        an exact solution) are left out."""
+        cols = [c for c in self.COLUMNS if any(r[c] is not None for r in self.rows)]
+        lines = ["| " + " | ".join(cols) + " |",
+                 "|" + "|".join("---:" for _ in cols) + "|"]
         for r in self.rows:
             cells = []
-            for c in self.COLUMNS:
+            for c in cols:
                 v = r[c]
                 if v is None:
                     cells.append("")
@@ -113,12 +116,15 @@ class LevelTable:
 @dataclass
 class AdaptiveRun:
     """Result of :func:`adapt`: ``solutions``, ``estimates`` and ``meshes`` per level,
-    the ``table`` (:class:`LevelTable`) and why it stopped (``stopped``)."""
+    the ``table`` (:class:`LevelTable`), why it stopped (``stopped``) and the
+    refinement level of every cell of the last mesh (``cell_levels``: how many
+    bisections lie between it and its cell of the initial mesh, int32)."""
 
     solutions: list
     estimates: list
     table: LevelTable
     stopped: str
+    cell_levels: np.ndarray = None
 
     @property
     def meshes(self):
@@ -130,7 +136,8 @@ class AdaptiveRun:
 
 
 def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, bulk=0.5,
-          max_levels=30, exact_gradient=None, method="auto", rtol=1e-10, keep="all"):
+          max_levels=30, exact_gradient=None, method="auto", rtol=1e-10, maxiter=None,
+          keep="all"):
     """Adaptive P1 solve driven by the guaranteed error bound.
 
     Parameters
@@ -149,7 +156,7 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
     max_levels : int
     exact_gradient : callable, optional
         Adds the exact error and the effectivity to every row.
-    method, rtol
+    method, rtol, maxiter
         Passed to :meth:`PoissonProblem.solve`.
     keep : "all" or "last"
         Keep every level's solution (default) or only the last one.
@@ -196,9 +203,10 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
     table = LevelTable()
     current = problem
     stopped = "max_levels"
+    levels = np.zeros(problem.mesh.n_cells, dtype=np.int32)
     for level in range(max_levels):
         t0 = time.perf_counter()
-        sol = current.solve(degree=1, method=method, rtol=rtol)
+        sol = current.solve(degree=1, method=method, rtol=rtol, maxiter=maxiter)
         t1 = time.perf_counter()
         est = estimate_error(sol, exact_gradient=exact_gradient)
         t2 = time.perf_counter()
@@ -231,8 +239,29 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
         if fine.n_vertices > max_dofs:
             stopped = "max_dofs"
             break
+        levels = cell_levels(sol.mesh, fine, levels)
         current = _carry_problem(current, fine)
-    return AdaptiveRun(solutions=solutions, estimates=estimates, table=table, stopped=stopped)
+    return AdaptiveRun(solutions=solutions, estimates=estimates, table=table, stopped=stopped,
+                       cell_levels=levels)
+
+
+def cell_levels(coarse, fine, coarse_levels):
+    """Refinement levels of the cells of ``fine`` (from :func:`refine_marked`): the level
+    of the parent plus the bisections in between, ``log2`` of the area ratio (a
+    bisection halves the area exactly: 1 for a cell bisected once, 2 for the
+    grandchildren of a cell whose other edges the closure split too).
+
+    Examples
+    --------
+    >>> from galerkit import structured_triangles, refine_marked
+    >>> m = structured_triangles(1, 1)
+    >>> f = refine_marked(m, [0])
+    >>> sorted(cell_levels(m, f, np.zeros(2, np.int32)).tolist())
+    [1, 1, 1, 1]
+    """
+    ratio = coarse.cell_volumes[fine.parent_cells] / fine.cell_volumes
+    return (np.asarray(coarse_levels)[fine.parent_cells]
+            + np.rint(np.log2(ratio)).astype(np.int32)).astype(np.int32)
 
 
 def _carry(value, coarse, fine, name):

@@ -1148,6 +1148,16 @@ def _():
     _problem("merge_duplicates = true\n")
 
 
+@case("problem file: [adapt] bulk above 1", C, "InputError")
+def _():
+    _problem("[adapt]\nbulk = 1.5\n")
+
+
+@case("problem file: [adapt] with a conductivity formula varying inside cells", C, "InputError")
+def _():
+    _problem('[material]\nconductivity = "1 + x"\n[adapt]\n')
+
+
 def _job_folder():
     """A problem file's folder ``job`` inside the temporary folder."""
     job = os.path.join(_get("folder", tempfile.mkdtemp), "job")

@@ -551,3 +551,84 @@ def test_every_flag_of_every_command_has_help_text():
     empty = [(" ".join(p), a.option_strings or a.dest) for p, a in found
              if not (a.help and a.help.strip()) and a.help is not argparse.SUPPRESS]
     assert empty == []
+
+
+# ----------------------------------------------------------------------------
+# error bound and [adapt]
+# ----------------------------------------------------------------------------
+LSHAPE_ADAPT = """
+title = "L-shape, adaptive"
+[mesh]
+generator = "l-shape"
+cells = 2
+[source]
+value = 1
+[[boundary]]
+tag = "boundary"
+kind = "dirichlet"
+u = 0
+[adapt]
+relative_tol = 0.08
+max_dofs = 20000
+"""
+
+
+def test_adaptive_solve_writes_levels_indicators_and_a_mesh_picture(tmp_path):
+    path = tmp_path / "ell.toml"
+    path.write_text(LSHAPE_ADAPT)
+    code, out, err = run("--json", "solve", path, "--output", tmp_path / "res")
+    assert code == 0, err
+    info = json.loads(out)
+    levels, bound = info["adapt"]["levels"], info["error_bound"]
+    assert info["adapt"]["stopped"] == "relative_tol" and len(levels) > 3
+    assert bound["available"] and bound["guaranteed"]
+    assert bound["bound"] <= 0.08 * bound["energy_norm"] == pytest.approx(
+        0.08 * bound["bound"] / bound["relative"])
+    assert levels[-1]["n_dofs"] == info["dofs"] and levels[-1]["bound"] == bound["bound"]
+    back = meshio.read(tmp_path / "res" / "ell.vtu")
+    eta = back.cell_data["error_indicator"][0]
+    level = back.cell_data["refinement_level"][0]
+    assert eta.shape == level.shape == (info["mesh"]["cells"],)
+    assert np.sqrt((eta ** 2).sum()) == pytest.approx(bound["bound"], rel=1e-12)
+    # independent of our refinement code: every bisection halves a cell exactly, and the
+    # initial L-shape mesh of 2 cells per unit length has cells of area 1/8 (3 / 24 cells)
+    p = back.points[:, :2][back.cells_dict["triangle"]]
+    e1, e2 = p[:, 1] - p[:, 0], p[:, 2] - p[:, 0]
+    area = 0.5 * np.abs(e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0])
+    assert np.allclose(area * 2.0 ** level, 1 / 8, rtol=1e-9)
+    assert level.min() >= 0 and level.max() > level.min()
+    assert is_png(tmp_path / "res" / "ell-mesh.png")
+    assert [Path(p).name for p in info["outputs"]] == ["ell.vtu", "ell-mesh.png"]
+    code, text, err = run("solve", path, "--output", tmp_path / "res")
+    assert code == 0, err
+    assert "| level | n_cells | n_dofs | bound |" in text and "stopped: the bound reached" in text
+    assert "error bound " in text and "(guaranteed" in text
+
+
+def test_solve_prints_the_bound_above_the_exact_error_and_says_why_not_for_p2(tmp_path, square):
+    code, out, err = run("--json", "solve", square, "--degree", 1, "--output", tmp_path)
+    assert code == 0, err
+    info = json.loads(out)
+    b = info["error_bound"]
+    # Prager & Synge (1947): an equilibrated flux bounds the energy error from above
+    assert b["available"] and b["bound"] >= info["errors"]["energy"]
+    assert 1.0 <= b["effectivity"] < 1.5
+    assert "error_indicator" in meshio.read(tmp_path / "square.vtu").cell_data
+    code, out, err = run("solve", square, "--output", tmp_path)  # the file's P2
+    assert code == 0, err
+    line = [x for x in out.splitlines() if x.startswith("  error bound")]
+    assert line == ["  error bound not available for P2 on triangles (the bound is "
+                    "implemented for P1 only, this solution is P2)"]
+    assert "error_indicator" not in meshio.read(tmp_path / "square.vtu").cell_data
+
+
+def test_adapt_with_a_higher_degree_flag_or_data_the_bound_cannot_take_exits_2(tmp_path, capsys):
+    path = tmp_path / "ell.toml"
+    path.write_text(LSHAPE_ADAPT)
+    assert main(["solve", str(path), "--degree", "2", "--output", str(tmp_path)]) == 2
+    assert "has an [adapt] section, and adaptive refinement runs on P1" in capsys.readouterr().err
+    path.write_text(LSHAPE_ADAPT.replace("u = 0", "u = \"x*x\""))
+    assert main(["solve", str(path), "--output", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert "[adapt]: estimate_error: dirichlet['boundary'] is not affine" in err
+    assert "or remove the [adapt] section" in err

@@ -324,7 +324,8 @@ def sympy_of(text, constants=None):
     return sp.sympify(str(text).replace("^", "**"), locals=names), (x, y, z)
 
 
-@pytest.mark.parametrize("name", ["wall-corner-2d.toml", "block-3d.toml", "pipe-wall.toml"])
+@pytest.mark.parametrize("name", ["wall-corner-2d.toml", "block-3d.toml", "pipe-wall.toml",
+                                  "lshape-adaptive.toml"])
 def test_every_example_loads(name):
     spec = load_problem(EXAMPLES / name)
     assert spec.boundary and spec.mesh.n_cells > 0
@@ -347,6 +348,30 @@ def test_block_example_source_is_minus_div_kappa_grad_of_its_exact_solution():
     assert sp.simplify(sympy_of(by_tag["zmax"]["inflow"])[0]
                        - (k * sp.diff(u, z)).subs(z, 1)) == 0  # outward normal +z at z = 1
     assert sp.simplify(sympy_of(by_tag["zmin"]["u"])[0] - u.subs(z, 0)) == 0
+
+
+def test_lshape_example_is_the_corner_singularity_and_its_flux():
+    # source: u = r^(2/3) sin(2 theta/3), theta in [0, 3 pi/2] (Strang & Fix, An Analysis
+    # of the Finite Element Method, 1973), written here in closed form with NumPy
+    spec = load_problem(EXAMPLES / "lshape-adaptive.toml")
+    problem, opts = spec.build()
+    rng = np.random.default_rng(1)
+    x = rng.uniform(-1, 1, (2, 400))
+    x = x[:, ~((x[0] > 0) & (x[1] < 0))]  # the L-shape leaves out the quadrant x > 0, y < 0
+    r, t = np.hypot(x[0], x[1]), np.mod(np.arctan2(x[1], x[0]), 2 * np.pi)
+    assert np.allclose(opts.exact(x), r ** (2 / 3) * np.sin(2 * t / 3), rtol=1e-12)
+    grad = 2 / 3 * r ** (-1 / 3) * np.array([-np.sin(t / 3), np.cos(t / 3)])
+    assert np.allclose(opts.exact_gradient(x), grad, rtol=1e-12)
+    s = np.linspace(0.01, 0.99, 7)
+    sides = {"xmin": (np.array([-np.ones(7), 2 * s - 1]), (-1, 0)),
+             "xmax": (np.array([np.ones(7), s]), (1, 0)),
+             "ymin": (np.array([-s, -np.ones(7)]), (0, -1)),
+             "ymax": (np.array([2 * s - 1, np.ones(7)]), (0, 1))}
+    for tag, (pts, n) in sides.items():  # inflow = grad u . n, n the outward normal
+        r, t = np.hypot(pts[0], pts[1]), np.mod(np.arctan2(pts[1], pts[0]), 2 * np.pi)
+        g = 2 / 3 * r ** (-1 / 3) * np.array([-np.sin(t / 3), np.cos(t / 3)])
+        assert np.allclose(problem.neumann[tag](pts), n[0] * g[0] + n[1] * g[1], rtol=1e-12)
+    assert problem.dirichlet == {"reentrant": 0.0} and opts.adapt["relative_tol"] == 0.02
 
 
 def test_block_example_converges_at_the_a_priori_l2_rate():
@@ -505,3 +530,66 @@ def test_stay_in_folder_names_a_loop_of_links(job):
     with pytest.raises(InputError, match=r"mesh\.file: the mesh file '.*loop/x\.vtu' cannot be "
                        r"resolved \(a loop of symbolic links\?\)"):
         load_problem(write(job, '[mesh]\nfile = "loop/x.vtu"\n'), stay_in_folder=True)
+
+
+# ----------------------------------------------------------------------------
+# [adapt]
+# ----------------------------------------------------------------------------
+def test_adapt_section_becomes_the_keyword_arguments_of_adapt(tmp_path):
+    spec = load_problem(write(tmp_path, BASE + """
+[adapt]
+relative_tol = 0.01
+tol = 1e-3
+max_dofs = 5000
+max_levels = 12
+bulk = 0.3
+"""))
+    assert spec.build()[1].adapt == {"relative_tol": 0.01, "tol": 1e-3, "max_dofs": 5000,
+                                     "max_levels": 12, "bulk": 0.3}
+    spec = load_problem(write(tmp_path, BASE + "[adapt]\n"))
+    assert spec.options.adapt == {"max_dofs": 200_000, "max_levels": 30, "bulk": 0.5}
+    assert load_problem(write(tmp_path, BASE)).options.adapt is None
+
+
+@pytest.mark.parametrize("text,expected", [
+    ("[adapt]\nrel_tol = 0.1\n", "adapt.rel_tol: unknown key 'rel_tol'; did you mean "
+     "'relative_tol'? valid keys here: tol, relative_tol, max_dofs, max_levels, bulk"),
+    ("[adapt]\ntol = \"small\"\n", "adapt.tol: must be a number, got a string ('small')"),
+    ("[adapt]\ntol = 0\n", "adapt.tol: must be positive, got 0.0"),
+    ("[adapt]\nrelative_tol = 2\n", "adapt.relative_tol: must be below 1, got 2.0"),
+    ("[adapt]\nmax_dofs = 1.5e4\n", "adapt.max_dofs: must be an integer, got a number"),
+    ("[adapt]\nmax_levels = 0\n", "adapt.max_levels: must be 1 to 1000, got 0"),
+    ("[adapt]\nbulk = 1.5\n", "adapt.bulk: must be at most 1, got 1.5"),
+    ("[adapt]\nbulk = true\n", "adapt.bulk: must be a number, got true/false"),
+    ("adapt = 1\n", "adapt: must be a table"),
+    ("[discretization]\ndegree = 2\n[adapt]\n", "adapt: adaptive refinement runs on P1"),
+    ("[material]\nconductivity = \"1 + x\"\n[adapt]\n",
+     "material.conductivity: the formula '1 + x' varies inside cells"),
+])
+def test_adapt_mistakes_are_named_with_file_line_key_and_what_to_do(tmp_path, text, expected):
+    if text.startswith("adapt ="):
+        msg = error_of(tmp_path, text + BASE)
+    else:
+        msg = error_of(tmp_path, BASE + text)
+    assert "p.toml" in msg and expected in msg, msg
+    if "[adapt]" in text and "unknown" not in expected:
+        assert ", line " in msg
+
+
+def test_adapt_on_tetrahedra_is_refused_naming_the_section(tmp_path):
+    msg = error_of(tmp_path, "[mesh]\ngenerator = \"box\"\ncells = 2\n[adapt]\n")
+    assert "adapt: adaptive refinement is implemented for triangles only" in msg
+    assert "remove the [adapt] section" in msg
+
+
+def test_adapt_accepts_conductivity_constant_per_region(tmp_path):
+    spec = load_problem(write(tmp_path, """
+[mesh]
+generator = "square"
+cells = 4
+regions = { core = "x < 0.5" }
+[material]
+conductivity = { core = 10, default = "2*3" }
+[adapt]
+"""))
+    assert spec.options.adapt is not None

@@ -517,9 +517,10 @@ def _solve(args) -> int:
                          "(under mpiexec) or remove it")
     from galerkit.errors import InputError
     from ..files import write_solution
-    from ..files.plots import plot_field, plot_slices
+    from ..files.plots import plot_field, plot_mesh, plot_slices
     from .problemfile import load_problem
-    from .quantities import quantity_lines, solution_quantities, write_probes_csv
+    from .quantities import (bound_line, error_bound, quantity_lines, solution_quantities,
+                             write_probes_csv)
 
     bar = _progress(args, 4, "solve")
 
@@ -530,26 +531,52 @@ def _solve(args) -> int:
 
     t0 = time.perf_counter()
     compile_before = _compile_seconds()
+    run = None
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             spec = load_problem(args.problem, stay_in_folder=args.stay_in_folder)
         problem, opts = spec.build()
         opts = _apply_overrides(args, opts)
+        if opts.adapt is not None and opts.degree != 1:
+            raise InputError(f"--degree {opts.degree}: the problem file {str(args.problem)!r} "
+                             "has an [adapt] section, and adaptive refinement runs on P1; "
+                             "drop --degree or the [adapt] section")
         notes = [str(w.message) for w in caught] + tag_overlaps(spec.mesh)
         load_seconds = time.perf_counter() - t0
-        step("assemble and solve")
+        step("assemble and solve" if opts.adapt is None else "adaptive levels")
+        loop_compile = _compile_seconds()
+        t1 = time.perf_counter()
         try:
-            sol = problem.solve(degree=opts.degree, method=opts.method, rtol=opts.rtol,
-                                maxiter=opts.maxiter)
+            if opts.adapt is None:
+                sol = problem.solve(degree=opts.degree, method=opts.method, rtol=opts.rtol,
+                                    maxiter=opts.maxiter)
+            else:
+                run = _adapt(problem, opts)
+                sol = run.solution
         except InputError as exc:  # e.g. a formula that is not finite somewhere
             raise InputError(f"problem file {str(args.problem)!r}: {exc}") from None
+        loop_seconds = time.perf_counter() - t1
+        loop_compile = _compile_seconds() - loop_compile
         step("errors")
         t1 = time.perf_counter()
         errors = _errors(sol, opts)
         error_seconds = time.perf_counter() - t1
-        step("write")
         rep = sol.report
+        t1 = time.perf_counter()
+        energy = None if errors is None else errors.get("energy")
+        if run is not None:
+            est, bound = error_bound(sol, run.estimates[-1], energy)
+        elif rep.converged:
+            try:
+                est, bound = error_bound(sol, None, energy)
+            except InputError as exc:
+                raise InputError(f"problem file {str(args.problem)!r}: {exc}") from None
+        else:
+            est, bound = None, {"available": False,
+                                "reason": "not computed: the solver did not converge"}
+        estimate_seconds = time.perf_counter() - t1
+        step("write")
         outputs = []
         quantities = None
         t1 = time.perf_counter()
@@ -558,8 +585,20 @@ def _solve(args) -> int:
         else:
             if opts.vtu or opts.plot:
                 folder = _folder(opts.folder)
+            cell_arrays = {}
+            if est is not None:
+                cell_arrays["error_indicator"] = lambda pc: est.indicators[pc]
+            if run is not None:
+                cell_arrays["refinement_level"] = lambda pc: run.cell_levels[pc]
             if opts.vtu:
-                outputs.append(write_solution(folder / f"{opts.stem}.vtu", sol, name=opts.name))
+                outputs.append(write_solution(folder / f"{opts.stem}.vtu", sol, name=opts.name,
+                                              extra_cell_data=cell_arrays))
+            if run is not None and spec.mesh.dim == 2 and (opts.vtu or opts.plot):
+                outputs.append(plot_mesh(
+                    folder / f"{opts.stem}-mesh.png", sol.mesh, run.cell_levels,
+                    title=f"{opts.title or opts.stem}: final mesh, {sol.mesh.n_cells} "
+                    f"triangles after {len(run.table.rows)} levels",
+                    length_unit=opts.length_unit))
             if opts.plot and spec.mesh.dim == 2:
                 label = opts.name + (f" [{opts.units}]" if opts.units else "")
                 outputs.append(plot_field(folder / f"{opts.stem}.png", sol,
@@ -580,13 +619,20 @@ def _solve(args) -> int:
     finally:
         if bar is not None:
             bar.close()
-    mesh = spec.mesh
-    seconds = _with_compile({"load": load_seconds, **sol.seconds, "errors": error_seconds,
-                             "write": write_seconds}, compile_before)
+    mesh = sol.mesh
+    if run is None:
+        phases = {"load": load_seconds, **sol.seconds, "errors": error_seconds,
+                  "estimate": estimate_seconds, "write": write_seconds}
+    else:
+        phases = {"load": load_seconds, "levels": max(0.0, loop_seconds - loop_compile),
+                  "errors": error_seconds, "write": write_seconds, "compile": loop_compile}
+    seconds = _with_compile(phases, compile_before)
     seconds["total"] = time.perf_counter() - t0
-    notes += list(sol.notes)
+    notes += list(sol.notes) + (bound.get("notes") or [])
     if rep.message:
         notes.append(rep.message)
+    if run is not None:
+        notes += _adapt_notes(run, opts.adapt)
     chosen = rep.method if opts.method != "auto" else f"{rep.method} (chosen by 'auto')"
     info = {
         "problem": str(args.problem), "title": opts.title,
@@ -600,9 +646,13 @@ def _solve(args) -> int:
         "seconds": seconds, "peak_rss_mb": _peak_rss_mb(),
         "field": {"name": opts.name, "min": float(sol.u.min()), "max": float(sol.u.max()),
                   "units": opts.units},
-        "errors": errors, "outputs": [str(p) for p in outputs], "notes": notes,
+        "errors": errors, "error_bound": bound,
+        "outputs": [str(p) for p in outputs], "notes": notes,
         "regions": {n: i for n, i in mesh.region_names.items()},
     }
+    if run is not None:
+        info["adapt"] = {"settings": opts.adapt, "stopped": run.stopped,
+                         "levels": run.table.rows}
     if quantities is not None:
         info.update(quantities)
     code = 0 if rep.converged else 1
@@ -611,8 +661,18 @@ def _solve(args) -> int:
         return code
     say = _Report(args)
     say.head(f"galerkit solve: {opts.title or args.problem}")
-    say.result(f"  mesh        {spec.mesh_description}: {mesh.n_cells} {_plural(mesh.cell_type)}, "
-               f"{mesh.n_vertices} vertices")
+    if run is not None:
+        say.result(f"  initial     {spec.mesh_description}: {spec.mesh.n_cells} "
+                   f"{_plural(mesh.cell_type)}, {spec.mesh.n_vertices} vertices")
+        say.result(f"  adaptive    {len(run.table.rows)} levels (solve, bound, Doerfler "
+                   f"marking {opts.adapt['bulk']:g}, bisection); stopped: "
+                   f"{_STOPPED[run.stopped](opts.adapt)}")
+        say.result(run.table.to_markdown())
+        say.result(f"  final mesh  {mesh.n_cells} {_plural(mesh.cell_type)}, "
+                   f"{mesh.n_vertices} vertices")
+    else:
+        say.result(f"  mesh        {spec.mesh_description}: {mesh.n_cells} "
+                   f"{_plural(mesh.cell_type)}, {mesh.n_vertices} vertices")
     say.result(f"  unknowns    {sol.disc.n_dofs} (P{sol.disc.degree})")
     status = "converged" if rep.converged else "NOT CONVERGED"
     say.result(f"  solver      {chosen}: {_iterations(rep.iterations)}, relative residual "
@@ -622,9 +682,42 @@ def _solve(args) -> int:
     if quantities is not None:
         for line in quantity_lines(quantities, opts):
             say.result(line)
+    say.result(bound_line(bound))
     _report_tail(say, opts, info["field"]["min"], info["field"]["max"], errors,
                  [str(p) for p in outputs], notes)
     return code
+
+
+#: why an adaptive run stopped, for the report
+_STOPPED = {
+    "tol": lambda a: f"the bound reached tol = {a['tol']:g}",
+    "relative_tol": lambda a: f"the bound reached relative_tol = {a['relative_tol']:g} of the "
+                              "energy norm",
+    "max_dofs": lambda a: f"the next mesh would pass max_dofs = {a['max_dofs']}",
+    "max_levels": lambda a: f"max_levels = {a['max_levels']} levels done",
+}
+
+
+def _adapt(problem, opts):
+    """The adaptive loop of ``[adapt]`` (only the last level's solution is kept)."""
+    import galerkit as gk
+    from galerkit.errors import InputError, UnsupportedError
+
+    try:
+        return gk.adapt(problem, degree=1, method=opts.method, rtol=opts.rtol,
+                        maxiter=opts.maxiter, exact_gradient=opts.exact_gradient, keep="last", **opts.adapt)
+    except UnsupportedError as exc:
+        raise InputError(f"[adapt]: {exc}; or remove the [adapt] section") from None
+
+
+def _adapt_notes(run, settings):
+    """A note when a tolerance was asked for and a budget stopped the run first."""
+    asked = [k for k in ("tol", "relative_tol") if k in settings]
+    if not asked or run.stopped in asked:
+        return []
+    return [f"the tolerance ({', '.join(f'{k} = {settings[k]:g}' for k in asked)}) was not "
+            f"reached: {_STOPPED[run.stopped](settings)}; raise adapt.max_dofs or "
+            "adapt.max_levels to go further"]
 
 
 def _solve_distributed(args) -> int:

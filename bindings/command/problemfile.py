@@ -26,6 +26,8 @@ The schema is documented in docs/problem-files.md; in short::
                   fluxes = ["group" | "a/b", ...], gradient_flux, probes = [[x, y], ...],
                   slices = ["x=0.5", ...] (3D), isolines = N (2D)
     [exact]       solution = "formula", gradient = ["d/dx", "d/dy", ...]
+    [adapt]       tol, relative_tol, max_dofs, max_levels, bulk (adaptive P1 on
+                  triangles, driven by the guaranteed error bound)
 
 :func:`load_problem` reads and checks the whole file -- including reading the
 mesh, compiling every formula and checking every tag -- so that every mistake
@@ -101,6 +103,7 @@ SECTIONS = {
     "output": ("folder", "name", "vtu", "plot", "mesh_overlay", "units", "length_unit",
                "fluxes", "gradient_flux", "probes", "slices", "isolines"),
     "exact": ("solution", "gradient"),
+    "adapt": ("tol", "relative_tol", "max_dofs", "max_levels", "bulk"),
 }
 
 #: ``kind -> (value keys, meaning)`` of the boundary conditions.
@@ -176,6 +179,10 @@ class RunOptions:
         Planes of the 3D pictures (default: the three mid-planes).
     isolines : int
         Contour lines on the 2D picture (0: none).
+    adapt : dict or None
+        The ``[adapt]`` section as keyword arguments of :func:`galerkit.adapt`
+        (``tol``, ``relative_tol``, ``max_dofs``, ``max_levels``, ``bulk``);
+        None: one solve on the given mesh.
     """
 
     degree: int = 1
@@ -198,6 +205,7 @@ class RunOptions:
     probes: Any = None
     slices: Any = None
     isolines: int = 0
+    adapt: Any = None
 
 
 @dataclass
@@ -597,6 +605,8 @@ def parse_problem(data: dict, *, source: str = "<problem>", base=".", text: str 
         _output_section(r, data["output"], opts, base, mesh)
     if "exact" in data:
         _exact_section(r, data["exact"], opts, dim, constants)
+    if "adapt" in data:
+        _adapt_section(r, data["adapt"], opts, mesh, conductivity)
     return ProblemSpec(source=source, data=data, mesh=mesh, mesh_description=description,
                        conductivity=conductivity, source_term=source_term, boundary=boundary,
                        options=opts, constants=constants)
@@ -998,3 +1008,45 @@ class _Gradient:
 
     def __repr__(self):
         return f"gradient({', '.join(c.text for c in self.comps)})"
+
+
+#: ``[adapt]`` defaults (those of :func:`galerkit.adapt`)
+ADAPT_DEFAULTS = {"max_dofs": 200_000, "max_levels": 30, "bulk": 0.5}
+
+
+def _adapt_section(r: _Reader, t, opts: RunOptions, mesh, conductivity):
+    """``[adapt]``: tolerances, budgets and marking fraction of the adaptive loop."""
+    t = r.table(t, ("adapt",), SECTIONS["adapt"])
+    out = dict(ADAPT_DEFAULTS)
+    for key in ("tol", "relative_tol"):
+        if key in t:
+            out[key] = r.number(t[key], ("adapt", key), positive=True)
+    if out.get("relative_tol", 0.0) >= 1:
+        r.fail(("adapt", "relative_tol"), f"must be below 1, got {out['relative_tol']}",
+               "a fraction of the energy norm, for example relative_tol = 0.01 (1 %)")
+    if "max_dofs" in t:
+        out["max_dofs"] = r.integer(t["max_dofs"], ("adapt", "max_dofs"), 1)
+    if "max_levels" in t:
+        out["max_levels"] = r.integer(t["max_levels"], ("adapt", "max_levels"), 1, 1000)
+    if "bulk" in t:
+        out["bulk"] = r.number(t["bulk"], ("adapt", "bulk"), positive=True)
+        if out["bulk"] > 1:
+            r.fail(("adapt", "bulk"), f"must be at most 1, got {out['bulk']}",
+                   "the fraction of the squared error bound the marked cells carry, for "
+                   "example bulk = 0.5")
+    if mesh.dim != 2:
+        r.fail(("adapt",), "adaptive refinement is implemented for triangles only (2D "
+               "meshes); this mesh has tetrahedra", "remove the [adapt] section, or use a "
+               "2D mesh")
+    if opts.degree != 1:
+        r.fail(("adapt",), f"adaptive refinement runs on P1 (the error bound is P1 only); "
+               f"discretization.degree is {opts.degree}", "remove discretization.degree or "
+               "set it to 1")
+    values = conductivity.values() if isinstance(conductivity, dict) else (conductivity,)
+    for v in values:
+        if isinstance(v, Expression) and not v.is_constant:
+            r.fail(("material", "conductivity"), f"the formula {v.text!r} varies inside "
+                   "cells, and the error bound of [adapt] needs a conductivity constant on "
+                   "each cell", "give a number or a tensor (per region, if it differs "
+                   "between regions), or remove the [adapt] section")
+    opts.adapt = out

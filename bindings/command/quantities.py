@@ -14,7 +14,9 @@ file (:class:`~galerkit.bindings.command.problemfile.RunOptions`):
 * ``probes``: the values at the ``probes`` points.
 
 :func:`quantity_lines` formats them for the report, :func:`write_probes_csv`
-writes the probes as CSV (atomically).
+writes the probes as CSV (atomically).  :func:`error_bound` gives the
+guaranteed energy-error bound of :func:`galerkit.estimate_error` (or why it is
+not available) and :func:`bound_line` its report line.
 """
 
 from __future__ import annotations
@@ -23,7 +25,53 @@ import io
 
 import numpy as np
 
-__all__ = ["solution_quantities", "quantity_lines", "write_probes_csv"]
+__all__ = ["solution_quantities", "quantity_lines", "write_probes_csv", "error_bound",
+           "bound_line"]
+
+
+def error_bound(sol, estimate=None, energy_error=None):
+    """``(estimate or None, info)``: the error bound of ``sol`` and a JSON-ready summary.
+
+    ``info`` holds ``available``; then ``bound``, ``relative`` (to the energy norm
+    of the solution), ``energy_norm``, ``residual_estimate``, ``guaranteed``,
+    ``terms``, ``notes`` and, with ``energy_error`` (the error against an exact
+    solution), ``effectivity``; or ``reason``: one short phrase saying why the
+    estimator does not cover this case (an unsupported case is not a failure).
+    """
+    import re
+
+    from galerkit.errors import UnsupportedError
+    from galerkit.estimators import estimate_error
+
+    if estimate is None:
+        try:
+            estimate = estimate_error(sol)
+        except UnsupportedError as exc:
+            cause = re.split(r";|: |\. ", str(exc).removeprefix("estimate_error: "), maxsplit=1)[0]
+            cells = {"triangle": "triangles", "tetrahedron": "tetrahedra"}.get(
+                sol.mesh.cell_type, sol.mesh.cell_type)
+            return None, {"available": False,
+                          "reason": f"not available for P{sol.disc.degree} on {cells} ({cause})"}
+    e = estimate
+    info = {"available": True, "bound": e.bound,
+            "relative": e.bound / e.energy_norm if e.energy_norm > 0 else None,
+            "energy_norm": e.energy_norm, "residual_estimate": e.residual_estimate,
+            "guaranteed": e.guaranteed, "terms": dict(e.terms), "notes": list(e.notes),
+            "seconds": e.seconds}
+    if energy_error is not None:
+        info["effectivity"] = e.bound / energy_error if energy_error > 0 else None
+    return e, info
+
+
+def bound_line(info) -> str:
+    """The report line of :func:`error_bound`'s summary."""
+    if not info["available"]:
+        return f"  error bound {info['reason']}"
+    rel = "" if info["relative"] is None else f", {100 * info['relative']:.3g} % of the energy norm"
+    kind = "guaranteed" if info["guaranteed"] else "NOT guaranteed, see the notes"
+    eff = f", effectivity {info['effectivity']:.2f}" if info.get("effectivity") else ""
+    return (f"  error bound {info['bound']:.3e} in the energy norm ({kind}{rel}{eff}; "
+            f"residual estimate {info['residual_estimate']:.3e})")
 
 
 def _is_interface(mesh, name):

@@ -17,7 +17,7 @@ from galerkit.errors import InputError  # noqa: E402
 
 from .readwrite import sample_solution, write_atomically  # noqa: E402
 
-__all__ = ["plot_field", "plot_slices", "plot_convergence", "plot_residuals", "plot_times",
+__all__ = ["plot_field", "plot_mesh", "plot_slices", "plot_convergence", "plot_residuals", "plot_times",
            "PNG_SIGNATURE", "default_slices", "slice_path"]
 
 #: The first eight bytes of every PNG file (PNG specification, section 5.2).
@@ -89,6 +89,86 @@ def plot_field(path, solution, *, title="", units="", show_mesh=False, length_un
     ax.set_xlabel(f"x{' [' + length_unit + ']' if length_unit else ''}")
     ax.set_ylabel(f"y{' [' + length_unit + ']' if length_unit else ''}")
     ax.set_title(title)
+    return _save(fig, path)
+
+
+#: above this many cells :func:`plot_mesh` leaves the edges out (they would
+#: cover the picture) and the colours alone show the grading
+MESH_EDGES_UP_TO = 30_000
+
+
+def plot_mesh(path, mesh, levels=None, *, title="", length_unit=""):
+    """Picture of a 2D mesh: its edges, each cell coloured by its refinement level,
+    and (with levels) a zoom on the finest cells beside it.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Target ``.png``.
+    mesh : Mesh
+        A triangle mesh.
+    levels : array_like (n_cells,), optional
+        Refinement level of every cell (:attr:`galerkit.AdaptiveRun.cell_levels`);
+        without it the cells are white and there is no zoom.
+    title, length_unit : str
+
+    Returns
+    -------
+    pathlib.Path
+
+    Raises
+    ------
+    InputError
+        A 3D mesh, or levels of the wrong shape.
+    """
+    if mesh.dim != 2:
+        raise InputError("plot_mesh draws triangle meshes only; open the VTU file of a 3D "
+                         "mesh in a viewer such as ParaView")
+    x, y = mesh.points[:, 0], mesh.points[:, 1]
+    if levels is not None:
+        levels = np.asarray(levels)
+        if levels.shape != (mesh.n_cells,):
+            raise InputError(f"plot_mesh: levels of shape {levels.shape}; expected one per "
+                             f"cell ({mesh.n_cells},)")
+    zoom = levels is not None and int(np.ptp(levels)) > 0
+    fig, axes = plt.subplots(1, 2 if zoom else 1, figsize=(12 if zoom else 7, 5.5),
+                             squeeze=False)
+    axes = axes[0]
+    tpc = None
+    for k, ax in enumerate(axes):
+        if levels is not None:
+            lo, hi = int(levels.min()), int(levels.max())
+            cmap = plt.get_cmap("viridis", hi - lo + 1)
+            tpc = ax.tripcolor(x, y, mesh.cells, facecolors=levels.astype(float), cmap=cmap,
+                               vmin=lo - 0.5, vmax=hi + 0.5, edgecolors="none")
+        shown = mesh.n_cells
+        if k == 1:  # a box around the cells of the six finest levels
+            fine = mesh.cells[levels >= levels.max() - 5].ravel()
+            x0, x1, y0, y1 = x[fine].min(), x[fine].max(), y[fine].min(), y[fine].max()
+            half = 0.6 * max(x1 - x0, y1 - y0, 1e-300)
+            cx, cy = 0.5 * (x0 + x1), 0.5 * (y0 + y1)
+            ax.set_xlim(cx - half, cx + half)
+            ax.set_ylim(cy - half, cy + half)
+            cen = mesh.points[mesh.cells].mean(axis=1)
+            shown = int(((np.abs(cen[:, 0] - cx) < half) & (np.abs(cen[:, 1] - cy) < half)).sum())
+            ax.set_title(f"zoom: {2 * half:.3g} wide around the finest cells")
+        if shown <= MESH_EDGES_UP_TO:
+            lw = 0.6 if shown < 1000 else (0.3 if shown < 5000 else 0.12)
+            ax.triplot(x, y, mesh.cells, lw=lw, color="k", alpha=0.6)
+        ax.set_aspect("equal")
+        ax.xaxis.set_major_locator(MaxNLocator(nbins=4))
+        ax.yaxis.set_major_locator(MaxNLocator(nbins=5))
+        ax.set_xlabel(f"x{' [' + length_unit + ']' if length_unit else ''}")
+        ax.set_ylabel(f"y{' [' + length_unit + ']' if length_unit else ''}")
+    heading = title or f"{mesh.n_cells} triangles, {mesh.n_vertices} vertices"
+    if zoom:
+        axes[0].set_title("whole mesh")
+        fig.suptitle(heading)
+    else:
+        axes[0].set_title(heading)
+    if tpc is not None:
+        cb = fig.colorbar(tpc, ax=list(axes), ticks=MaxNLocator(integer=True, nbins=8))
+        cb.set_label("refinement level (bisections)")
     return _save(fig, path)
 
 
