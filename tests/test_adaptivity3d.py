@@ -95,7 +95,7 @@ def test_adaptive_bound_on_a_reentrant_edge_stays_above_the_error_and_angles_sta
 @pytest.mark.slow
 def test_adaptive_reentrant_edge_beats_the_uniform_rate():
     # measured: adaptive bound N^(-0.337) over the last 4 levels (6k-19k dofs), error
-    # N^(-0.332), effectivity 1.35-1.57; uniform (63 to 2025 dofs) N^(-0.249)
+    # N^(-0.332), effectivity 1.35-1.56; uniform (63 to 2025 dofs) error N^(-0.242)
     run = gk.adapt(_prism(1), max_dofs=20000, max_levels=60)
     assert run.stopped == "max_dofs"
     n, b = run.table.column("n_dofs"), run.table.column("bound")
