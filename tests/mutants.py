@@ -63,6 +63,12 @@ EBIS = "tests/test_bisection.py::test_refinement_is_conforming_nested_and_keeps_
 EBIS3 = ("tests/test_bisection3d.py::test_local_bisection_is_conforming_nested_and_keeps_tags_"
          "and_regions")
 EANG3 = "tests/test_bisection3d.py::test_angles_stay_bounded_under_repeated_refinement"
+_E3 = "tests/test_estimators3d.py::test_"
+E3OSC = f"{_E3}oscillation_terms_equal_their_closed_forms_in_3d"
+E3PATCH = f"{_E3}patch_test_linear_solution_gives_a_zero_bound_in_3d"
+E3RES = f"{_E3}residual_estimator_equals_its_closed_form_on_one_cube_in_3d"
+E3LOOSE = f"{_E3}bound_survives_a_loose_iterative_solve_in_3d"
+E3RT = f"{_E3}raviart_thomas_mass_and_misfit_equal_a_collapsed_gauss_rule"
 ESMOOTH = (f"{_E}bound_is_above_the_error_of_a_smooth_solution_on_every_level_with_"
            "effectivity_below_1_5")
 FLUX_WALL = "tests/test_fluxes.py::test_composite_wall_flux_equals_the_series_resistance_formula[2]"
@@ -202,6 +208,20 @@ MUTANTS = [
      "todo = (mid_keys[p] == ek).any(axis=1)", "todo = (mid_keys[p] == ek).all(axis=1)", EBIS3),
     ("tet bisection: type A cells bisected as tagged simplices", "bisection3d.py",
      "c2[ta] = np.stack([x1, z, x3, x2], axis=1)[ta]", "pass", EANG3),
+    ("3D error bound: trace constant without its 2/(3 pi) part", "estimators3d.py",
+     "(1 / math.pi**2 + 2 / (3 * math.pi))", "(1 / math.pi**2)", E3OSC),
+    ("3D error bound: patch target with half, not a third, of each face flux",
+     "estimators3d.py", "acc += mjk * qf[c, ik] / 3.0", "acc += mjk * qf[c, ik] / 2.0", E3PATCH),
+    ("3D error bound: routed residual flux dropped", "estimators3d.py",
+     "F = P.sum(axis=1) + T", "F = P.sum(axis=1)", E3LOOSE),
+    ("3D residual estimator: full jump on each side", "estimators3d.py",
+     "jump**2 / (2 * lamF)", "jump**2 / lamF", E3RES),
+    ("3D error bound: flux misfit integral with 1/24 for 1/20", "estimators3d.py",
+     "return vol / 20 * (", "return vol / 24 * (", E3RT),
+    ("3D error bound: Raviart-Thomas mass matrix with 15 for 16", "estimators3d.py",
+     "t1 = 16 * np.einsum", "t1 = 15 * np.einsum", E3RT),
+    ("3D error bound: a divergence row with its signs flipped", "estimators3d.py",
+     "A[rr, uj] += ps[p, j]", "A[rr, uj] -= ps[p, j]", E3PATCH),
     ("multigrid Galerkin product scaled (coarse operator 1.5 P^T A P)", "multigrid.py",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n        c_val = 1.5 * c_val\n"),
@@ -255,6 +275,7 @@ SELECTION = [
     "tests/test_problem.py::test_neumann_manufactured_solution_rates[1-5]",
     "tests/test_problem.py::test_square_dirichlet_rates_are_k_plus_1_in_l2_and_k_in_h1[1-5-4]",
     EOSC, EPATCH, ERES, ELOOSE, ESMOOTH, EMARK, EBIS, EBIS3, EANG3,
+    E3OSC, E3PATCH, E3RES, E3LOOSE, E3RT,
 ]
 
 
