@@ -1,4 +1,4 @@
-"""asv benchmarks of mesh generation, dof numbering and assembly.
+"""asv benchmarks of mesh set-up, dof numbering and assembly.
 
 Sizes: about one million dofs per case at full size.  The environment
 variable ``GALERKIT_BENCH_SCALE`` (default 1) scales the number of dofs,
@@ -66,6 +66,36 @@ class MeshAndDofs:
 
     def peakmem_mesh_and_discretization(self, case):
         build_disc(case)
+
+
+class MeshSetUp:
+    """Mesh set-up warm (numba's cache loaded in setup), step by step: the whole
+    generator (validation, facet pass, tags), the facet pass alone, and the
+    connected components the solve path asks for (see benchmarks/mesh_setup.py
+    for the per-step table)."""
+
+    params = ["tri-P1", "tet-P1"]
+    param_names = ["case"]
+    timeout = 600
+    number = 1
+    repeat = (2, 5, 60.0)
+
+    def setup(self, case):
+        self.mesh = build_mesh(case)
+
+    def time_generator(self, case):
+        build_mesh(case)
+
+    def time_facet_pass(self, case):
+        from galerkit.topology import facet_topology
+
+        facet_topology(self.mesh.cells, self.mesh.n_vertices)
+
+    def time_components(self, case):
+        type(self.mesh)._components.func(self.mesh)  # uncached
+
+    def peakmem_generator(self, case):
+        build_mesh(case)
 
 
 class SymbolicPhase:

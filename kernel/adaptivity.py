@@ -5,7 +5,8 @@ bound of :func:`~galerkit.estimate_error`, Doerfler's bulk marking (W.
 Doerfler, "A convergent adaptive algorithm for Poisson's equation", SIAM J.
 Numer. Anal. 33, 1996: the fewest cells whose squared indicators reach
 ``bulk`` times the total), and newest-vertex bisection
-(:func:`~galerkit.refine_marked`).  It stops when the bound reaches the
+(:func:`~galerkit.refine_marked`; tetrahedra: tagged bisection, the bound of
+:mod:`galerkit.estimators3d`).  It stops when the bound reaches the
 tolerance (absolute ``tol``, or ``relative_tol`` times the energy norm of the
 solution), or when the next mesh would pass ``max_dofs``, or after
 ``max_levels`` levels.  Compiled kernels are reused from level to level; the
@@ -169,7 +170,7 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
     InputError
         Bad parameters.
     UnsupportedError
-        Degree other than 1, tetrahedra, data that cannot follow the mesh (a
+        Degree other than 1, data that cannot follow the mesh (a
         source given as a dof vector, per-facet arrays of boundary data).
 
     Examples

@@ -93,6 +93,50 @@ def _pattern_count(dofs, offsets, items, n_blocks, row_nnz):
             row_nnz[i] = cnt
 
 
+@nb.njit(cache=True)
+def _sort_range(a, lo, hi):
+    """Sort ``a[lo:hi]`` in place: insertion sort for short rows, heapsort else.
+
+    Hand-written rather than ``np.sort``: numba's quicksort adds about 4 s of
+    compilation to the first run, for rows that are nearly always short.  One
+    function (no sift helper called with a literal 0, which numba would compile
+    as a second specialisation)."""
+    n = hi - lo
+    if n <= 64:
+        for s in range(lo + 1, hi):
+            v = a[s]
+            t = s - 1
+            while t >= lo and a[t] > v:
+                a[t + 1] = a[t]
+                t -= 1
+            a[t + 1] = v
+        return
+    start = n // 2
+    end = n
+    while end > 1:
+        if start > 0:  # build the heap
+            start -= 1
+            root = start
+        else:  # move the largest to the end, restore the heap in front of it
+            end -= 1
+            v = a[lo]
+            a[lo] = a[lo + end]
+            a[lo + end] = v
+            root = 0
+        v = a[lo + root]
+        while True:
+            child = 2 * root + 1
+            if child >= end:
+                break
+            if child + 1 < end and a[lo + child + 1] > a[lo + child]:
+                child += 1
+            if a[lo + child] <= v:
+                break
+            a[lo + root] = a[lo + child]
+            root = child
+        a[lo + root] = v
+
+
 @nb.njit(cache=True, parallel=True)
 def _pattern_fill(dofs, offsets, items, n_blocks, indptr, indices):
     n = offsets.shape[0] - 1
@@ -110,18 +154,7 @@ def _pattern_fill(dofs, offsets, items, n_blocks, indptr, indices):
                         marker[col] = i
                         indices[pos] = col
                         pos += 1
-            lo = indptr[i]
-            hi = indptr[i + 1]
-            if hi - lo <= 64:
-                for s in range(lo + 1, hi):  # insertion sort: short rows
-                    v = indices[s]
-                    t = s - 1
-                    while t >= lo and indices[t] > v:
-                        indices[t + 1] = indices[t]
-                        t -= 1
-                    indices[t + 1] = v
-            else:
-                indices[lo:hi] = np.sort(indices[lo:hi])
+            _sort_range(indices, indptr[i], indptr[i + 1])
 
 
 @nb.njit(cache=True, inline="always")
@@ -201,23 +234,28 @@ def _scatter(Kloc, k, dofs, c, p, lo, hi, indptr, posmap, data):
 
 
 @nb.njit(cache=True, inline="always")
-def _p1_cofactors(points, cells, c, G):
-    """Rows of ``G`` = det(J) * grad(lambda_a) for a P1 cell; returns det(J)."""
+def _p1_cofactors_2d(points, cells, c, G):
+    """Rows of ``G`` = det(J) * grad(lambda_a) for a P1 triangle; returns det(J)."""
     v0 = cells[c, 0]
-    if points.shape[1] == 2:
-        x0 = points[v0, 0]
-        y0 = points[v0, 1]
-        a = points[cells[c, 1], 0] - x0
-        e = points[cells[c, 1], 1] - y0
-        b = points[cells[c, 2], 0] - x0
-        f = points[cells[c, 2], 1] - y0
-        G[1, 0] = f
-        G[1, 1] = -b
-        G[2, 0] = -e
-        G[2, 1] = a
-        G[0, 0] = -(f - e)
-        G[0, 1] = -(a - b)
-        return a * f - b * e
+    x0 = points[v0, 0]
+    y0 = points[v0, 1]
+    a = points[cells[c, 1], 0] - x0
+    e = points[cells[c, 1], 1] - y0
+    b = points[cells[c, 2], 0] - x0
+    f = points[cells[c, 2], 1] - y0
+    G[1, 0] = f
+    G[1, 1] = -b
+    G[2, 0] = -e
+    G[2, 1] = a
+    G[0, 0] = -(f - e)
+    G[0, 1] = -(a - b)
+    return a * f - b * e
+
+
+@nb.njit(cache=True, inline="always")
+def _p1_cofactors_3d(points, cells, c, G):
+    """Rows of ``G`` = det(J) * grad(lambda_a) for a P1 tetrahedron; returns det(J)."""
+    v0 = cells[c, 0]
     x0 = points[v0, 0]
     y0 = points[v0, 1]
     z0 = points[v0, 2]
@@ -248,6 +286,14 @@ def _p1_cofactors(points, cells, c, G):
     return a * G[1, 0] + b * G[2, 0] + cc * G[3, 0]
 
 
+@nb.njit(cache=True)
+def _p1_cofactors(points, cells, c, G):
+    """Rows of ``G`` = det(J) * grad(lambda_a) for a P1 cell; returns det(J)."""
+    if points.shape[1] == 2:
+        return _p1_cofactors_2d(points, cells, c, G)
+    return _p1_cofactors_3d(points, cells, c, G)
+
+
 @nb.njit(cache=True, inline="always")
 def _zero_rows(data, indptr, lo, hi):
     for i in range(indptr[lo], indptr[hi]):
@@ -270,7 +316,10 @@ def _p1_range(points, cells, order, posmap, indptr, lo, hi, p0, p1, kappa, tenso
     _zero_rows(data, indptr, lo, hi)
     for p in range(p0, p1):
         c = order[p]
-        det = _p1_cofactors(points, cells, c, G)
+        if d == 2:
+            det = _p1_cofactors_2d(points, cells, c, G)
+        else:
+            det = _p1_cofactors_3d(points, cells, c, G)
         scale = kappa[c if kappa.shape[0] > 1 else 0, 0] / (fact * abs(det))
         if tensor.shape[0] > 0:
             ti = c if tensor.shape[0] > 1 else 0
@@ -297,23 +346,45 @@ def _p1_range(points, cells, order, posmap, indptr, lo, hi, p0, p1, kappa, tenso
 
 
 @nb.njit(cache=True, parallel=True)
-def _p1_stiffness(points, cells, order, posmap, indptr, chunk_rows, chunk_cells,
-                  kappa, tensor, data):
-    """Closed-form P1 stiffness (any FEM text, e.g. Hughes 2000, ch. 3):
+def _p1_stiffness_2d(points, cells, order, posmap, indptr, chunk_rows, chunk_cells,
+                     kappa, tensor, data):
+    """Closed-form P1 stiffness on triangles (any FEM text, e.g. Hughes 2000, ch. 3):
     K_ab = kappa |T| grad(lambda_a) . K grad(lambda_b)
-         = kappa (C_a . K C_b) / (d! |det J|), C = cofactor rows."""
+         = kappa (C_a . K C_b) / (d! |det J|), C = cofactor rows.
+
+    One kernel per dimension: a run compiles only its own (a kernel holding
+    both took 16 s to compile against about 4 s for one)."""
     nch = chunk_rows.shape[0] - 1
     for t in nb.prange(nch):
-        lo = chunk_rows[t]
-        hi = chunk_rows[t + 1]
-        p0 = chunk_cells[t, 0]
-        p1 = chunk_cells[t, 1]
-        if points.shape[1] == 3:
-            _p1_range(points, cells, order, posmap, indptr, lo, hi, p0, p1, kappa, tensor,
-                      data, 3)
-        else:
-            _p1_range(points, cells, order, posmap, indptr, lo, hi, p0, p1, kappa, tensor,
-                      data, 2)
+        _p1_range(points, cells, order, posmap, indptr, chunk_rows[t], chunk_rows[t + 1],
+                  chunk_cells[t, 0], chunk_cells[t, 1], kappa, tensor, data, 2)
+
+
+@nb.njit(cache=True, parallel=True)
+def _p1_stiffness_3d(points, cells, order, posmap, indptr, chunk_rows, chunk_cells,
+                     kappa, tensor, data):
+    """Closed-form P1 stiffness on tetrahedra (as :func:`_p1_stiffness_2d`)."""
+    nch = chunk_rows.shape[0] - 1
+    for t in nb.prange(nch):
+        _p1_range(points, cells, order, posmap, indptr, chunk_rows[t], chunk_rows[t + 1],
+                  chunk_cells[t, 0], chunk_cells[t, 1], kappa, tensor, data, 3)
+
+
+@nb.njit(cache=True)
+def _p1_stiffness(points, cells, order, posmap, indptr, chunk_rows, chunk_cells,
+                  kappa, tensor, data):
+    """Closed-form P1 stiffness, either dimension (for compiled callers)."""
+    if points.shape[1] == 3:
+        _p1_stiffness_3d(points, cells, order, posmap, indptr, chunk_rows, chunk_cells,
+                         kappa, tensor, data)
+    else:
+        _p1_stiffness_2d(points, cells, order, posmap, indptr, chunk_rows, chunk_cells,
+                         kappa, tensor, data)
+
+
+def p1_stiffness_kernel(dim):
+    """The compiled P1 stiffness kernel of dimension ``dim`` (2 or 3)."""
+    return _p1_stiffness_3d if dim == 3 else _p1_stiffness_2d
 
 
 @nb.njit(cache=True, parallel=True)
@@ -889,8 +960,8 @@ class Assembler:
             if rule is not None:  # gradients are constant: average kappa per cell
                 kappa = np.ascontiguousarray(
                     (kappa @ rule.weights)[:, None] / rule.weights.sum())
-            _p1_stiffness(mesh.points, mesh.cells, self.order, self.posmap, self.indptr,
-                          rows, cells, kappa, tensor, data)
+            p1_stiffness_kernel(d)(mesh.points, mesh.cells, self.order, self.posmap,
+                                   self.indptr, rows, cells, kappa, tensor, data)
         else:
             if rule is None:
                 R = stiffness_table(d, k, max(2 * k - 2, 0)).sum(axis=0, keepdims=True)

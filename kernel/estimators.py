@@ -1,7 +1,8 @@
 """A posteriori error estimates: a guaranteed energy-error bound and the residual estimator.
 
 For ``-div(K grad u) = f`` with Dirichlet, Neumann (``K du/dn = g``) and Robin
-(``K du/dn = alpha (u_ext - u)``) data and a P1 solution ``u_h`` on triangles,
+(``K du/dn = alpha (u_ext - u)``) data and a P1 solution ``u_h`` on triangles
+(tetrahedra: below),
 :func:`estimate_error` returns
 
 * ``bound``: a computable upper bound of the energy error
@@ -69,8 +70,12 @@ floating-point round-off):
   compatible data, or the residual left there (``terms["unrouted"]``) is at
   round-off level; otherwise ``guaranteed`` is False and a note says why.
 
-Other cases (P2-P4, tetrahedra, conductivity varying inside cells, Dirichlet
-data outside the discrete space) raise :class:`~galerkit.errors.UnsupportedError`.
+Tetrahedra: the same construction and the same conditions, read with
+tetrahedra for triangles and faces for edges (:mod:`galerkit.estimators3d`:
+the 3D patch problems are small mixed systems solved exactly per vertex).
+
+Other cases (P2-P4, conductivity varying inside cells, Dirichlet data outside
+the discrete space) raise :class:`~galerkit.errors.UnsupportedError`.
 """
 
 from __future__ import annotations
@@ -668,9 +673,9 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     Parameters
     ----------
     solution : Solution
-        From :meth:`PoissonProblem.solve` (P1 on triangles).
+        From :meth:`PoissonProblem.solve` (P1 on triangles or tetrahedra).
     exact_gradient : callable, optional
-        ``exact_gradient(x)`` with x (2, n) -> (2, n); then ``error`` and
+        ``exact_gradient(x)`` with x (d, n) -> (d, n); then ``error`` and
         ``effectivity`` (bound / error) are filled in.
     quadrature_degree : int
         Degree of the cell rule for the source (the facet rule is 10-point
@@ -683,8 +688,8 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     Raises
     ------
     UnsupportedError
-        Degree above 1, tetrahedra, a conductivity given as a callable (varying
-        inside cells), Dirichlet data not affine along a Dirichlet facet.
+        Degree above 1, a conductivity given as a callable (varying inside
+        cells), Dirichlet data not affine along a Dirichlet facet.
     InputError
         Not a solution, a bad exact gradient or quadrature degree.
 
@@ -714,11 +719,6 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
         raise InputError(f"estimate_error: expected a Solution (from PoissonProblem.solve), got "
                          f"{type(solution).__name__}")
     mesh = disc.mesh
-    if mesh.dim != 2:
-        raise UnsupportedError(
-            "estimate_error: the equilibrated-flux bound is implemented for triangles only; "
-            "tetrahedra (3D patch problems) are not implemented yet. Use the exact error "
-            "(energy_error) or nested meshes (nested_error) in 3D")
     if disc.degree != 1:
         raise UnsupportedError(
             f"estimate_error: the bound is implemented for P1 only, this solution is "
@@ -738,6 +738,9 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     if u.shape != (disc.n_dofs,) or not np.isfinite(u).all():
         raise InputError(f"estimate_error: the solution vector has shape {u.shape} or non-finite "
                          f"values; expected {disc.n_dofs} finite values")
+    if mesh.dim == 3:
+        from .estimators3d import estimate_error_tetrahedra
+        return estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_start)
     notes = []
     m = mesh.n_cells
     pts = np.ascontiguousarray(mesh.points, dtype=np.float64)

@@ -8,6 +8,7 @@ upper), ``"ymin"``/``"ymax"`` (y), in 3D ``"zmin"``/``"zmax"`` (z), and
 
 from __future__ import annotations
 
+import numba as nb
 import numpy as np
 
 from .errors import InputError, ResourceError
@@ -70,15 +71,39 @@ def _check_box(name, lower, upper, dim):
     return lo, hi
 
 
+@nb.njit(cache=True, parallel=True)
+def _box_sides(points, facets, lower, upper, tol, sides):
+    """``sides[f]``: bit ``2 a`` when the midpoint of boundary facet ``f`` lies
+    within ``tol`` of ``lower[a]``, bit ``2 a + 1`` for ``upper[a]``.  The
+    midpoint is summed vertex by vertex and divided by their number, as
+    ``numpy.mean`` over the facet's vertices does."""
+    nf, kf = facets.shape
+    dim = points.shape[1]
+    for f in nb.prange(nf):
+        bits = 0
+        for a in range(dim):
+            x = points[facets[f, 0], a]
+            for j in range(1, kf):
+                x += points[facets[f, j], a]
+            x /= kf
+            if abs(x - lower[a]) <= tol:
+                bits |= 1 << (2 * a)
+            if abs(x - upper[a]) <= tol:
+                bits |= 1 << (2 * a + 1)
+        sides[f] = bits
+
+
 def _tag_box(mesh, lower, upper, spacing):
     tol = 1e-8 * float(np.min(spacing))
     names = [("xmin", "xmax"), ("ymin", "ymax"), ("zmin", "zmax")]
-    x = mesh.facet_midpoints()
+    sides = np.empty(mesh.boundary_facets.shape[0], dtype=np.uint8)
+    _box_sides(mesh.points, mesh.boundary_facets, np.ascontiguousarray(lower, dtype=np.float64),
+               np.ascontiguousarray(upper, dtype=np.float64), tol, sides)
     for axis in range(mesh.dim):
-        for side, value in zip(names[axis], (lower[axis], upper[axis])):
-            mask = np.abs(x[axis] - value) <= tol
-            if mask.any():
-                mesh.set_facet_tag(side, np.flatnonzero(mask))
+        for end, side in enumerate(names[axis]):
+            ids = np.flatnonzero(sides & np.uint8(1 << (2 * axis + end)))
+            if ids.size:
+                mesh.set_facet_tag(side, ids)
     return mesh  # "boundary" (all of it) comes with every Mesh
 
 
@@ -89,11 +114,80 @@ def _regions(mesh, regions, names):
         raise InputError("region_names given without regions; pass regions= as well")
 
 
+@nb.njit(cache=True, parallel=True)
+def _fill_grid_points(x, y, z, pts):
+    """``pts[i + nx1 * (j + ny1 * k)] = (x[i], y[j], z[k])`` (z ignored in 2D)."""
+    nx1 = x.shape[0]
+    ny1 = y.shape[0]
+    dim = pts.shape[1]
+    for r in nb.prange(ny1 * z.shape[0]):
+        j = r % ny1
+        k = r // ny1
+        base = r * nx1
+        for i in range(nx1):
+            pts[base + i, 0] = x[i]
+            pts[base + i, 1] = y[j]
+            if dim == 3:
+                pts[base + i, 2] = z[k]
+
+
 def _grid_points(counts, lower, upper):
+    """Vertices of the grid, x fastest: vertex ``i + (nx+1)*(j + (ny+1)*k)`` is at
+    the ``i``-th, ``j``-th, ``k``-th value of ``numpy.linspace`` along each axis."""
     axes = [np.linspace(lower[a], upper[a], counts[a] + 1) for a in range(len(counts))]
-    grids = np.meshgrid(*axes, indexing="ij")
-    # x fastest: transpose so that the flat index is i + (nx+1)*(j + (ny+1)*k)
-    return np.ascontiguousarray(np.stack([g.T.ravel() for g in grids], axis=1))
+    n = int(np.prod([c + 1 for c in counts]))
+    pts = np.empty((n, len(counts)))
+    _fill_grid_points(axes[0], axes[1], axes[2] if len(axes) == 3 else np.zeros(1), pts)
+    return pts
+
+
+@nb.njit(cache=True, parallel=True)
+def _fill_grid_cells(nx, ny, nz, pattern, cells):
+    """Cells of a grid of ``nx * ny * nz`` boxes: box ``i + nx * (j + ny * k)``
+    with lowest vertex ``v = i + (nx+1) * (j + (ny+1) * k)`` gets the cells
+    ``v + pattern[t]`` (``t`` = 0, 1, ...) at rows ``box * len(pattern) + t``."""
+    per, kk = pattern.shape
+    sy = nx + 1
+    sz = (nx + 1) * (ny + 1)
+    for r in nb.prange(ny * nz):
+        j = r % ny
+        k = r // ny
+        for i in range(nx):
+            v = i + sy * j + sz * k
+            row = (i + nx * r) * per
+            for t in range(per):
+                for a in range(kk):
+                    cells[row + t, a] = v + pattern[t, a]
+
+
+def _cell_table(counts, n_vertices):
+    """The cell table of the structured generators, written straight into its
+    final int32 array: two triangles per square (cut along the diagonal from
+    the lower-left corner), or the six Kuhn tetrahedra per box, positively
+    oriented."""
+    if len(counts) == 2:
+        nx, ny = counts
+        nz = 1
+        # v00, v10, v11 and v00, v11, v01
+        pattern = np.array([[0, 1, nx + 2], [0, nx + 2, nx + 1]], dtype=np.int64)
+    else:
+        nx, ny, nz = counts
+        step = (1, nx + 1, (nx + 1) * (ny + 1))
+        # the six axis orderings; odd ones get their last two vertices swapped so
+        # that every tetrahedron is positively oriented
+        perms = [((0, 1, 2), False), ((1, 2, 0), False), ((2, 0, 1), False),
+                 ((0, 2, 1), True), ((2, 1, 0), True), ((1, 0, 2), True)]
+        rows = []
+        for p, odd in perms:
+            a = step[p[0]]
+            b = a + step[p[1]]
+            c = b + step[p[2]]
+            rows.append([0, a, c, b] if odd else [0, a, b, c])
+        pattern = np.array(rows, dtype=np.int64)
+    cells = np.empty((nx * ny * nz * pattern.shape[0], pattern.shape[1]),
+                     dtype=index_dtype(n_vertices))
+    _fill_grid_cells(nx, ny, nz, pattern, cells)
+    return cells
 
 
 def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0), *, regions=None,
@@ -129,12 +223,7 @@ def structured_triangles(nx, ny, lower=(0.0, 0.0), upper=(1.0, 1.0), *, regions=
     check_mesh_memory(f"structured_triangles({nx}, {ny})", (nx + 1) * (ny + 1), 2 * nx * ny, 2,
                       "use fewer cells per axis")
     pts = _grid_points((nx, ny), lo, hi)
-    i, j = np.meshgrid(np.arange(nx), np.arange(ny), indexing="xy")
-    v00 = (i + (nx + 1) * j).ravel()
-    v10, v01, v11 = v00 + 1, v00 + nx + 1, v00 + nx + 2
-    cells = np.empty((2 * v00.size, 3), dtype=np.int64)
-    cells[0::2] = np.stack([v00, v10, v11], axis=1)
-    cells[1::2] = np.stack([v00, v11, v01], axis=1)
+    cells = _cell_table((nx, ny), pts.shape[0])
     mesh = Mesh(pts, cells, check_coincident=False)  # grid points are distinct
     _regions(mesh, regions, region_names)
     return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny))
@@ -172,25 +261,7 @@ def structured_tetrahedra(nx, ny, nz, lower=(0.0, 0.0, 0.0), upper=(1.0, 1.0, 1.
                       (nx + 1) * (ny + 1) * (nz + 1), 6 * nx * ny * nz, 3,
                       "use fewer cells per axis")
     pts = _grid_points((nx, ny, nz), lo, hi)
-    sx, sy = 1, nx + 1
-    sz = (nx + 1) * (ny + 1)
-    idt = index_dtype(pts.shape[0])
-    v000 = (np.arange(nx, dtype=idt)[None, None, :] + sy * np.arange(ny, dtype=idt)[None, :, None]
-            + sz * np.arange(nz, dtype=idt)[:, None, None]).ravel()
-    step = (sx, sy, sz)
-    # the six axis orderings; odd ones get their last two vertices swapped so
-    # that every tetrahedron is positively oriented
-    perms = [((0, 1, 2), False), ((1, 2, 0), False), ((2, 0, 1), False),
-             ((0, 2, 1), True), ((2, 1, 0), True), ((1, 0, 2), True)]
-    cells = np.empty((v000.size, 6, 4), dtype=idt)
-    for t, (p, odd) in enumerate(perms):
-        a = v000 + step[p[0]]
-        b = a + step[p[1]]
-        c = b + step[p[2]]
-        cols = [v000, a, c, b] if odd else [v000, a, b, c]
-        for j, col in enumerate(cols):
-            cells[:, t, j] = col
-    cells = cells.reshape(-1, 4)
+    cells = _cell_table((nx, ny, nz), pts.shape[0])
     mesh = Mesh(pts, cells, check_coincident=False)  # grid points are distinct
     _regions(mesh, regions, region_names)
     return _tag_box(mesh, lo, hi, (hi - lo) / (nx, ny, nz))

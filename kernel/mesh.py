@@ -147,35 +147,59 @@ def _copy_check_cells(src, n_vertices, out, codes, used):
 
 
 @nb.njit(cache=True, parallel=True)
-def _orient_cells(points, cells, tol, volume, codes):
-    """Volumes, degeneracy and orientation in one pass.
+def _validate_cells(src, points, n_vertices, tol, out, codes, used, volume):
+    """The whole cell check in one pass: copy ``src`` into ``out`` (both (m, k);
+    may be the same array), code each cell (0 fine, 1 an index out of range, 2
+    a repeated vertex, 3 degenerate: |volume| <= tol * (longest edge)**d), mark
+    the vertices in use, store |signed volume| (the signed volume of a
+    degenerate cell) and swap the last two vertices of a negatively oriented
+    cell.  A cell with a bad index never reads ``points``.
 
-    ``volume[c]`` gets |signed volume|; a cell with |volume| <= tol * (longest
-    edge)**d gets ``codes[c] = 3`` (degenerate); a negatively oriented cell
-    has its last two vertices swapped.  Returns (degenerate, re-oriented)
-    counts.
+    Returns the numbers of cells with a bad index, degenerate and re-oriented
+    cells.  Every write to ``used`` stores the same value 1, so the marks do
+    not depend on the order of the threads.
     """
-    m = cells.shape[0]
-    d = points.shape[1]
+    m, k = src.shape
+    d = k - 1
+    n_bad = 0
     n_degenerate = 0
     n_negative = 0
     for c in nb.prange(m):
-        vol, longest = _cell_volume_and_longest(points, cells, c)
-        scale = np.sqrt(longest)
-        degenerate = abs(vol) <= tol * scale**d
-        if degenerate:
-            codes[c] = 3
-            volume[c] = vol
-        elif vol < 0:
-            t = cells[c, d - 1]
-            cells[c, d - 1] = cells[c, d]
-            cells[c, d] = t
-            volume[c] = -vol
-        else:
-            volume[c] = vol
+        bad = 0
+        for i in range(k):
+            v = src[c, i]
+            if v < 0 or v >= n_vertices:
+                bad = 1
+                break
+            for j in range(i):
+                if src[c, j] == v:
+                    bad = 2
+        degenerate = False
+        negative = False
+        if bad == 0:
+            for i in range(k):
+                v = src[c, i]
+                out[c, i] = v
+                used[v] = 1
+            vol, longest = _cell_volume_and_longest(points, out, c)
+            scale = np.sqrt(longest)
+            degenerate = abs(vol) <= tol * scale**d
+            if degenerate:
+                bad = 3
+                volume[c] = vol
+            elif vol < 0:
+                negative = True
+                t = out[c, d - 1]
+                out[c, d - 1] = out[c, d]
+                out[c, d] = t
+                volume[c] = -vol
+            else:
+                volume[c] = vol
+        codes[c] = bad
+        n_bad += 1 if (bad == 1 or bad == 2) else 0
         n_degenerate += 1 if degenerate else 0
-        n_negative += 1 if (vol < 0 and not degenerate) else 0
-    return n_degenerate, n_negative
+        n_negative += 1 if negative else 0
+    return n_bad, n_degenerate, n_negative
 
 
 def _refuse_duplicates(cells):
@@ -332,6 +356,12 @@ def _as_cells(cells, n_vertices, dim):
 
 
 def _cells_and_use(cells, n_vertices, dim):
+    return _checked_copy(_cells_input(cells, n_vertices, dim), n_vertices, dim)
+
+
+def _cells_input(cells, n_vertices, dim):
+    """The cell table as a C-contiguous integer array of the right shape
+    (shape, dtype and huge unsigned values checked; ranges not yet)."""
     try:
         c = np.asarray(cells)
     except Exception as exc:
@@ -358,13 +388,13 @@ def _cells_and_use(cells, n_vertices, dim):
                 f"0..{n_vertices - 1} ({int(big.sum())} such cells)"
             )
         c = c.astype(np.int64)
-    return _checked_copy(c, n_vertices, dim)
+    return c
 
 
-def _checked_copy(c, n_vertices, dim):
-    """A fresh C-contiguous copy of the cell table in the index dtype, and
-    whether each vertex is used (uint8); raises for an index out of range or a
-    repeated vertex, naming the first such cell."""
+def _copy_target(c, n_vertices):
+    """``(src, out)``: ``c`` in the index dtype and a fresh array for the copy
+    (the same one when the conversion already made a fresh array); an index
+    that the conversion would wrap is refused first."""
     idt = index_dtype(n_vertices)
     if c.dtype != idt:
         # out-of-range values must not wrap in the conversion: check in numpy
@@ -380,20 +410,34 @@ def _checked_copy(c, n_vertices, dim):
     else:
         src = c
         out = np.empty(c.shape, dtype=idt)
+    return src, out
+
+
+def _bad_index_error(c, codes, count, n_vertices, dim):
+    """The error for the first cell of ``codes`` 1 (index out of range) or 2
+    (repeated vertex), naming it."""
+    i = int(np.flatnonzero((codes == 1) | (codes == 2))[0])
+    if codes[i] == 1:
+        return MeshError(
+            f"mesh cells: cell {i} has vertex indices {c[i].tolist()} outside "
+            f"0..{n_vertices - 1} ({int(count)} such cells)"
+        )
+    return MeshError(
+        f"mesh cells: cell {i} repeats a vertex {c[i].tolist()} "
+        f"({int(count)} such cells); each cell needs {dim + 1} distinct vertices"
+    )
+
+
+def _checked_copy(c, n_vertices, dim):
+    """A fresh C-contiguous copy of the cell table in the index dtype, and
+    whether each vertex is used (uint8); raises for an index out of range or a
+    repeated vertex, naming the first such cell."""
+    src, out = _copy_target(c, n_vertices)
     codes = np.empty(c.shape[0], dtype=np.uint8)
     used = np.zeros(n_vertices, dtype=np.uint8)
     count = _copy_check_cells(src, n_vertices, out, codes, used)
     if count:
-        i = int(np.flatnonzero(codes)[0])
-        if codes[i] == 1:
-            raise MeshError(
-                f"mesh cells: cell {i} has vertex indices {c[i].tolist()} outside "
-                f"0..{n_vertices - 1} ({int(count)} such cells)"
-            )
-        raise MeshError(
-            f"mesh cells: cell {i} repeats a vertex {c[i].tolist()} "
-            f"({int(count)} such cells); each cell needs {dim + 1} distinct vertices"
-        )
+        raise _bad_index_error(c, codes, count, n_vertices, dim)
     return out, used
 
 
@@ -597,7 +641,18 @@ class Mesh:
                  region_names=None):
         p = _planar(_as_points(points), cells)
         n, d = p.shape
-        c, used = _cells_and_use(cells, n, d)
+        c_in = _cells_input(cells, n, d)
+        src, c = _copy_target(c_in, n)
+        # indices, copy, used vertices, volumes, degeneracy and orientation: one pass
+        used = np.zeros(n, dtype=np.uint8)
+        codes = np.empty(c.shape[0], dtype=np.uint8)
+        vol = np.empty(c.shape[0])
+        n_bad, n_degenerate, n_negative = _validate_cells(src, p, n, DEGENERACY_TOLERANCE, c,
+                                                          codes, used, vol)
+        del src
+        if n_bad:
+            raise _bad_index_error(c_in, codes, n_bad, n, d)
+        del c_in
         if facet_groups is not None and not hasattr(facet_groups, "items"):
             raise MeshError(
                 f"mesh facet_groups must be a dict of name -> boundary facet ids, got "
@@ -610,9 +665,6 @@ class Mesh:
                 "galerkit.mesh.remove_unreferenced_vertices(points, cells)"
             )
         del used
-        vol = np.empty(c.shape[0])
-        codes = np.zeros(c.shape[0], dtype=np.uint8)
-        n_degenerate, n_negative = _orient_cells(p, c, DEGENERACY_TOLERANCE, vol, codes)
         if n_degenerate:
             i = int(np.flatnonzero(codes == 3)[0])
             scale = np.sqrt(max(float(((p[c[i, a]] - p[c[i, b]]) ** 2).sum())
@@ -643,8 +695,14 @@ class Mesh:
         self.cells = c
         self.cell_volumes = vol
         self.facet_groups = {}
-        self.set_regions(np.zeros(c.shape[0], dtype=np.int32) if regions is None else regions,
-                         {DEFAULT_REGION: 0} if regions is None else region_names)
+        if regions is None:
+            # what set_regions makes of all zeros and {DEFAULT_REGION: 0}, without its passes
+            ids = np.zeros(c.shape[0], dtype=np.int32)
+            ids.flags.writeable = False
+            self.regions = ids
+            self.region_names = {DEFAULT_REGION: 0}
+        else:
+            self.set_regions(regions, region_names)
         # hierarchy, filled in by refine_uniform
         self.parent = None
         self.parent_cells = None
@@ -762,7 +820,9 @@ class Mesh:
                 f"facet tag {name!r}: facet id {bad} is outside 0..{k - 1} "
                 "(ids index mesh.boundary_facets)"
             )
-        ids = np.unique(ids).astype(np.int64)
+        if ids.size > 1 and not (ids[1:] > ids[:-1]).all():
+            ids = np.unique(ids)  # strictly increasing ids are unique and sorted already
+        ids = ids.astype(np.int64)  # a copy: the caller's array stays the caller's
         ids.flags.writeable = False
         self.facet_groups[name] = ids
         return ids

@@ -362,11 +362,15 @@ def _vcycle(a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_val, r_ptr, r_ind, r_val,
             xs, bs, rs, ds, lower, degree, chol, b0, x0):
     """One V-cycle ``x0 = B b0`` (x0 is overwritten; zero initial guess)."""
     n_lev = len(a_ptr)
+    # the smoother's flags are run-time booleans: a literal True/False at each call
+    # site would compile one specialisation of _chebyshev per combination
+    yes = n_lev > 0
+    no = not yes
     for lev in range(n_lev - 1):
         b = b0 if lev == 0 else bs[lev]
         x = x0 if lev == 0 else xs[lev]
         _chebyshev(a_ptr[lev], a_ind[lev], a_val[lev], dinv[lev], b, x, rs[lev], ds[lev],
-                   lower[lev], 1.0, degree[lev], True, True)
+                   lower[lev], 1.0, degree[lev], yes, yes)
         matvec_into(r_ptr[lev], r_ind[lev], r_val[lev], rs[lev], bs[lev + 1])
     c = n_lev - 1
     b = b0 if c == 0 else bs[c]
@@ -375,13 +379,13 @@ def _vcycle(a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_val, r_ptr, r_ind, r_val,
         _cholesky_solve(chol, b, x)
     else:
         _chebyshev(a_ptr[c], a_ind[c], a_val[c], dinv[c], b, x, rs[c], ds[c],
-                   lower[c], 1.0, degree[c], True, False)
+                   lower[c], 1.0, degree[c], yes, no)
     for lev in range(n_lev - 2, -1, -1):
         b = b0 if lev == 0 else bs[lev]
         x = x0 if lev == 0 else xs[lev]
         matvec_add_into(p_ptr[lev], p_ind[lev], p_val[lev], xs[lev + 1], x)
         _chebyshev(a_ptr[lev], a_ind[lev], a_val[lev], dinv[lev], b, x, rs[lev], ds[lev],
-                   lower[lev], 1.0, degree[lev], False, False)
+                   lower[lev], 1.0, degree[lev], no, no)
 
 
 @nb.njit(cache=True)
@@ -467,11 +471,29 @@ def _pcg_vcycle(m_ptr, m_ind, m_val, a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_
 # ----------------------------------------------------------------------------
 # the hierarchy
 # ----------------------------------------------------------------------------
+def _readonly(a):
+    """A read-only view of ``a`` (no copy).
+
+    Every array the kernels only read goes in read-only, whoever made it: numba
+    compiles a read-only and a writeable argument as two signatures, so a matrix
+    that arrives one way in one run and the other way in the next (pruned or
+    not, a caller's frozen arrays or fresh ones) would compile the set-up and
+    the cycle twice."""
+    v = a.view()
+    v.flags.writeable = False
+    return v
+
+
+def _ro3(arrays):
+    return tuple(_readonly(a) for a in arrays)
+
+
 def _csr_arrays(A):
-    """(indptr int64, indices int32, data float64) of a CSR matrix, no copy when they fit."""
-    return (np.ascontiguousarray(A.indptr, dtype=np.int64),
-            np.ascontiguousarray(A.indices, dtype=np.int32),
-            np.ascontiguousarray(A.data, dtype=np.float64))
+    """Read-only (indptr int64, indices int32, data float64) of a CSR matrix, no copy
+    when they fit."""
+    return (_readonly(np.ascontiguousarray(A.indptr, dtype=np.int64)),
+            _readonly(np.ascontiguousarray(A.indices, dtype=np.int32)),
+            _readonly(np.ascontiguousarray(A.data, dtype=np.float64)))
 
 
 def _prune(ptr, ind, val):
@@ -483,7 +505,7 @@ def _prune(ptr, ind, val):
     new_ind = np.empty(new_ptr[-1], dtype=np.int32)
     new_val = np.empty(new_ptr[-1], dtype=np.float64)
     _prune_fill(ptr, ind, val, new_ptr, new_ind, new_val)
-    return new_ptr, new_ind, new_val, True
+    return _readonly(new_ptr), _readonly(new_ind), _readonly(new_val), True
 
 
 class _Level:
@@ -492,19 +514,26 @@ class _Level:
 
 
 # -- typed lists of per-level arrays, built by cached kernels -------------------
-_I64_1D = _nbt.Array(_nbt.int64, 1, "C")
-_I32_1D = _nbt.Array(_nbt.int32, 1, "C")
+# level data (matrices, transfers, scalings) are read-only items, work vectors writeable
+_RO_I64_1D = _nbt.Array(_nbt.int64, 1, "C", readonly=True)
+_RO_I32_1D = _nbt.Array(_nbt.int32, 1, "C", readonly=True)
+_RO_F64_1D = _nbt.Array(_nbt.float64, 1, "C", readonly=True)
 _F64_1D = _nbt.Array(_nbt.float64, 1, "C")
 
 
 @nb.njit(cache=True)
 def _new_i64():
-    return List.empty_list(_I64_1D)
+    return List.empty_list(_RO_I64_1D)
 
 
 @nb.njit(cache=True)
 def _new_i32():
-    return List.empty_list(_I32_1D)
+    return List.empty_list(_RO_I32_1D)
+
+
+@nb.njit(cache=True)
+def _new_ro_f64():
+    return List.empty_list(_RO_F64_1D)
 
 
 @nb.njit(cache=True)
@@ -512,12 +541,12 @@ def _new_f64():
     return List.empty_list(_F64_1D)
 
 
-def _checked_push(kernel, dtype):
+def _checked_push(kernel, dtype, readonly):
     def push(lst, a):
         if a.dtype != dtype or a.ndim != 1 or not a.flags.c_contiguous:
             raise TypeError(f"multigrid level array: expected C-contiguous 1-D {dtype}, "
                             f"got {a.dtype} {a.ndim}-D")
-        kernel(lst, a)
+        kernel(lst, _readonly(a) if readonly else a)
     return push
 
 
@@ -526,9 +555,10 @@ def _push_kernel(lst, a):
     lst.append(a)
 
 
-_push_i64 = _checked_push(_push_kernel, np.int64)
-_push_i32 = _checked_push(_push_kernel, np.int32)
-_push_f64 = _checked_push(_push_kernel, np.float64)
+_push_i64 = _checked_push(_push_kernel, np.int64, True)
+_push_i32 = _checked_push(_push_kernel, np.int32, True)
+_push_ro_f64 = _checked_push(_push_kernel, np.float64, True)
+_push_f64 = _checked_push(_push_kernel, np.float64, False)
 
 
 class Hierarchy:
@@ -612,6 +642,11 @@ class Hierarchy:
     def pcg(self, ptr, ind, val, b, x0, rtol, maxiter, max_restarts):
         """Compiled CG on the system ``(ptr, ind, val)`` preconditioned by the V-cycle."""
         n = b.shape[0]
+        # one signature whatever the caller holds: the matrix read-only, b writeable
+        ptr, ind, val = _readonly(ptr), _readonly(ind), _readonly(val)
+        b = np.ascontiguousarray(b, dtype=np.float64)
+        if not b.flags.writeable:
+            b = b.copy()
         x = np.zeros(n) if x0 is None else np.array(x0, dtype=np.float64, copy=True)
         history = np.empty(maxiter + max_restarts + 2)
         r, z, p, q = (np.empty(n) for _ in range(4))
@@ -625,31 +660,31 @@ class Hierarchy:
         # typed lists are built by cached kernels (_new_*, _push): List() and
         # List.append called from Python compile numba's own list code afresh in
         # every process (about a second), cached kernels load it from the cache
-        a_ptr, a_ind, a_val, dinv = _new_i64(), _new_i32(), _new_f64(), _new_f64()
-        p_ptr, p_ind, p_val = _new_i64(), _new_i32(), _new_f64()
-        r_ptr, r_ind, r_val = _new_i64(), _new_i32(), _new_f64()
+        a_ptr, a_ind, a_val, dinv = _new_i64(), _new_i32(), _new_ro_f64(), _new_ro_f64()
+        p_ptr, p_ind, p_val = _new_i64(), _new_i32(), _new_ro_f64()
+        r_ptr, r_ind, r_val = _new_i64(), _new_i32(), _new_ro_f64()
         xs, bs, rs, ds = _new_f64(), _new_f64(), _new_f64(), _new_f64()
         for lv in self._levels:
             _push_i64(a_ptr, lv.ptr)
             _push_i32(a_ind, lv.ind)
-            _push_f64(a_val, lv.val)
-            _push_f64(dinv, lv.dinv)
+            _push_ro_f64(a_val, lv.val)
+            _push_ro_f64(dinv, lv.dinv)
             for lst in (xs, bs, rs, ds):
                 _push_f64(lst, np.zeros(lv.n))
         for lv in self._levels[:-1]:
             _push_i64(p_ptr, lv.P[0])
             _push_i32(p_ind, lv.P[1])
-            _push_f64(p_val, lv.P[2])
+            _push_ro_f64(p_val, lv.P[2])
             _push_i64(r_ptr, lv.R[0])
             _push_i32(r_ind, lv.R[1])
-            _push_f64(r_val, lv.R[2])
+            _push_ro_f64(r_val, lv.R[2])
         if len(self._levels) == 1:  # the kernels index no transfer, but take one
             _push_i64(p_ptr, np.zeros(1, dtype=np.int64))
             _push_i64(r_ptr, np.zeros(1, dtype=np.int64))
             _push_i32(p_ind, np.zeros(0, np.int32))
             _push_i32(r_ind, np.zeros(0, np.int32))
-            _push_f64(p_val, np.zeros(0))
-            _push_f64(r_val, np.zeros(0))
+            _push_ro_f64(p_val, np.zeros(0))
+            _push_ro_f64(r_val, np.zeros(0))
         lower = np.array([lv.lower for lv in self._levels])
         degree = np.array([lv.degree for lv in self._levels], dtype=np.int64)
         self._packed = (a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_val, r_ptr, r_ind, r_val,
@@ -703,11 +738,11 @@ class Hierarchy:
                 break
             nxt = self._levels[i + 1]
             if not (i == 0 and self._pk):
-                lv.P = _smoothed_prolongator(lv.ptr, lv.ind, lv.val, lv.l1, 4.0 / 3.0,
-                                             lv.agg, lv.n_agg)
-                lv.R = transpose(*lv.P, lv.n_agg)
-            AP = spgemm(lv.ptr, lv.ind, lv.val, *lv.P, nxt.n)
-            nxt.ptr, nxt.ind, nxt.val = spgemm(*lv.R, *AP, nxt.n)
+                lv.P = _ro3(_smoothed_prolongator(lv.ptr, lv.ind, lv.val, lv.l1, 4.0 / 3.0,
+                                                  lv.agg, lv.n_agg))
+                lv.R = _ro3(transpose(*lv.P, lv.n_agg))
+            AP = _ro3(spgemm(lv.ptr, lv.ind, lv.val, *lv.P, nxt.n))
+            nxt.ptr, nxt.ind, nxt.val = _ro3(spgemm(*lv.R, *AP, nxt.n))
             del AP
         self._factor_coarsest()
 
@@ -733,7 +768,7 @@ class Hierarchy:
 
 def _new_level(ptr, ind, val, n, degree, lower):
     lv = _Level()
-    lv.ptr, lv.ind, lv.val, lv.n = ptr, ind, val, n
+    lv.ptr, lv.ind, lv.val, lv.n = _readonly(ptr), _readonly(ind), _readonly(val), n
     lv.diag = np.empty(n)
     lv.l1 = np.empty(n)
     lv.dinv = np.empty(n)
@@ -825,7 +860,7 @@ def build_hierarchy(A, *, coarse_space=None, theta=DEFAULTS["theta"],
         if level == 0 and h._pk:
             Pm = coarse_space
             lv.P = _csr_arrays(Pm)
-            lv.R = transpose(*lv.P, Pm.shape[1])
+            lv.R = _ro3(transpose(*lv.P, Pm.shape[1]))
             n_next = Pm.shape[1]
         else:
             agg, n_agg = _aggregate(lv.ptr, lv.ind, lv.val, lv.diag, theta * 0.5 ** level)
@@ -835,12 +870,13 @@ def build_hierarchy(A, *, coarse_space=None, theta=DEFAULTS["theta"],
                 break
             t0 = time.perf_counter()
             lv.agg, lv.n_agg = agg, n_agg
-            lv.P = _smoothed_prolongator(lv.ptr, lv.ind, lv.val, lv.l1, 4.0 / 3.0, agg, n_agg)
-            lv.R = transpose(*lv.P, n_agg)
+            lv.P = _ro3(_smoothed_prolongator(lv.ptr, lv.ind, lv.val, lv.l1, 4.0 / 3.0, agg,
+                                              n_agg))
+            lv.R = _ro3(transpose(*lv.P, n_agg))
             n_next = n_agg
             phases["prolongate"] += time.perf_counter() - t0
         t0 = time.perf_counter()
-        AP = spgemm(lv.ptr, lv.ind, lv.val, *lv.P, n_next)
+        AP = _ro3(spgemm(lv.ptr, lv.ind, lv.val, *lv.P, n_next))
         c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)
         del AP
         phases["galerkin"] += time.perf_counter() - t0

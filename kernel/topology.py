@@ -222,15 +222,19 @@ def enumerate_entities(cells: np.ndarray, local: np.ndarray, n_vertices: int, *,
     return entities, cell_entities, multiplicity, first
 
 
-# -- facets of a cell table, in one counting pass ---------------------------------------
+# -- facets of a cell table, from the cells around each vertex -------------------------
 #
 # A facet of a simplex is the cell minus one vertex.  With the cell's vertices
 # sorted (s_0 < ... < s_d), the facet without s_p has smallest vertex s_1 when
-# p = 0 and s_0 otherwise, so the bucket sizes follow from the two smallest
-# vertices alone.  The side of the cell seen from the facet (sorted facet
-# vertices, then the opposite vertex) is the parity of the sort times
-# (-1)**(d - p): the two cells of an interior facet must have opposite sides
-# (positively oriented cells), or the mesh folds.
+# p = 0 and s_0 otherwise: the facets whose smallest vertex is v all belong to
+# the cells whose smallest or second smallest vertex is v.  One counting pass
+# lists those cells for every vertex (two entries per cell); each vertex then
+# sorts its few facets (the other vertices as one integer key) in a small
+# per-thread buffer and classifies them.  No table of all facets is built.
+# The side of the cell seen from the facet (sorted facet vertices, then the
+# opposite vertex) is the parity of the sort times (-1)**(d - p): the two
+# cells of an interior facet must have opposite sides (positively oriented
+# cells), or the mesh folds.
 
 @nb.njit(cache=True, inline="always")
 def _sort_cell(cells, c, s, perm):
@@ -255,27 +259,37 @@ def _sort_cell(cells, c, s, perm):
     return odd
 
 
-@nb.njit(cache=True, parallel=True)
-def _facet_buckets(cells, n_vertices, n_chunks, offsets, occ, keys):
-    """Every facet occurrence into the bucket of its smallest vertex.
+@nb.njit(cache=True, inline="always")
+def _two_smallest(cells, c):
+    """The smallest and the second smallest vertex of cell ``c``."""
+    a = cells[c, 0]
+    b = cells[c, 1]
+    if b < a:
+        a, b = b, a
+    for j in range(2, cells.shape[1]):
+        v = cells[c, j]
+        if v < a:
+            b = a
+            a = v
+        elif v < b:
+            b = v
+    return a, b
 
-    ``occ[pos] = 2 * (c * (d + 1) + e) + side`` (``e``: the local vertex the
-    facet is opposite to), ``keys[pos]``: the facet's other vertices as one
-    integer.  Chunks are contiguous cell ranges and fill their slots of each
-    bucket in cell order, so every bucket lists its occurrences in cell order
-    whatever the number of threads.
-    """
-    m, k = cells.shape
-    d = k - 1
+
+@nb.njit(cache=True, parallel=True)
+def _facet_incidence(cells, n_vertices, n_chunks, offsets, items):
+    """For every vertex ``v``, the cells whose smallest or second smallest
+    vertex is ``v``: ``items[offsets[v]:offsets[v + 1]]``, in ascending cell
+    order whatever the number of chunks (chunks are contiguous cell ranges and
+    fill their slots of each list in cell order)."""
+    m = cells.shape[0]
     per = (m + n_chunks - 1) // n_chunks
     counts = np.zeros((n_chunks, n_vertices), dtype=np.int64)
     for t in nb.prange(n_chunks):
-        s = np.empty(k, dtype=np.int64)
-        perm = np.empty(k, dtype=np.int64)
         for c in range(t * per, min(m, (t + 1) * per)):
-            _sort_cell(cells, c, s, perm)
-            counts[t, s[0]] += d
-            counts[t, s[1]] += 1
+            a, b = _two_smallest(cells, c)
+            counts[t, a] += 1
+            counts[t, b] += 1
     running = 0
     for v in range(n_vertices):
         offsets[v] = running
@@ -285,100 +299,246 @@ def _facet_buckets(cells, n_vertices, n_chunks, offsets, occ, keys):
             running += cnt
     offsets[n_vertices] = running
     for t in nb.prange(n_chunks):
-        s = np.empty(k, dtype=np.int64)
-        perm = np.empty(k, dtype=np.int64)
         for c in range(t * per, min(m, (t + 1) * per)):
-            odd = _sort_cell(cells, c, s, perm)
-            for p in range(k):
-                first = s[1] if p == 0 else s[0]
-                key = 0
-                for j in range(1 if p == 0 else 0, k):
-                    if j != p and s[j] != first:
-                        key = key * n_vertices + s[j]
-                side = (odd + d - p) & 1
-                pos = counts[t, first]
-                occ[pos] = 2 * (c * k + perm[p]) + side
-                keys[pos] = key
-                counts[t, first] = pos + 1
+            a, b = _two_smallest(cells, c)
+            pos = counts[t, a]
+            items[pos] = c
+            counts[t, a] = pos + 1
+            pos = counts[t, b]
+            items[pos] = c
+            counts[t, b] = pos + 1
+
+
+@nb.njit(cache=True)
+def _sort_pairs(keys, occ, n, tmp_keys, tmp_occ):
+    """Sort ``keys[:n]`` (with ``occ``) by key: insertion sort for the usual
+    few entries, a stable merge sort (``numpy.argsort``) for a large bucket
+    (a vertex in very many cells), so no bucket costs quadratic time."""
+    if n <= 48:
+        for i in range(1, n):
+            k = keys[i]
+            o = occ[i]
+            j = i - 1
+            while j >= 0 and keys[j] > k:
+                keys[j + 1] = keys[j]
+                occ[j + 1] = occ[j]
+                j -= 1
+            keys[j + 1] = k
+            occ[j + 1] = o
+        return
+    order = np.argsort(keys[:n], kind="mergesort")
+    for i in range(n):
+        tmp_keys[i] = keys[order[i]]
+        tmp_occ[i] = occ[order[i]]
+    for i in range(n):
+        keys[i] = tmp_keys[i]
+        occ[i] = tmp_occ[i]
+
+
+@nb.njit(cache=True)
+def _facet_bucket(cells, offsets, items, v, s, perm, keys, occ, tmp_keys, tmp_occ):
+    """The facets whose smallest vertex is ``v``, sorted by key: ``keys[i]`` the
+    other vertices as one integer, ``occ[i] = 2 * (c * (d + 1) + e) + side``
+    (``e``: the local vertex of cell ``c`` the facet is opposite to).
+    Returns their number."""
+    k = cells.shape[1]
+    d = k - 1
+    nv = offsets.shape[0] - 1
+    n = 0
+    for i in range(offsets[v], offsets[v + 1]):
+        c = items[i]
+        odd = _sort_cell(cells, c, s, perm)
+        p_lo = 1 if s[0] == v else 0
+        p_hi = k if s[0] == v else 1
+        for p in range(p_lo, p_hi):
+            key = 0
+            for j in range(1 if p > 0 else 2, k):
+                if j != p:
+                    key = key * nv + s[j]
+            keys[n] = key
+            occ[n] = 2 * (c * k + perm[p]) + ((odd + d - p) & 1)
+            n += 1
+    _sort_pairs(keys, occ, n, tmp_keys, tmp_occ)
+    return n
+
+
+@nb.njit(cache=True, inline="always")
+def _cswap(a, pa, b, pb):
+    """One compare-exchange of a sorting network, with the positions; the last
+    value is 1 when it swapped."""
+    if b < a:
+        return b, pb, a, pa, 1
+    return a, pa, b, pb, 0
+
+
+@nb.njit(cache=True, inline="always")
+def _hash_add(table, count, side0, same, claimed, n, key, side, mask):
+    """Count one occurrence of facet ``key`` (seen from ``side``) in the open
+    addressing table of one bucket; returns the number of distinct keys."""
+    h = (key ^ (key >> 17) ^ (key >> 31)) & mask
+    while table[h] != key and table[h] >= 0:
+        h = (h + 1) & mask
+    if table[h] < 0:
+        table[h] = key
+        count[h] = 1
+        side0[h] = side
+        same[h] = 0
+        claimed[n] = h
+        return n + 1
+    count[h] += 1
+    same[h] = 1 if side == side0[h] else 0
+    return n
 
 
 @nb.njit(cache=True, parallel=True)
-def _facet_scan(offsets, occ, keys, n_unique, n_boundary, first_shared, first_fold):
-    """Sort every bucket by key (stable) and classify its facets.
+def _facet_count(cells, offsets, items, n_chunks, table_size, n_unique, n_boundary, defects):
+    """Classify the facets of every vertex's bucket.
 
     Per vertex ``v``: the number of distinct facets and of boundary facets
-    (one cell) with smallest vertex ``v``; the position of the first facet
-    shared by more than two cells and of the first folded facet (-1: none).
-    Returns the counts of both defects.
+    (one cell) with smallest vertex ``v``, and ``defects[v]`` (bit 0: a facet
+    shared by more than two cells, bit 1: a folded facet, two cells on the
+    same side).  Returns the counts of both defects.  Each bucket's facets are
+    counted in a small hash table (``table_size``, a power of two at least
+    twice the largest bucket): the counts do not depend on any order.
     """
     nv = offsets.shape[0] - 1
-    n_shared = 0
-    n_fold = 0
-    for v in nb.prange(nv):
-        lo = offsets[v]
-        hi = offsets[v + 1]
-        _sort_bucket(keys, occ, lo, hi)
-        uniq = 0
-        bnd = 0
-        shared_at = -1
-        fold_at = -1
-        shared_here = 0
-        fold_here = 0
-        i = lo
-        while i < hi:
-            j = i + 1
-            while j < hi and keys[j] == keys[i]:
-                j += 1
-            uniq += 1
-            if j - i == 1:
-                bnd += 1
-            elif j - i == 2:
-                if (occ[i] & 1) == (occ[i + 1] & 1):
-                    fold_here += 1
-                    if fold_at < 0:
-                        fold_at = i
-            else:
-                shared_here += 1
-                if shared_at < 0:
-                    shared_at = i
-            i = j
-        n_unique[v] = uniq
-        n_boundary[v] = bnd
-        first_shared[v] = shared_at
-        first_fold[v] = fold_at
-        n_shared += shared_here
-        n_fold += fold_here
-    return n_shared, n_fold
+    per = (nv + n_chunks - 1) // n_chunks
+    found = np.zeros((n_chunks, 2), dtype=np.int64)
+    for t in nb.prange(n_chunks):
+        _count_range(cells, offsets, items, t * per, min(nv, (t + 1) * per), table_size,
+                     n_unique, n_boundary, defects, found[t])
+    return found[:, 0].sum(), found[:, 1].sum()
+
+
+@nb.njit(cache=True)
+def _count_range(cells, offsets, items, v_lo, v_hi, table_size, n_unique, n_boundary, defects,
+                 found):
+    """:func:`_facet_count` for the vertices ``v_lo .. v_hi - 1``; adds the
+    numbers of shared and of folded facets to ``found[0]``, ``found[1]``."""
+    nv = offsets.shape[0] - 1
+    k = cells.shape[1]
+    mask = table_size - 1
+    table = np.full(table_size, -1, dtype=np.int64)
+    count = np.zeros(table_size, dtype=np.int32)
+    side0 = np.zeros(table_size, dtype=np.int8)
+    same = np.zeros(table_size, dtype=np.int8)
+    claimed = np.empty(table_size, dtype=np.int64)
+    if True:
+        for v in range(v_lo, v_hi):
+            n = 0
+            for i in range(offsets[v], offsets[v + 1]):
+                c = items[i]
+                # the cell's vertices sorted by a network; odd: the parity of the sort.
+                # The facet without the p-th smallest vertex sees the cell from side
+                # (odd + d - p) & 1; its key is its vertices other than v.
+                if k == 4:
+                    a0, q0, a1, q1, x1 = _cswap(cells[c, 0], 0, cells[c, 1], 1)
+                    a2, q2, a3, q3, x2 = _cswap(cells[c, 2], 2, cells[c, 3], 3)
+                    a0, q0, a2, q2, x3 = _cswap(a0, q0, a2, q2)
+                    a1, q1, a3, q3, x4 = _cswap(a1, q1, a3, q3)
+                    a1, q1, a2, q2, x5 = _cswap(a1, q1, a2, q2)
+                    odd = x1 ^ x2 ^ x3 ^ x4 ^ x5
+                    if a0 == v:
+                        n = _hash_add(table, count, side0, same, claimed, n,
+                                      a2 * nv + a3, odd ^ 0, mask)
+                        n = _hash_add(table, count, side0, same, claimed, n,
+                                      a1 * nv + a3, odd ^ 1, mask)
+                        n = _hash_add(table, count, side0, same, claimed, n,
+                                      a1 * nv + a2, odd, mask)
+                    else:
+                        n = _hash_add(table, count, side0, same, claimed, n,
+                                      a2 * nv + a3, odd ^ 1, mask)
+                else:
+                    a0, q0, a1, q1, x1 = _cswap(cells[c, 0], 0, cells[c, 1], 1)
+                    a1, q1, a2, q2, x2 = _cswap(a1, q1, cells[c, 2], 2)
+                    a0, q0, a1, q1, x3 = _cswap(a0, q0, a1, q1)
+                    odd = x1 ^ x2 ^ x3
+                    if a0 == v:
+                        n = _hash_add(table, count, side0, same, claimed, n, a2, odd ^ 1,
+                                      mask)
+                        n = _hash_add(table, count, side0, same, claimed, n, a1, odd, mask)
+                    else:
+                        n = _hash_add(table, count, side0, same, claimed, n, a2, odd, mask)
+            bnd = 0
+            shared_here = 0
+            fold_here = 0
+            for j in range(n):
+                h = claimed[j]
+                cnt = count[h]
+                if cnt == 1:
+                    bnd += 1
+                elif cnt == 2:
+                    fold_here += same[h]
+                else:
+                    shared_here += 1
+                table[h] = -1
+            n_unique[v] = n
+            n_boundary[v] = bnd
+            defects[v] = (1 if shared_here else 0) + (2 if fold_here else 0)
+            found[0] += shared_here
+            found[1] += fold_here
 
 
 @nb.njit(cache=True, parallel=True)
-def _facet_fill(cells, offsets, occ, keys, start, facets, facet_cells, facet_local):
-    """The boundary facets (sorted vertex ids), their cells and local indices,
-    in lexicographic order of the facets."""
+def _facet_fill(cells, offsets, items, verts, start, n_chunks, max_bucket, facets,
+                facet_cells, facet_local):
+    """The boundary facets of the vertices ``verts`` (sorted vertex ids), their
+    cells and local indices, from position ``start[i]`` for ``verts[i]``: in
+    lexicographic order of the facets when ``verts`` ascends."""
     nv = offsets.shape[0] - 1
     k = cells.shape[1]
     d = k - 1
-    for v in nb.prange(nv):
-        out = start[v]
-        lo = offsets[v]
-        hi = offsets[v + 1]
-        i = lo
-        while i < hi:
-            j = i + 1
-            while j < hi and keys[j] == keys[i]:
-                j += 1
-            if j - i == 1:
-                o = occ[i] >> 1
-                c = o // k
-                facets[out, 0] = v
-                key = keys[i]
-                for r in range(d - 1, 0, -1):
-                    facets[out, r] = key % nv
-                    key //= nv
-                facet_cells[out] = c
-                facet_local[out] = o % k
-                out += 1
-            i = j
+    nw = verts.shape[0]
+    per = (nw + n_chunks - 1) // n_chunks
+    for t in nb.prange(n_chunks):
+        s = np.empty(k, dtype=np.int64)
+        perm = np.empty(k, dtype=np.int64)
+        keys = np.empty(max_bucket, dtype=np.int64)
+        occ = np.empty(max_bucket, dtype=np.int64)
+        tmp_keys = np.empty(max_bucket, dtype=np.int64)
+        tmp_occ = np.empty(max_bucket, dtype=np.int64)
+        for w in range(t * per, min(nw, (t + 1) * per)):
+            v = verts[w]
+            n = _facet_bucket(cells, offsets, items, v, s, perm, keys, occ, tmp_keys, tmp_occ)
+            out = start[w]
+            i = 0
+            while i < n:
+                j = i + 1
+                while j < n and keys[j] == keys[i]:
+                    j += 1
+                if j - i == 1:
+                    o = occ[i] >> 1
+                    facets[out, 0] = v
+                    key = keys[i]
+                    for r in range(d - 1, 0, -1):
+                        facets[out, r] = key % nv
+                        key //= nv
+                    facet_cells[out] = o // k
+                    facet_local[out] = o % k
+                    out += 1
+                i = j
+
+
+def _defect_example(cells, offsets, items, v, max_bucket, shared):
+    """``(vertices, cells)`` of the first facet of vertex ``v``'s bucket that is
+    shared by more than two cells (``shared``) or folded."""
+    k = cells.shape[1]
+    bufs = [np.empty(max_bucket, dtype=np.int64) for _ in range(4)]
+    n = _facet_bucket(cells, offsets, items, v, np.empty(k, dtype=np.int64),
+                      np.empty(k, dtype=np.int64), *bufs)
+    keys, occ = bufs[0][:n], bufs[1][:n]
+    i = 0
+    while i < n:
+        j = i + 1
+        while j < n and keys[j] == keys[i]:
+            j += 1
+        if (j - i > 2) if shared else (j - i == 2 and (occ[i] & 1) == (occ[i + 1] & 1)):
+            owners = sorted(int(o) >> 1 for o in occ[i:j])
+            c, e = divmod(owners[0], k)
+            verts = sorted(int(x) for x in np.delete(cells[c], e))
+            return verts, [o // k for o in owners]
+        i = j
+    raise AssertionError("no defective facet in the bucket that reported one")
 
 
 def facet_topology(cells: np.ndarray, n_vertices: int):
@@ -403,35 +563,38 @@ def facet_topology(cells: np.ndarray, n_vertices: int):
     m, k = cells.shape
     if n_vertices >= 2**31:
         raise ValueError("facet_topology: more than 2**31 vertices are not supported")
-    offsets = np.zeros(n_vertices + 1, dtype=np.int64)
-    occ = np.empty(m * k, dtype=index_dtype(2 * m * k))
-    keys = np.empty(m * k, dtype=np.int64)
-    n_chunks = max(1, min(nb.get_num_threads(), m))
-    _facet_buckets(cells, n_vertices, n_chunks, offsets, occ, keys)
+    threads = nb.get_num_threads()
+    offsets = np.empty(n_vertices + 1, dtype=np.int64)
+    items = np.empty(2 * m, dtype=index_dtype(m))
+    _facet_incidence(cells, n_vertices, max(1, min(threads, m)), offsets, items)
+    # a facet per cell where v is the second smallest vertex, d where it is the smallest
+    max_bucket = max(1, int(np.diff(offsets).max()) * (k - 1))
     n_unique = np.empty(n_vertices, dtype=np.int64)
-    n_bnd = np.empty(n_vertices + 1, dtype=np.int64)
-    first_shared = np.empty(n_vertices, dtype=np.int64)
-    first_fold = np.empty(n_vertices, dtype=np.int64)
-    n_shared, n_fold = _facet_scan(offsets, occ, keys, n_unique, n_bnd[1:], first_shared,
-                                   first_fold)
+    n_bnd = np.empty(n_vertices, dtype=np.int64)
+    defects = np.empty(n_vertices, dtype=np.uint8)
+    # more chunks than threads: buckets differ in cost (the results do not depend on it)
+    chunks = max(1, min(8 * threads, n_vertices))
+    table_size = 16
+    while table_size < 2 * max_bucket:
+        table_size *= 2
+    n_shared, n_fold = _facet_count(cells, offsets, items, chunks, table_size, n_unique, n_bnd,
+                                    defects)
     out = {"n_facets": int(n_unique.sum()), "shared": int(n_shared), "folded": int(n_fold)}
-    for name, first in (("shared", first_shared), ("folded", first_fold)):
+    for name, bit in (("shared", 1), ("folded", 2)):
         if out[name]:
-            v = int(np.flatnonzero(first >= 0)[0])
-            i = int(first[v])
-            j = i
-            while j < offsets[v + 1] and keys[j] == keys[i]:
-                j += 1
-            owners = sorted(int(o) >> 1 for o in occ[i:j])
-            c, e = divmod(owners[0], k)
-            verts = sorted(int(x) for x in np.delete(cells[c], e))
-            out[name + "_example"] = (verts, [o // k for o in owners])
-    n_bnd[0] = 0
-    start = np.cumsum(n_bnd)
-    nb_total = int(start[-1])
+            v = int(np.flatnonzero(defects & bit)[0])
+            out[name + "_example"] = _defect_example(cells, offsets, items, v, max_bucket,
+                                                     name == "shared")
+    verts = np.flatnonzero(n_bnd).astype(np.int64)
+    counts = n_bnd[verts]
+    start = np.zeros(verts.size, dtype=np.int64)
+    np.cumsum(counts[:-1], out=start[1:])
+    nb_total = int(counts.sum())
     facets = np.empty((nb_total, k - 1), dtype=cells.dtype)
     facet_cells = np.empty(nb_total, dtype=index_dtype(m))
     facet_local = np.empty(nb_total, dtype=np.int8)
-    _facet_fill(cells, offsets, occ, keys, start, facets, facet_cells, facet_local)
+    if verts.size:
+        _facet_fill(cells, offsets, items, verts, start, max(1, min(8 * threads, verts.size)),
+                    max_bucket, facets, facet_cells, facet_local)
     out.update(facets=facets, facet_cells=facet_cells, facet_local=facet_local)
     return out

@@ -65,6 +65,12 @@ EBIS = "tests/test_bisection.py::test_refinement_is_conforming_nested_and_keeps_
 EBIS3 = ("tests/test_bisection3d.py::test_local_bisection_is_conforming_nested_and_keeps_tags_"
          "and_regions")
 EANG3 = "tests/test_bisection3d.py::test_angles_stay_bounded_under_repeated_refinement"
+_E3 = "tests/test_estimators3d.py::test_"
+E3OSC = f"{_E3}oscillation_terms_equal_their_closed_forms_in_3d"
+E3PATCH = f"{_E3}patch_test_linear_solution_gives_a_zero_bound_in_3d"
+E3RES = f"{_E3}residual_estimator_equals_its_closed_form_on_one_cube_in_3d"
+E3LOOSE = f"{_E3}bound_survives_a_loose_iterative_solve_in_3d"
+E3RT = f"{_E3}raviart_thomas_mass_and_misfit_equal_a_collapsed_gauss_rule"
 ESMOOTH = (f"{_E}bound_is_above_the_error_of_a_smooth_solution_on_every_level_with_"
            "effectivity_below_1_5")
 FLUX_WALL = "tests/test_fluxes.py::test_composite_wall_flux_equals_the_series_resistance_formula[2]"
@@ -73,14 +79,40 @@ FLUX_BAL = "tests/test_fluxes.py::test_consistent_fluxes_of_all_tags_sum_to_minu
 REG_K = "tests/test_regions.py::test_region_dict_stiffness_equals_per_cell_values"
 FOLD = ("tests/test_bad_input.py::test_inverted_cell_overlapping_its_neighbour_is_refused_"
         "naming_both_cells")
+FOLD3 = ("tests/test_bad_input.py::test_inverted_tetrahedron_overlapping_its_neighbour_is_"
+         "refused_naming_both_cells")
+_FNP = "tests/test_mesh.py::test_boundary_facets_equal_a_numpy_count_of_all_facet_occurrences"
+FACETS_NP, FACETS_NP_RING = f"{_FNP}[0]", f"{_FNP}[3]"
+_M = "tests/test_mesh.py::test_"
+NONMANIFOLD = f"{_M}three_triangles_sharing_one_edge_are_non_manifold"
+REORIENT = f"{_M}negatively_oriented_cells_are_reoriented_and_counted"
+CELL_TABLES = f"{_M}generators_write_the_cell_tables_counted_by_hand"
+SIDE_TAGS = f"{_M}side_tags_have_the_right_sizes_and_lie_on_their_side"
+TAG_IDS = f"{_M}facet_tags_are_sorted_unique_copies_whatever_the_ids_given"
 
 # (name, file relative to kernel/, old text, new text[, test to run first]); old must
 # occur exactly once.  The test to run first is the one seen to kill the fault: it saves
 # running the selection up to it; the whole selection still runs if it passes.
 MUTANTS = [
-    ("folded facets never detected (two cells on the same side pass)", "topology.py",
-     "if (occ[i] & 1) == (occ[i + 1] & 1):", "if (occ[i] & 1) == (occ[i + 1] & 1) + 2:",
-     FOLD),
+    ("facet pass: folded facets never detected (two cells on the same side pass)", "topology.py",
+     "same[h] = 1 if side == side0[h] else 0", "same[h] = 0", FOLD),
+    ("facet pass: a facet of exactly three cells not counted as shared", "topology.py",
+     "else:\n                    shared_here += 1", "elif cnt > 3:\n                    shared_here += 1",
+     NONMANIFOLD),
+    ("facet pass: boundary facets with the wrong local index", "topology.py",
+     "facet_local[out] = o % k", "facet_local[out] = (o + 1) % k", FACETS_NP),
+    ("facet pass: large facet buckets sorted in reverse", "topology.py",
+     "tmp_keys[i] = keys[order[i]]\n        tmp_occ[i] = occ[order[i]]",
+     "tmp_keys[i] = keys[order[n - 1 - i]]\n        tmp_occ[i] = occ[order[n - 1 - i]]",
+     FACETS_NP_RING),
+    ("cell check: re-oriented cells not counted", "mesh.py",
+     "n_negative += 1 if negative else 0", "n_negative += 0", REORIENT),
+    ("generator: second triangle of each square listed clockwise", "generators.py",
+     "[0, nx + 2, nx + 1]]", "[0, nx + 1, nx + 2]]", CELL_TABLES),
+    ("side tags: the upper sides never tagged", "generators.py",
+     "if abs(x - upper[a]) <= tol:", "if abs(x - upper[a]) < -tol:", SIDE_TAGS),
+    ("set_facet_tag: unsorted ids kept as given", "mesh.py",
+     "if ids.size > 1 and not (ids[1:] > ids[:-1]).all():", "if False:", TAG_IDS),
     ("l2_error scaled by 1.03", "functionals.py",
      "t = _integrate(disc, u, _L2, exact=exact, quadrature_degree=quadrature_degree)\n"
      "    return t if per_cell else float(np.sqrt(max(t.sum(), 0.0)))",
@@ -123,6 +155,10 @@ MUTANTS = [
     ("P4 mass quadrature one degree short", "assembly.py",
      "mass_table(mesh.dim, k, 2 * k).sum(axis=0, keepdims=True)",
      "mass_table(mesh.dim, k, 2 * k - (k == 4)).sum(axis=0, keepdims=True)", A24),
+    ("pattern sort: heapsort sifts towards the smaller child (long rows unsorted)",
+     "assembly.py", "if child + 1 < end and a[lo + child + 1] > a[lo + child]:",
+     "if child + 1 < end and a[lo + child + 1] < a[lo + child]:",
+     "tests/test_assembly.py::test_p4_tetrahedra_long_rows_match_coo_reference"),
     ("transposed local matrix: scatter reads the (unset) lower triangle", "assembly.py",
      "data[base + posmap[p, a, b]] += Kloc[b, a]", "data[base + posmap[p, a, b]] += Kloc[a, b]"),
     ("boundary load: sign flipped", "assembly.py",
@@ -183,6 +219,20 @@ MUTANTS = [
      "todo = (mid_keys[p] == ek).any(axis=1)", "todo = (mid_keys[p] == ek).all(axis=1)", EBIS3),
     ("tet bisection: type A cells bisected as tagged simplices", "bisection3d.py",
      "c2[ta] = np.stack([x1, z, x3, x2], axis=1)[ta]", "pass", EANG3),
+    ("3D error bound: trace constant without its 2/(3 pi) part", "estimators3d.py",
+     "(1 / math.pi**2 + 2 / (3 * math.pi))", "(1 / math.pi**2)", E3OSC),
+    ("3D error bound: patch target with half, not a third, of each face flux",
+     "estimators3d.py", "acc += mjk * qf[c, ik] / 3.0", "acc += mjk * qf[c, ik] / 2.0", E3PATCH),
+    ("3D error bound: routed residual flux dropped", "estimators3d.py",
+     "F = P.sum(axis=1) + T", "F = P.sum(axis=1)", E3LOOSE),
+    ("3D residual estimator: full jump on each side", "estimators3d.py",
+     "jump**2 / (2 * lamF)", "jump**2 / lamF", E3RES),
+    ("3D error bound: flux misfit integral with 1/24 for 1/20", "estimators3d.py",
+     "return vol / 20 * (", "return vol / 24 * (", E3RT),
+    ("3D error bound: Raviart-Thomas mass matrix with 15 for 16", "estimators3d.py",
+     "t1 = 16 * np.einsum", "t1 = 15 * np.einsum", E3RT),
+    ("3D error bound: a divergence row with its signs flipped", "estimators3d.py",
+     "A[rr, uj] += ps[p, j]", "A[rr, uj] -= ps[p, j]", E3PATCH),
     ("multigrid Galerkin product scaled (coarse operator 1.5 P^T A P)", "multigrid.py",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n        c_val = 1.5 * c_val\n"),
@@ -229,13 +279,14 @@ SELECTION = [
     *(f"{_F}norms_and_energy_of_an_interpolated_polynomial_equal_sympy_integrals[{c}]"
       for c in ("2-1", "2-2", "3-2")),
     *(f"{_F}zero_against_products_of_sines_gives_the_closed_forms[{c}]" for c in ("2-1", "3-1")),
-    FOLD,
+    FOLD, FOLD3, _FNP, NONMANIFOLD, REORIENT, CELL_TABLES, SIDE_TAGS, TAG_IDS,
     "tests/test_boundary.py",
     "tests/test_regions.py",
     "tests/test_fluxes.py",
     "tests/test_problem.py::test_neumann_manufactured_solution_rates[1-5]",
     "tests/test_problem.py::test_square_dirichlet_rates_are_k_plus_1_in_l2_and_k_in_h1[1-5-4]",
     EOSC, EPATCH, ERES, ELOOSE, ESMOOTH, EMARK, EBIS, EBIS3, EANG3,
+    E3OSC, E3PATCH, E3RES, E3LOOSE, E3RT,
 ]
 
 

@@ -158,6 +158,17 @@ def test_inverted_cell_overlapping_its_neighbour_is_refused_naming_both_cells():
         gk.Mesh(p, mesh.cells)
 
 
+def test_inverted_tetrahedron_overlapping_its_neighbour_is_refused_naming_both_cells():
+    mesh = gk.structured_tetrahedra(3, 3, 3)
+    p = mesh.points.copy()
+    # vertex 21 (interior, at (1/3, 1/3, 1/3)) pushed out of the polytope of its cells
+    assert np.allclose(p[21], [1 / 3, 1 / 3, 1 / 3])
+    p[21] = [0.9, 0.1, 0.5]
+    with pytest.raises(MeshError, match=r"cells 0 and 7 lie on the same side of their shared "
+                                        r"facet with vertices \[1, 5, 21\] \(16 such facets\)"):
+        gk.Mesh(p, mesh.cells)
+
+
 def test_consistently_reoriented_cells_are_accepted_and_counted():
     # common practice: a cell listed clockwise is re-oriented, not refused
     mesh = gk.Mesh(SQUARE, [[0, 2, 1], [1, 3, 2]])

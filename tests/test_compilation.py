@@ -76,8 +76,8 @@ def test_forced_recompilation_shows_the_compile_line_and_a_warm_run_does_not(
     out, err = capsys.readouterr()
     assert "compile " not in out and "compiling" not in err
     # force one kernel of the run to compile again: a new dispatcher, no cache
-    fresh = nb.njit(parallel=True)(assembly._p1_stiffness.py_func)
-    monkeypatch.setattr(assembly, "_p1_stiffness", fresh)
+    fresh = nb.njit(parallel=True)(assembly._p1_stiffness_2d.py_func)
+    monkeypatch.setattr(assembly, "_p1_stiffness_2d", fresh)
     assert main(args) == 0
     out, err = capsys.readouterr()
     lines = [ln for ln in out.splitlines() if ln.split()[:1] == ["compile"]]

@@ -118,6 +118,58 @@ def test_boundary_facets_are_the_facets_of_their_cells_opposite_the_local_vertex
     assert len({tuple(f) for f in mesh.boundary_facets.tolist()}) == len(mesh.boundary_facets)
 
 
+def _numpy_facets(cells):
+    """Every facet occurrence by plain NumPy (sort all of them, group equal rows):
+    the boundary facets (one cell) in lexicographic order with their cell and
+    opposite local vertex, the number of distinct facets and the largest
+    multiplicity; independent of galerkit.topology."""
+    m, k = cells.shape
+    occ = np.sort(np.stack([np.delete(cells, e, axis=1) for e in range(k)], axis=1), axis=2)
+    flat = occ.reshape(m * k, k - 1)
+    uniq, first, counts = np.unique(flat, axis=0, return_index=True, return_counts=True)
+    once = counts == 1
+    return uniq[once], first[once] // k, first[once] % k, len(uniq), int(counts.max())
+
+
+def _random_meshes():
+    from scipy.spatial import Delaunay  # SciPy's Qhull triangulation: an outside mesh source
+
+    rng = np.random.default_rng(3)
+    out = []
+    for dim, n in ((2, 400), (3, 150)):
+        p = rng.random((n, dim))
+        t = Delaunay(p).simplices
+        # renumber the vertices, permute the cells, shuffle each cell's vertices
+        new = rng.permutation(n)
+        q = np.empty_like(p)
+        q[new] = p
+        c = new[t][rng.permutation(len(t))]
+        c = np.take_along_axis(c, np.argsort(rng.random(c.shape), axis=1), axis=1)
+        out.append(Mesh(q, c))
+    # a fan of 300 triangles and a ring of 200 tetrahedra around one edge: buckets of
+    # hundreds of facets at one vertex
+    a = np.linspace(0, 2 * np.pi, 301)[:-1]
+    fan = np.c_[np.zeros(300, int), 1 + np.arange(300), 1 + (np.arange(300) + 1) % 300]
+    out.append(Mesh(np.vstack([[0.0, 0.0], np.c_[np.cos(a), np.sin(a)]]), fan[:, ::-1]))
+    a = np.linspace(0, 2 * np.pi, 201)[:-1]
+    ring = np.c_[np.zeros(200, int), np.ones(200, int), 2 + np.arange(200),
+                 2 + (np.arange(200) + 1) % 200]
+    out.append(Mesh(np.vstack([[0.0, 0.0, 0.0], [0.0, 0.0, 1.0],
+                               np.c_[np.cos(a), np.sin(a), 0 * a]]), ring))
+    return out
+
+
+@pytest.mark.parametrize("which", range(4))
+def test_boundary_facets_equal_a_numpy_count_of_all_facet_occurrences(which):
+    mesh = _random_meshes()[which]
+    facets, cells, local, n_facets, most = _numpy_facets(mesh.cells)
+    assert most == 2
+    np.testing.assert_array_equal(mesh.boundary_facets, facets)
+    np.testing.assert_array_equal(mesh.boundary_facet_cells, cells)
+    np.testing.assert_array_equal(mesh.boundary_facet_local, local)
+    assert mesh.n_facets == n_facets
+
+
 def _box_tag_sizes(counts):
     if len(counts) == 2:
         nx, ny = counts
@@ -198,6 +250,34 @@ def test_facet_tag_errors_name_the_tag_and_the_bad_id():
         mesh.tagged_facets("nope")
     with pytest.raises(MeshError, match="non-empty"):
         mesh.set_facet_tag("", [0])
+
+
+def test_generators_write_the_cell_tables_counted_by_hand():
+    # by hand: vertices numbered x fastest; squares cut from lower-left to upper-right;
+    # the unit cube's six Kuhn tetrahedra around the diagonal 0 -> 7, one per axis order
+    tri = structured_triangles(2, 1)
+    np.testing.assert_array_equal(tri.cells, [[0, 1, 4], [0, 4, 3], [1, 2, 5], [1, 5, 4]])
+    np.testing.assert_array_equal(tri.points, [[0, 0], [0.5, 0], [1, 0], [0, 1], [0.5, 1],
+                                               [1, 1]])
+    tet = structured_tetrahedra(1, 1, 1)
+    np.testing.assert_array_equal(tet.cells, [[0, 1, 3, 7], [0, 2, 6, 7], [0, 4, 5, 7],
+                                              [0, 1, 7, 5], [0, 4, 7, 6], [0, 2, 7, 3]])
+    assert tri.n_reoriented == 0 and tet.n_reoriented == 0
+    box = structured_tetrahedra(2, 3, 2)
+    assert box.points[2 + 3 * (1 + 4 * 1)].tolist() == [1.0, 1 / 3, 0.5]
+    # box (i, j, k) = (1, 2, 1) is box 1 + 2 * (2 + 3 * 1) = 11; its lowest vertex
+    # is 1 + 3 * (2 + 4 * 1) = 19
+    assert box.cells[6 * 11].tolist() == [19, 20, 23, 35]
+
+
+def test_facet_tags_are_sorted_unique_copies_whatever_the_ids_given():
+    mesh = structured_triangles(2, 2)
+    given = np.array([5, 1, 5, 3])
+    assert mesh.set_facet_tag("a", given).tolist() == [1, 3, 5]
+    inc = np.array([0, 2, 7])
+    ids = mesh.set_facet_tag("b", inc)
+    assert ids.tolist() == [0, 2, 7] and not np.shares_memory(ids, inc)
+    assert mesh.set_facet_tag("c", [4, 4]).tolist() == [4]
 
 
 def test_mesh_arrays_are_read_only_float64_points_and_int32_cells():

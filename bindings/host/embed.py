@@ -86,7 +86,7 @@ import numba as nb
 import numpy as np
 import scipy.sparse as sp
 
-from galerkit.assembly import (_generic_matrix, _generic_vector, _p1_stiffness, chunk_plan,
+from galerkit.assembly import (_generic_matrix, _generic_vector, p1_stiffness_kernel, chunk_plan,
                                load_table, mass_reference, mass_table, stiffness_table,
                                symbolic_phase)
 from galerkit.coefficients import evaluate_callable, tensor_values
@@ -729,8 +729,8 @@ def stiffness(points, plan, data, conductivity=1.0):
                          + _plan_inputs(plan))
     rows, windows = plan["chunk_rows"], plan["chunk_cells"]
     if k == 1:
-        _p1_stiffness(p, plan["cells"], plan["cell_order"], plan["position_map"], plan["indptr"],
-                      rows, windows, kappa, tensor, data)
+        p1_stiffness_kernel(d)(p, plan["cells"], plan["cell_order"], plan["position_map"],
+                               plan["indptr"], rows, windows, kappa, tensor, data)
     else:
         R = reference_tables(d, k)["stiffness"]
         _generic_matrix(p, plan["cells"], plan["cell_dofs"], plan["cell_order"],
