@@ -15,17 +15,29 @@ a folder of your choice, or ``NUMBA_CACHE_DIR`` for every numba program.  A
 cache entry is keyed on the source file's path and modification time, so an
 upgraded install recompiles once.  ``galerkit warm-up`` compiles the common
 kernels ahead of time.
+
+Compiling ahead (:func:`start_compile_ahead`): numba compiles on one core.  When
+a command starts compiling, the command line starts a second process that
+compiles the solver's kernels (``cg-amg``: multigrid and sparse kernels, the same
+signatures, see :func:`galerkit.multigrid.compile_solver_kernels`) into the same
+cache while this process compiles the mesh and assembly kernels;
+:func:`wait_for_compile_ahead`, called before the solver set-up, waits for it and
+counts the wait as compile time.  ``GALERKIT_COMPILE_AHEAD=0`` turns it off.
 """
 
 from __future__ import annotations
 
+import atexit
 import os
+import subprocess
+import sys
 import time
 
 from numba.core import config as _config
 from numba.core import event as _event
 
-__all__ = ["compile_seconds", "PhaseSeconds", "cache_folder", "on_first_compile"]
+__all__ = ["compile_seconds", "PhaseSeconds", "cache_folder", "on_first_compile",
+           "start_compile_ahead", "wait_for_compile_ahead"]
 
 _state = {"seconds": 0.0, "depth": 0, "start": 0.0, "count": 0, "announce": None}
 
@@ -63,6 +75,75 @@ def compile_count() -> int:
 def on_first_compile(callback) -> None:
     """Call ``callback()`` once, when the next kernel compilation starts (None: never)."""
     _state["announce"] = callback
+
+
+_ahead = {"proc": None, "closed": False}
+
+#: the second process's program (kernel module only: it never imports bindings)
+_AHEAD_CODE = "from galerkit.multigrid import compile_solver_kernels; compile_solver_kernels()"
+
+
+def start_compile_ahead() -> bool:
+    """Start compiling the solver's kernels in a second process (once per process).
+
+    Returns False (and starts nothing) when one was started already, when the
+    solver set-up has begun (:func:`wait_for_compile_ahead` was called), when
+    ``GALERKIT_COMPILE_AHEAD=0``, on a single core, or when no process can be
+    started.  The process writes into this process's cache folder; it is
+    stopped when this process exits.
+    """
+    if _ahead["proc"] is not None or _ahead["closed"] \
+            or os.environ.get("GALERKIT_COMPILE_AHEAD", "1") == "0":
+        return False
+    if (os.cpu_count() or 1) < 2:
+        return False
+    env = dict(os.environ)
+    if _config.CACHE_DIR:
+        env["NUMBA_CACHE_DIR"] = str(_config.CACHE_DIR)
+    try:
+        _ahead["proc"] = subprocess.Popen([sys.executable, "-c", _AHEAD_CODE], env=env,
+                                          stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                                          stderr=subprocess.DEVNULL)
+    except OSError:
+        _ahead["proc"] = False
+        return False
+    atexit.register(_stop_ahead)
+    return True
+
+
+def wait_for_compile_ahead(timeout: float = 900.0) -> float:
+    """Wait for the process of :func:`start_compile_ahead`, if one runs; seconds waited.
+
+    The wait is compilation (the other process compiles what this one is about
+    to run), so it is added to :func:`compile_seconds`.  Past ``timeout`` this
+    process goes on and compiles what it still needs itself.
+    """
+    proc = _ahead["proc"]
+    # from here on this process compiles the solver's kernels itself: a second
+    # process started later would only repeat that work, and one is waited for once
+    if _ahead["closed"]:
+        return 0.0
+    _ahead["closed"] = True
+    if not proc or proc.poll() is not None or _state["depth"] > 0:
+        return 0.0
+    t0 = time.perf_counter()
+    try:
+        proc.wait(timeout)
+    except subprocess.TimeoutExpired:
+        pass
+    waited = time.perf_counter() - t0
+    _state["seconds"] += waited
+    return waited
+
+
+def _stop_ahead():
+    proc = _ahead["proc"]
+    if proc and proc.poll() is None:
+        proc.terminate()
+        try:
+            proc.wait(5)
+        except subprocess.TimeoutExpired:
+            proc.kill()
 
 
 class PhaseSeconds(dict):

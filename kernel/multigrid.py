@@ -65,6 +65,7 @@ import scipy.sparse as sp
 from numba import types as _nbt
 from numba.typed import List
 
+from . import compilation
 from .errors import InputError
 from .sparse import (_chunks, cg_update, dot, matvec_add_into, matvec_into, residual_into,
                      spgemm, transpose, xpby_into)
@@ -815,6 +816,7 @@ def build_hierarchy(A, *, coarse_space=None, theta=DEFAULTS["theta"],
         An option out of range, a row without a positive diagonal, a
         ``coarse_space`` of the wrong shape.
     """
+    compilation.wait_for_compile_ahead()  # a second process may be compiling our kernels
     where = "solver 'cg-amg'"
     _check_real(theta, "theta", 0.0, 1.0, where, low_open=False)
     _check_real(smoother_lower, "smoother_lower", 0.0, 1.0, where)
@@ -970,3 +972,29 @@ def p1_coarse_space(disc, free):
     is_free[free] = True
     vertex_free = np.flatnonzero(is_free[np.asarray(disc.vertex_dofs)])
     return sp.csr_array(I[np.asarray(free)][:, vertex_free])
+
+
+def compile_solver_kernels(n: int = 30) -> None:
+    """Compile (or load) the kernels of solver ``cg-amg`` on a small system.
+
+    A 5-point Laplacian on an ``n`` x ``n`` grid (more unknowns than the dense
+    coarsest level, so aggregation, prolongators and Galerkin products run),
+    through the same entry points as any solve: every array is normalised at
+    those boundaries, so the signatures are those of every ``cg-amg`` solve.
+    Run by the command line's second process (galerkit.compilation) and by
+    ``galerkit warm-up``.
+    """
+    from .solvers import prepare_solver
+
+    t = sp.diags([-1.0, 2.0, -1.0], [-1, 0, 1], shape=(n, n))
+    A = sp.coo_array(sp.kron(t, sp.eye(n)) + sp.kron(sp.eye(n), t))
+    # stored exact zeros on the diagonal neighbours, as right angles give an
+    # assembled matrix: the pruning kernels run too
+    o = sp.coo_array(sp.kron(sp.diags([1.0, 1.0], [-1, 1], shape=(n, n)),
+                             sp.diags([1.0, 1.0], [-1, 1], shape=(n, n))))
+    A = sp.csr_array((np.concatenate([A.data, 0.0 * o.data]),
+                      (np.concatenate([A.row, o.row]), np.concatenate([A.col, o.col]))),
+                     shape=(n * n, n * n))
+    A.sum_duplicates()
+    assert A.nnz > np.count_nonzero(A.data)
+    prepare_solver(A, method="cg-amg").solve(np.ones(n * n), rtol=1e-8)

@@ -134,3 +134,66 @@ def test_cache_falls_back_to_a_user_wide_folder_when_the_sources_cannot_hold_it(
     cached = [f for _, _, files in os.walk(cache) for f in files]
     assert any(f.startswith("mod.twice") and f.endswith(".nbi") for f in cached), cached
     assert (pkg / "__pycache__").read_text() == "not a folder"
+
+
+# -- compiling ahead in a second process ---------------------------------------------
+def test_waiting_for_the_second_process_counts_as_compile_time(monkeypatch):
+    proc = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(0.2)"])
+    monkeypatch.setitem(compilation._ahead, "proc", proc)
+    monkeypatch.setitem(compilation._ahead, "closed", False)
+    s0 = compile_seconds()
+    sec = PhaseSeconds()
+    waited = compilation.wait_for_compile_ahead()
+    sec["solver_setup"] = waited
+    assert proc.poll() == 0 and waited > 0.0
+    assert compile_seconds() - s0 == pytest.approx(waited)
+    assert sec["compile"] == pytest.approx(waited) and sec["solver_setup"] == 0.0
+    assert compilation.wait_for_compile_ahead() == 0.0  # waited once: never again
+    # none once the solver set-up has begun, one per process, none when turned off
+    monkeypatch.setitem(compilation._ahead, "proc", None)
+    assert compilation.start_compile_ahead() is False
+    monkeypatch.setitem(compilation._ahead, "closed", False)
+    monkeypatch.setitem(compilation._ahead, "proc", proc)
+    assert compilation.start_compile_ahead() is False
+    monkeypatch.setitem(compilation._ahead, "proc", None)
+    monkeypatch.setenv("GALERKIT_COMPILE_AHEAD", "0")
+    assert compilation.start_compile_ahead() is False
+
+
+_RECORD = """
+import json, sys
+from numba.core import event
+names = []
+class L(event.Listener):
+    def on_start(self, ev):
+        f = getattr(ev.data.get("dispatcher"), "py_func", None)
+        names.append(f.__module__ + "." + f.__qualname__ if f else "?")
+    def on_end(self, ev):
+        pass
+event.register("numba:compile", L())
+import galerkit as gk
+mesh = gk.structured_triangles(30, 20)
+p = gk.PoissonProblem(mesh, conductivity=2.0, source=lambda x: 1.0 + x[0],
+                      robin={"ymin": (3.0, 1.0)})
+sol = p.solve(degree=1, method="cg-amg")
+assert sol.report.converged
+print(json.dumps(names))
+"""
+
+
+@pytest.mark.slow
+def test_the_second_process_compiles_every_solver_kernel_a_poisson_solve_needs(tmp_path):
+    """After compile_solver_kernels in an empty cache, a P1 solve with cg-amg compiles
+    no kernel of galerkit.multigrid: the signatures are the same (arrays normalised at
+    the solver's boundary), so the second process's work is used, not repeated."""
+    env = {k: v for k, v in os.environ.items() if k != "GALERKIT_CACHE_DIR"}
+    env.update(NUMBA_CACHE_DIR=str(tmp_path / "cache"), GALERKIT_COMPILE_AHEAD="0")
+    p = subprocess.run([sys.executable, "-c", compilation._AHEAD_CODE], env=env,
+                       capture_output=True, text=True, timeout=1200)
+    assert p.returncode == 0, p.stderr
+    p = subprocess.run([sys.executable, "-c", _RECORD], env=env, capture_output=True,
+                       text=True, timeout=1200)
+    assert p.returncode == 0, p.stderr
+    names = json.loads(p.stdout.strip().splitlines()[-1])
+    assert any(n.startswith("galerkit.assembly.") for n in names)  # the cache was cold
+    assert not [n for n in names if n.startswith("galerkit.multigrid.")], names

@@ -942,14 +942,22 @@ def _seconds_lines(say, seconds):
 
 def _announce_compiling(args):
     """One line on stderr when the first kernel compilation of this run starts."""
-    from galerkit.compilation import cache_folder, on_first_compile
+    from galerkit.compilation import cache_folder, on_first_compile, start_compile_ahead
 
-    if getattr(args, "quiet", False) or getattr(args, "command", "") == "warm-up":
+    command = getattr(args, "command", "")
+    if command == "warm-up":
         return
+    quiet = getattr(args, "quiet", False)
 
     def say():
+        # demo and solve: the solver's kernels compile alongside, in a second process
+        two = command in ("demo", "solve") and start_compile_ahead()
+        if quiet:
+            return
         print("galerkit: compiling kernels for their first use (once: later runs load them "
-              f"from the cache in {cache_folder()}) ...", file=sys.stderr, flush=True)
+              f"from the cache in {cache_folder()}"
+              + ("; the solver's in a second process" if two else "") + ") ...",
+              file=sys.stderr, flush=True)
 
     on_first_compile(say)
 
