@@ -130,6 +130,9 @@ class ErrorEstimate:
         given.
     notes : list of str
     seconds : float
+    phase_seconds : dict
+        Seconds of the phases (source, cells, topology, boundary, patches, route,
+        indicators, exact_error), for profiling.
     """
 
     bound: float
@@ -144,11 +147,25 @@ class ErrorEstimate:
     residual_effectivity: float | None = None
     notes: list = field(default_factory=list)
     seconds: float = 0.0
+    phase_seconds: dict = field(default_factory=dict)
 
     def __repr__(self) -> str:
         eff = "" if self.effectivity is None else f", effectivity {self.effectivity:.3f}"
         return (f"ErrorEstimate(bound {self.bound:.4e}{eff}, residual estimate "
                 f"{self.residual_estimate:.4e}, guaranteed {self.guaranteed})")
+
+
+class _Clock:
+    """``clock(name)`` adds the seconds since the previous call to ``phases[name]``."""
+
+    def __init__(self, t0):
+        self.t = t0
+        self.phases = {}
+
+    def __call__(self, name):
+        t = time.perf_counter()
+        self.phases[name] = self.phases.get(name, 0.0) + t - self.t
+        self.t = t
 
 
 def cell_diameters(mesh) -> np.ndarray:
@@ -163,6 +180,209 @@ def cell_diameters(mesh) -> np.ndarray:
 
 
 # -- compiled kernels ---------------------------------------------------------------
+@nb.njit(cache=True)
+def _patches(cells, n):
+    """Vertex patches by a counting sort: ``vcell[vptr[v]:vptr[v+1]]`` are the cells at
+    vertex ``v`` (ascending), ``vloc`` the local number of ``v`` in each."""
+    m = cells.shape[0]
+    vptr = np.zeros(n + 1, np.int64)
+    for c in range(m):
+        for l in range(3):
+            vptr[cells[c, l] + 1] += 1
+    for v in range(n):
+        vptr[v + 1] += vptr[v]
+    fill = vptr[:-1].copy()
+    vcell = np.empty(3 * m, np.int64)
+    vloc = np.empty(3 * m, np.int64)
+    for c in range(m):
+        for l in range(3):
+            v = cells[c, l]
+            p = fill[v]
+            vcell[p] = c
+            vloc[p] = l
+            fill[v] = p + 1
+    return vptr, vcell, vloc
+
+
+@nb.njit(cache=True, parallel=True)
+def _cell_neighbors(cells, vptr, vcell, out):
+    """``out[c, i]``: the cell across the facet opposite local vertex ``i`` of ``c``
+    (the other cell of the patch of one end that holds the other end), -1 on the
+    boundary."""
+    m = cells.shape[0]
+    for c in nb.prange(m):
+        for i in range(3):
+            a = cells[c, (i + 1) % 3]
+            b = cells[c, (i + 2) % 3]
+            out[c, i] = -1
+            for p in range(vptr[a], vptr[a + 1]):
+                c2 = vcell[p]
+                if c2 != c and (cells[c2, 0] == b or cells[c2, 1] == b or cells[c2, 2] == b):
+                    out[c, i] = c2
+                    break
+
+
+@nb.njit(cache=True, parallel=True)
+def _cell_fields(points, cells, area, kscal, ktens, u, fmom, kinv, lam_min, flux_h, draw,
+                 hcell, energy, stiff_abs):
+    """Per cell: K^-1, the smallest eigenvalue of K, K grad u_h, the hat-weighted
+    residual ``draw = fmom - (K grad u_h, grad l_a)``, the diameter, the energy
+    ``(K grad u_h, grad u_h)_K`` and the size of the stiffness terms.  K is
+    ``ktens[c]`` (or ``ktens[0]``) when ``ktens`` has rows, else ``kscal[c]`` (or
+    ``kscal[0]``) times the identity."""
+    m = cells.shape[0]
+    for c in nb.prange(m):
+        if ktens.shape[0] > 0:
+            t = c if ktens.shape[0] > 1 else c - c  # (a prange index is unsigned)
+            k00 = ktens[t, 0, 0]
+            k01 = ktens[t, 0, 1]
+            k10 = ktens[t, 1, 0]
+            k11 = ktens[t, 1, 1]
+            det = k00 * k11 - k01 * k10
+            kinv[c, 0, 0] = k11 / det
+            kinv[c, 0, 1] = -k01 / det
+            kinv[c, 1, 0] = -k10 / det
+            kinv[c, 1, 1] = k00 / det
+            hm = 0.5 * (k00 + k11)
+            hd = 0.5 * (k00 - k11)
+            ko = 0.5 * (k01 + k10)
+            lam_min[c] = hm - math.sqrt(hd * hd + ko * ko)
+        else:
+            s = kscal[c] if kscal.shape[0] > 1 else kscal[0]
+            k00 = s
+            k01 = 0.0
+            k10 = 0.0
+            k11 = s
+            kinv[c, 0, 0] = 1.0 / s
+            kinv[c, 0, 1] = 0.0
+            kinv[c, 1, 0] = 0.0
+            kinv[c, 1, 1] = 1.0 / s
+            lam_min[c] = s
+        A2 = 2.0 * area[c]
+        gx = 0.0
+        gy = 0.0
+        g0x = 0.0
+        g0y = 0.0
+        g1x = 0.0
+        g1y = 0.0
+        g2x = 0.0
+        g2y = 0.0
+        h2 = 0.0
+        for i in range(3):
+            p = cells[c, (i + 1) % 3]
+            q = cells[c, (i + 2) % 3]
+            ex = points[q, 0] - points[p, 0]
+            ey = points[q, 1] - points[p, 1]
+            h2 = max(h2, ex * ex + ey * ey)
+            lx = -ey / A2
+            ly = ex / A2
+            ui = u[cells[c, i]]
+            gx += ui * lx
+            gy += ui * ly
+            if i == 0:
+                g0x, g0y = lx, ly
+            elif i == 1:
+                g1x, g1y = lx, ly
+            else:
+                g2x, g2y = lx, ly
+        fx = k00 * gx + k01 * gy
+        fy = k10 * gx + k11 * gy
+        flux_h[c, 0] = fx
+        flux_h[c, 1] = fy
+        energy[c] = area[c] * (fx * gx + fy * gy)
+        hcell[c] = math.sqrt(h2)
+        s0 = area[c] * (fx * g0x + fy * g0y)
+        s1 = area[c] * (fx * g1x + fy * g1y)
+        s2 = area[c] * (fx * g2x + fy * g2y)
+        draw[c, 0] = fmom[c, 0] - s0
+        draw[c, 1] = fmom[c, 1] - s1
+        draw[c, 2] = fmom[c, 2] - s2
+        stiff_abs[c] = abs(s0) + abs(s1) + abs(s2)
+
+
+@nb.njit(cache=True, inline="always")
+def _rt_energy(points, cells, c, area, F0, F1, F2, fx, fy, kinv):
+    """``||K^-1/2 (sigma + (fx, fy))||_c**2`` for the RT0 field of outward facet fluxes
+    F0, F1, F2 on cell c (edge-midpoint rule, exact for the quadratic integrand)."""
+    sx = points[cells[c, 0], 0] + points[cells[c, 1], 0] + points[cells[c, 2], 0]
+    sy = points[cells[c, 0], 1] + points[cells[c, 1], 1] + points[cells[c, 2], 1]
+    A2 = 2.0 * area[c]
+    out = 0.0
+    for q in range(3):
+        mx = 0.5 * (sx - points[cells[c, q], 0])
+        my = 0.5 * (sy - points[cells[c, q], 1])
+        wx = 0.0
+        wy = 0.0
+        for i in range(3):
+            Fi = F0 if i == 0 else (F1 if i == 1 else F2)
+            wx += Fi * (mx - points[cells[c, i], 0]) / A2
+            wy += Fi * (my - points[cells[c, i], 1]) / A2
+        wx += fx
+        wy += fy
+        out += area[c] / 3.0 * (wx * (kinv[c, 0, 0] * wx + kinv[c, 0, 1] * wy)
+                                + wy * (kinv[c, 1, 0] * wx + kinv[c, 1, 1] * wy))
+    return out
+
+
+@nb.njit(cache=True, parallel=True)
+def _cell_terms(points, cells, area, kinv, flux_h, P, T, neighbors, lam_min, hcell, osc,
+                fnorm2, bosc, bres, fmom, corr, amount, bkind, gout, eta, parts, dev):
+    """Per cell, from the patch fluxes ``P`` and the routed flux ``T``: the
+    indicator ``eta`` and ``parts[c] = (flux**2, algebraic**2, oscillation,
+    residual indicator)``; ``dev[c] = (divergence miss, largest flux jump across a
+    facet, largest miss of the boundary data, largest |flux|)``, the checks of the
+    equilibrated flux."""
+    m = cells.shape[0]
+    for c in nb.prange(m):
+        F0 = P[c, 0, 0] + P[c, 1, 0] + P[c, 2, 0] + T[c, 0]
+        F1 = P[c, 0, 1] + P[c, 1, 1] + P[c, 2, 1] + T[c, 1]
+        F2 = P[c, 0, 2] + P[c, 1, 2] + P[c, 2, 2] + T[c, 2]
+        ef2 = max(_rt_energy(points, cells, c, area, F0, F1, F2, flux_h[c, 0], flux_h[c, 1],
+                             kinv), 0.0)
+        ea2 = max(_rt_energy(points, cells, c, area, T[c, 0], T[c, 1], T[c, 2], 0.0, 0.0,
+                             kinv), 0.0)
+        lam = lam_min[c]
+        eo = hcell[c] / math.pi * osc[c] / math.sqrt(lam)
+        eta[c] = math.sqrt(ef2) + eo + bosc[c]
+        # residual estimator: flux jumps h_F / (2 lambda_F) ||[K grad u_h . n]||_F**2
+        jumps = 0.0
+        jmax = 0.0
+        miss = 0.0
+        for i in range(3):
+            Fi = F0 if i == 0 else (F1 if i == 1 else F2)
+            nb_ = neighbors[c, i]
+            if nb_ >= 0:
+                xa0 = points[cells[c, (i + 1) % 3], 0]
+                xa1 = points[cells[c, (i + 1) % 3], 1]
+                tx = points[cells[c, (i + 2) % 3], 0] - xa0
+                ty = points[cells[c, (i + 2) % 3], 1] - xa1
+                hF = math.sqrt(tx * tx + ty * ty)
+                nx = ty / hF
+                ny = -tx / hF
+                dot = (xa0 - points[cells[c, i], 0]) * nx + (xa1 - points[cells[c, i], 1]) * ny
+                sgn = 1.0 if dot > 0 else (-1.0 if dot < 0 else 0.0)
+                mine = (flux_h[c, 0] * nx + flux_h[c, 1] * ny) * sgn
+                other = (flux_h[nb_, 0] * nx + flux_h[nb_, 1] * ny) * sgn
+                lamF = max(lam, lam_min[nb_])
+                jumps += hF * hF * (mine - other) ** 2 / (2 * lamF)
+                for j in range(3):
+                    if neighbors[nb_, j] == c:
+                        Fj = P[nb_, 0, j] + P[nb_, 1, j] + P[nb_, 2, j] + T[nb_, j]
+                        jmax = max(jmax, abs(Fi + Fj))
+            elif bkind[c, i] == 2:
+                miss = max(miss, abs(Fi - (gout[c, i, 0] + gout[c, i, 1] + gout[c, i, 2])))
+        parts[c, 0] = ef2
+        parts[c, 1] = ea2
+        parts[c, 2] = eo
+        parts[c, 3] = math.sqrt(hcell[c] ** 2 / lam * fnorm2[c] + jumps + bres[c])
+        dev[c, 0] = abs(F0 + F1 + F2 - (fmom[c, 0] + fmom[c, 1] + fmom[c, 2]
+                                         - (corr[c, 0] + corr[c, 1] + corr[c, 2])
+                                         + amount[c]))
+        dev[c, 1] = jmax
+        dev[c, 2] = miss
+        dev[c, 3] = max(abs(F0), abs(F1), abs(F2))
+
+
 @nb.njit(cache=True, parallel=True)
 def _patch_fluxes(points, cells, area, kinv, flux_h, vptr, vcell, vloc, draw, bkind, gout,
                   P, corr):
@@ -174,42 +394,52 @@ def _patch_fluxes(points, cells, area, kinv, flux_h, vptr, vcell, vloc, draw, bk
     the prescribed outward flux of patch ``l`` through boundary facet ``i``.
     Writes ``P[c, l, i]``: outward flux of patch ``l`` through facet ``i`` of ``c``,
     and ``corr[c, l]``: the part of ``draw`` taken out to make the patch solvable.
-    Each (c, l) belongs to one vertex, so the writes never collide.
+    Each (c, l) belongs to one vertex, so the writes never collide; the vertices are
+    taken in fixed chunks, each with its own scratch arrays (no allocation per vertex).
     """
     n = vptr.shape[0] - 1
-    for a in nb.prange(n):
-        s0 = vptr[a]
-        k = vptr[a + 1] - s0
-        nxt = np.full(k, -1, np.int64)
-        has_prev = np.zeros(k, np.bool_)
-        done = np.zeros(k, np.bool_)
-        order = np.empty(k, np.int64)
-        cum = np.empty(k)
-        for p in range(k):
-            c = vcell[s0 + p]
-            la = vloc[s0 + p]
-            cc = cells[c, (la + 2) % 3]
-            for q in range(k):
-                c2 = vcell[s0 + q]
-                l2 = vloc[s0 + q]
-                if q != p and cells[c2, (l2 + 1) % 3] == cc:
-                    nxt[p] = q
-                    has_prev[q] = True
-                    break
-        for phase in range(2):
-            for p0 in range(k):
-                if done[p0] or (phase == 0 and has_prev[p0]):
-                    continue
-                m = 0
-                p = p0
-                while p >= 0 and not done[p]:
-                    order[m] = p
-                    m += 1
-                    done[p] = True
-                    p = nxt[p]
-                loop = phase == 1
-                _solve_chain(points, cells, area, kinv, flux_h, vcell, vloc, s0, order, m,
-                             loop, draw, bkind, gout, P, corr, cum)
+    kmax = 0
+    for a in range(n):
+        kmax = max(kmax, vptr[a + 1] - vptr[a])
+    nchunk = min(n, 1024)
+    for ch in nb.prange(nchunk):
+        nxt = np.empty(kmax, np.int64)
+        has_prev = np.empty(kmax, np.bool_)
+        done = np.empty(kmax, np.bool_)
+        order = np.empty(kmax, np.int64)
+        cum = np.empty(kmax)
+        for a in range(ch * n // nchunk, (ch + 1) * n // nchunk):
+            s0 = vptr[a]
+            k = vptr[a + 1] - s0
+            for p in range(k):
+                nxt[p] = -1
+                has_prev[p] = False
+                done[p] = False
+            for p in range(k):
+                c = vcell[s0 + p]
+                la = vloc[s0 + p]
+                cc = cells[c, (la + 2) % 3]
+                for q in range(k):
+                    c2 = vcell[s0 + q]
+                    l2 = vloc[s0 + q]
+                    if q != p and cells[c2, (l2 + 1) % 3] == cc:
+                        nxt[p] = q
+                        has_prev[q] = True
+                        break
+            for phase in range(2):
+                for p0 in range(k):
+                    if done[p0] or (phase == 0 and has_prev[p0]):
+                        continue
+                    m = 0
+                    p = p0
+                    while p >= 0 and not done[p]:
+                        order[m] = p
+                        m += 1
+                        done[p] = True
+                        p = nxt[p]
+                    loop = phase == 1
+                    _solve_chain(points, cells, area, kinv, flux_h, vcell, vloc, s0, order, m,
+                                 loop, draw, bkind, gout, P, corr, cum)
 
 
 @nb.njit(cache=True, inline="always")
@@ -392,6 +622,50 @@ def _route(neighbors, bkind, amount, area, T, parent, order, n_floating):
     return unrouted
 
 
+@nb.njit(cache=True, parallel=True)
+def _source_kernel(fv, w2, lam, area, fmom, osc, fnorm2, integral):
+    """From the source values ``fv`` (m, nq) or (m, 1) (constant on the cell) at the
+    points of a rule of weights ``w2`` (summing to 1) and barycentric coordinates
+    ``lam`` (nq, 3): ``fmom[c, l] = int_c f l_l``, ``osc[c] = ||f - mean_c f||_c``,
+    ``fnorm2[c] = ||f||_c**2`` and ``integral[c] = int_c f``."""
+    m = area.shape[0]
+    nq = lam.shape[0]
+    for c in nb.prange(m):
+        A = area[c]
+        if fv.shape[1] == 1:
+            f = fv[c, 0] if fv.shape[0] > 1 else fv[0, 0]
+            fmom[c, 0] = f * A / 3.0
+            fmom[c, 1] = f * A / 3.0
+            fmom[c, 2] = f * A / 3.0
+            osc[c] = 0.0
+            fnorm2[c] = f * f * A
+            integral[c] = f * A
+            continue
+        s = 0.0
+        s2 = 0.0
+        m0 = 0.0
+        m1 = 0.0
+        m2 = 0.0
+        for q in range(nq):
+            wf = A * w2[q] * fv[c, q]
+            s += wf
+            s2 += wf * fv[c, q]
+            m0 += wf * lam[q, 0]
+            m1 += wf * lam[q, 1]
+            m2 += wf * lam[q, 2]
+        mean = s / A
+        d2 = 0.0
+        for q in range(nq):
+            d = fv[c, q] - mean
+            d2 += A * w2[q] * d * d
+        fmom[c, 0] = m0
+        fmom[c, 1] = m1
+        fmom[c, 2] = m2
+        osc[c] = math.sqrt(max(d2, 0.0))
+        fnorm2[c] = s2
+        integral[c] = s
+
+
 # -- the estimator ------------------------------------------------------------------
 def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> ErrorEstimate:
     """Guaranteed energy-error bound and residual estimate of a solution.
@@ -469,32 +743,34 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
         return estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_start)
     notes = []
     m = mesh.n_cells
-    pts = mesh.points
+    pts = np.ascontiguousarray(mesh.points, dtype=np.float64)
     cells = np.ascontiguousarray(mesh.cells)
-    X = pts[cells]  # (m, 3, 2)
     area = np.ascontiguousarray(mesh.cell_volumes, dtype=np.float64)
-    # gradients of the barycentric coordinates: grad l_i = rot(x_{i+2} - x_{i+1}) / (2A)
-    glam = np.empty((m, 3, 2))
-    for i in range(3):
-        e = X[:, (i + 2) % 3] - X[:, (i + 1) % 3]
-        glam[:, i, 0] = -e[:, 1] / (2 * area)
-        glam[:, i, 1] = e[:, 0] / (2 * area)
-    K = _conductivity_tensor(kappa, m)
-    kinv = np.ascontiguousarray(np.linalg.inv(K))
-    lam_min = np.linalg.eigvalsh(K)[:, 0]
-    grad_uh = np.einsum("ci,cij->cj", u[cells], glam)
-    flux_h = np.ascontiguousarray(np.einsum("cij,cj->ci", K, grad_uh))
-    energy_norm = float(np.sqrt(max((area * (flux_h * grad_uh).sum(axis=1)).sum(), 0.0)))
-    h = cell_diameters(mesh)
+    kscal, ktens = _conductivity_arrays(kappa, m)
+    clock = _Clock(t_start)
 
     # cell moments of the source and its oscillation
-    fmom, osc, fnorm2, gap = _source_moments(problem.source, disc, X, area, cells,
+    fmom, osc, fnorm2, gap = _source_moments(problem.source, disc, pts, area, cells,
                                              quadrature_degree)
-    stiff = area[:, None] * np.einsum("ci,cli->cl", flux_h, glam)  # (K grad u_h, grad l_a)_K
-    draw = np.ascontiguousarray(fmom - stiff)
+    clock("source")
+    # per cell: K^-1, lambda_min(K), K grad u_h, draw = (f, l_a) - (K grad u_h, grad l_a)_K
+    kinv = np.empty((m, 2, 2))
+    lam_min = np.empty(m)
+    flux_h = np.empty((m, 2))
+    draw = np.empty((m, 3))
+    h = np.empty(m)
+    energy = np.empty(m)
+    stiff_abs = np.empty(m)
+    _cell_fields(pts, cells, area, kscal, ktens, u, fmom, kinv, lam_min, flux_h, draw, h,
+                 energy, stiff_abs)
+    energy_norm = float(np.sqrt(max(energy.sum(), 0.0)))
+    clock("cells")
+    vptr, vcell, vloc = _patches(cells, mesh.n_vertices)
+    neighbors = np.empty((m, 3), dtype=np.int64)
+    _cell_neighbors(cells, vptr, vcell, neighbors)
+    clock("topology")
 
     # boundary facets: kinds and prescribed outward fluxes
-    neighbors = _neighbors(cells, mesh.n_vertices)
     bkind = np.where(neighbors < 0, _FLUX, _INTERIOR).astype(np.int8)
     gout = np.zeros((m, 3, 3))
     bosc = np.zeros(m)  # sum over flux facets of C_F ||g - Pi_0 g||_F
@@ -535,15 +811,16 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     goscn = np.sqrt(flen * (((gq - gmean[:, None]) ** 2) * _GL_W[None, :]).sum(axis=1))
     c_trace = h[fcell] * np.sqrt(flen / area[fcell] * (1 / math.pi**2 + 1 / math.pi))
     np.add.at(bosc, fcell[sel], (c_trace * goscn / np.sqrt(lam_min[fcell]))[sel])
-    nflux = _outward_normal_flux(flux_h[fcell], xa, xb, X[fcell, floc])
+    nflux = _outward_normal_flux(flux_h[fcell], xa, xb, pts[cells[fcell, floc]])
     resq = flen * (((gq - nflux[:, None]) ** 2) * _GL_W[None, :]).sum(axis=1)
     np.add.at(bres, fcell[sel], (flen * resq / lam_min[fcell])[sel])
+    clock("boundary")
 
     # patch problems
-    vptr, vcell, vloc = _vertex_patches(cells, mesh.n_vertices)
-    P = np.zeros((m, 3, 3))
-    corr = np.zeros((m, 3))
+    P = np.empty((m, 3, 3))
+    corr = np.empty((m, 3))
     _patch_fluxes(pts, cells, area, kinv, flux_h, vptr, vcell, vloc, draw, bkind, gout, P, corr)
+    clock("patches")
     # route the residual taken out of the patches
     amount = np.ascontiguousarray(corr.sum(axis=1))
     T = np.zeros((m, 3))
@@ -551,21 +828,21 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     order = np.empty(m, dtype=np.int64)
     n_floating = np.zeros(1, dtype=np.int64)
     unrouted = _route(neighbors, bkind, amount, area, T, parent, order, n_floating)
-    F = P.sum(axis=1) + T  # outward flux through each facet of each cell
-    _check_equilibrium(F, fmom, amount, corr, neighbors, bkind, gout)
-
-    eta_flux = np.sqrt(np.maximum(_rt_misfit(X, area, F, flux_h, kinv), 0.0))
-    eta_alg = np.sqrt(np.maximum(_rt_misfit(X, area, T, np.zeros_like(flux_h), kinv), 0.0))
-    eta_osc = h / math.pi * osc / np.sqrt(lam_min)
-    eta = eta_flux + eta_osc + bosc
+    clock("route")
+    # indicators, the residual estimator and the checks of the flux, cell by cell
+    eta = np.empty(m)
+    parts = np.empty((m, 4))
+    dev = np.empty((m, 4))
+    _cell_terms(pts, cells, area, kinv, flux_h, P, T, neighbors, lam_min, h, osc, fnorm2, bosc,
+                bres, fmom, corr, amount, bkind, gout, eta, parts, dev)
+    _check_flux(dev, fmom)
     bound = float(np.sqrt((eta**2).sum()))
-
-    # residual estimator
-    jumps = _flux_jumps(X, flux_h, neighbors, lam_min)
-    res_ind = np.sqrt(h**2 / lam_min * fnorm2 + jumps + bres)
+    res_ind = np.ascontiguousarray(parts[:, 3])
     residual = float(np.sqrt((res_ind**2).sum()))
+    clock("indicators")
 
-    scale = float(np.abs(fmom).sum() + np.abs(gout).sum() + np.abs(stiff).sum()) or 1.0
+    scale = float(np.abs(fmom).sum() + np.abs(mom_a[sel]).sum() + np.abs(mom_b[sel]).sum()
+                  + stiff_abs.sum()) or 1.0
     guaranteed = True
     if n_floating[0] and unrouted > 1e-12 * scale:
         if problem.robin or problem.dirichlet:
@@ -580,10 +857,10 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
                      "(a non-polynomial source); raise quadrature_degree if this matters")
     est = ErrorEstimate(
         bound=bound, indicators=eta, residual_estimate=residual, residual_indicators=res_ind,
-        terms={"flux": float(np.sqrt((eta_flux**2).sum())),
-               "oscillation": float(np.sqrt((eta_osc**2).sum())),
+        terms={"flux": float(np.sqrt(parts[:, 0].sum())),
+               "oscillation": float(np.sqrt((parts[:, 2] ** 2).sum())),
                "boundary_data": float(np.sqrt((bosc**2).sum())),
-               "algebraic": float(np.sqrt((eta_alg**2).sum())),
+               "algebraic": float(np.sqrt(parts[:, 1].sum())),
                "unrouted": float(unrouted), "quadrature_gap": float(gap)},
         energy_norm=energy_norm, guaranteed=guaranteed, notes=notes)
     if not (np.isfinite(bound) and np.isfinite(residual)):
@@ -595,55 +872,67 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
         est.error = err
         est.effectivity = bound / err if err > 0 else math.inf
         est.residual_effectivity = residual / err if err > 0 else math.inf
+    if exact_gradient is not None:
+        clock("exact_error")
     est.seconds = time.perf_counter() - t_start
+    est.phase_seconds = clock.phases
     return est
 
 
 # -- helpers --------------------------------------------------------------------------
-def _conductivity_tensor(kappa, m):
+def _conductivity_arrays(kappa, m):
+    """``(kscal, ktens)`` for :func:`_cell_fields`: a scalar conductivity as ``kscal``
+    ((1,) or (m,); ``ktens`` empty), a tensor as ``ktens`` ((1, 2, 2) or (m, 2, 2))."""
     t = tensor_values(kappa, m, 2, "conductivity")
     if t is not None:
-        return np.ascontiguousarray(np.broadcast_to(t, (m, 2, 2)), dtype=np.float64)
+        t = np.ascontiguousarray(np.asarray(t, dtype=np.float64).reshape(-1, 2, 2))
+        return np.zeros(1), t
     v = scalar_values(kappa, m, "conductivity", positive=True)
-    v = np.broadcast_to(v[:, 0], (m,)) if v.shape[0] > 1 else np.full(m, float(v[0, 0]))
-    K = np.zeros((m, 2, 2))
-    K[:, 0, 0] = v
-    K[:, 1, 1] = v
-    return K
+    return np.ascontiguousarray(v[:, 0], dtype=np.float64), np.zeros((0, 2, 2))
 
 
-def _source_moments(source, disc, X, area, cells, degree):
+def _source_moments(source, disc, pts, area, cells, degree):
     """``fmom[c, l] = int_c f l_l``, ``osc[c] = ||f - mean_c f||_c``, ``||f||_c**2`` and
     the largest difference of the cell integrals between rules of ``degree`` and
-    ``degree + 2``."""
+    ``degree + 2``.  A source constant on each cell (a number, per-cell or per-region
+    numbers) has the closed forms ``f |c| / 3``, 0 and ``f**2 |c|``; other sources are
+    evaluated at the points of the rule."""
     m = cells.shape[0]
+    X = None
 
     def values(rule):
+        nonlocal X
         lam = np.column_stack([1 - rule.points.sum(axis=1), rule.points])  # (nq, 3)
         if np.ndim(source) == 1 and np.shape(source) == (disc.n_dofs,):
             fv = np.asarray(source, dtype=np.float64)[cells] @ lam.T  # (m, nq)
         else:
             nq = rule.n_points
-            fv = scalar_values(source, m, "source",
-                               points=lambda: np.einsum("ql,clj->jcq", lam, X).reshape(2, -1),
-                               point_shape=(m, nq))
-            fv = np.broadcast_to(fv, (m, nq)) if fv.shape[1] == nq else \
-                np.broadcast_to(fv[:, :1], (m, nq))
-        return lam, fv
+
+            def points():
+                nonlocal X
+                if X is None:
+                    X = pts[cells]  # (m, 3, 2)
+                return np.einsum("ql,clj->jcq", lam, X).reshape(2, -1)
+
+            fv = scalar_values(source, m, "source", points=points, point_shape=(m, nq))
+        return np.ascontiguousarray(lam), np.ascontiguousarray(fv, dtype=np.float64)
 
     rule = simplex_quadrature(2, degree)
     lam, fv = values(rule)
-    w = 2 * area[:, None] * rule.weights[None, :]  # reference triangle has area 1/2
-    fmom = np.ascontiguousarray((w * fv) @ lam)
-    mean = (w * fv).sum(axis=1) / area
-    osc = np.sqrt(np.maximum((w * (fv - mean[:, None]) ** 2).sum(axis=1), 0.0))
-    fnorm2 = (w * fv**2).sum(axis=1)
+    fmom = np.empty((m, 3))
+    osc = np.empty(m)
+    fnorm2 = np.empty(m)
+    integral = np.empty(m)
+    _source_kernel(fv, np.ascontiguousarray(2 * rule.weights), lam, area, fmom, osc, fnorm2,
+                   integral)
     gap = 0.0
     if callable(source) or (isinstance(source, RegionCoefficient) and source.has_callable):
         rule2 = simplex_quadrature(2, min(degree + 2, 20) if degree < 20 else degree - 2)
-        _, fv2 = values(rule2)
-        w2 = 2 * area[:, None] * rule2.weights[None, :]
-        gap = float(np.abs((w2 * fv2).sum(axis=1) - (w * fv).sum(axis=1)).sum())
+        lam2, fv2 = values(rule2)
+        integral2 = np.empty(m)
+        _source_kernel(fv2, np.ascontiguousarray(2 * rule2.weights), lam2, area,
+                       np.empty((m, 3)), np.empty(m), np.empty(m), integral2)
+        gap = float(np.abs(integral2 - integral).sum())
     return fmom, osc, fnorm2, gap
 
 
@@ -691,71 +980,12 @@ def _check_dirichlet(tag, value, disc, mesh, ids):
             "condition as Neumann data (K du/dn) there, or use data affine per facet")
 
 
-def _neighbors(cells, n_vertices):
-    """Cell across each local facet (opposite local vertex i), -1 on the boundary."""
-    from .elements import REFERENCE_EDGES
-    _, cell_ent, _, _ = enumerate_entities(cells, np.array(REFERENCE_EDGES[2]), n_vertices)
-    m = cells.shape[0]
-    flat = cell_ent.ravel().astype(np.int64)
-    order = np.argsort(flat, kind="stable")
-    sf = flat[order]
-    nb_ = np.full(3 * m, -1, dtype=np.int64)
-    same = np.flatnonzero(sf[1:] == sf[:-1])
-    a, b = order[same], order[same + 1]
-    nb_[a] = b // 3
-    nb_[b] = a // 3
-    return np.ascontiguousarray(nb_.reshape(m, 3))
-
-
-def _vertex_patches(cells, n):
-    flat = cells.ravel().astype(np.int64)
-    order = np.argsort(flat, kind="stable")
-    vptr = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(np.bincount(flat, minlength=n), out=vptr[1:])
-    return vptr, np.ascontiguousarray(order // 3), np.ascontiguousarray(order % 3)
-
-
-def _rt_misfit(X, area, F, flux_h, kinv):
-    """``||K^-1/2 (sigma + flux_h)||_c**2`` for the RT0 field of outward facet fluxes F."""
-    s = X.sum(axis=1)  # (m, 2)
-    out = np.zeros(X.shape[0])
-    for q in range(3):
-        mq = 0.5 * (s - X[:, q])
-        sig = np.zeros_like(flux_h)
-        for i in range(3):
-            sig += F[:, i, None] * (mq - X[:, i]) / (2 * area[:, None])
-        w = sig + flux_h
-        out += area / 3 * np.einsum("ci,cij,cj->c", w, kinv, w)
-    return out
-
-
 def _outward_normal_flux(flux, xa, xb, xopp):
     """``flux . n`` on the facet (xa, xb) with n pointing away from xopp."""
     t = xb - xa
     n = np.column_stack([t[:, 1], -t[:, 0]]) / np.sqrt((t**2).sum(axis=1))[:, None]
     sgn = np.sign(((xa - xopp) * n).sum(axis=1))
     return (flux * n).sum(axis=1) * sgn
-
-
-def _flux_jumps(X, flux_h, neighbors, lam_min):
-    """Per cell: sum over interior facets of h_F / (2 lambda_F) ||[K grad u_h . n]||_F**2."""
-    m = X.shape[0]
-    out = np.zeros(m)
-    for i in range(3):
-        nb_ = neighbors[:, i]
-        inner = np.flatnonzero(nb_ >= 0)
-        xa = X[inner, (i + 1) % 3]
-        xb = X[inner, (i + 2) % 3]
-        mine = _outward_normal_flux(flux_h[inner], xa, xb, X[inner, i])
-        # the neighbour's flux through the same facet, same normal
-        t = xb - xa
-        n = np.column_stack([t[:, 1], -t[:, 0]]) / np.sqrt((t**2).sum(axis=1))[:, None]
-        sgn = np.sign(((xa - X[inner, i]) * n).sum(axis=1))
-        other = (flux_h[nb_[inner]] * n).sum(axis=1) * sgn
-        hF = np.sqrt((t**2).sum(axis=1))
-        lamF = np.maximum(lam_min[inner], lam_min[nb_[inner]])
-        out[inner] += hF * hF * (mine - other) ** 2 / (2 * lamF)
-    return out
 
 
 def _check_equilibrium(F, fmom, amount, corr, neighbors, bkind, gout):
@@ -781,3 +1011,25 @@ def _check_equilibrium(F, fmom, amount, corr, neighbors, bkind, gout):
         c, i = np.unravel_index(int(np.argmax(miss)), miss.shape)
         raise RuntimeError(f"estimate_error: the equilibrated flux misses the boundary data on "
                            f"facet {i} of cell {c} by {miss[c, i]:.3e}; internal error")
+
+
+def _check_flux(dev, fmom):
+    """The flux must balance the source cell by cell, be conforming, and meet the
+    boundary data (checks of what the compiled kernels returned; ``dev`` from
+    :func:`_cell_terms`)."""
+    scale = max(float(dev[:, 3].max(initial=0.0)), float(np.abs(fmom).max(initial=0.0)), 1e-300)
+    bad = dev[:, :3] > 1e-8 * scale
+    if not bad.any():
+        return
+    if bad[:, 0].any():
+        c = int(np.argmax(dev[:, 0]))
+        raise RuntimeError(f"estimate_error: the equilibrated flux misses the source on cell "
+                           f"{c} by {dev[c, 0]:.3e}; internal error, please report with the mesh")
+    if bad[:, 1].any():
+        c = int(np.argmax(dev[:, 1]))
+        raise RuntimeError(f"estimate_error: the equilibrated flux is not conforming across a "
+                           f"facet of cell {c} (jump {dev[c, 1]:.3e}); internal error, please "
+                           "report with the mesh")
+    c = int(np.argmax(dev[:, 2]))
+    raise RuntimeError(f"estimate_error: the equilibrated flux misses the boundary data on a "
+                       f"facet of cell {c} by {dev[c, 2]:.3e}; internal error")
