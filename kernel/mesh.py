@@ -315,6 +315,10 @@ def _as_points(points):
     if not (np.issubdtype(p.dtype, np.floating) or np.issubdtype(p.dtype, np.integer)):
         raise MeshError(f"mesh points must be real numbers, got dtype {p.dtype}")
     p = np.ascontiguousarray(p, dtype=np.float64)
+    if isinstance(points, np.ndarray) and np.may_share_memory(p, points):
+        # the mesh freezes its arrays once validated; the caller's own stays
+        # writeable, and changing it later cannot change the checked mesh
+        p = p.copy()
     bad = ~np.isfinite(p).all(axis=1)
     if bad.any():
         i = int(np.flatnonzero(bad)[0])

@@ -632,3 +632,64 @@ def test_adapt_with_a_higher_degree_flag_or_data_the_bound_cannot_take_exits_2(t
     err = capsys.readouterr().err
     assert "[adapt]: estimate_error: dirichlet['boundary'] is not affine" in err
     assert "or remove the [adapt] section" in err
+
+
+BOX_ADAPT = """
+title = "box, adaptive"
+[mesh]
+generator = "box"
+cells = 2
+[source]
+value = 1
+[[boundary]]
+tag = "boundary"
+kind = "dirichlet"
+u = 0
+[adapt]
+max_levels = 3
+"""
+
+
+def test_adaptive_solve_on_tetrahedra_halves_cells_and_writes_no_picture(tmp_path):
+    path = tmp_path / "box.toml"
+    path.write_text(BOX_ADAPT)
+    code, out, err = run("--json", "solve", path, "--output", tmp_path / "res")
+    assert code == 0, err
+    info = json.loads(out)
+    assert len(info["adapt"]["levels"]) == 3 and info["error_bound"]["guaranteed"]
+    back = meshio.read(tmp_path / "res" / "box.vtu")
+    level = back.cell_data["refinement_level"][0]
+    # independent of our bisection: each bisection halves a tetrahedron exactly, and the
+    # initial box of 2 x 2 x 2 cubes of 6 tetrahedra has cells of volume 1/48
+    p = back.points[back.cells_dict["tetra"]]
+    vol = np.abs(np.linalg.det(p[:, 1:] - p[:, :1])) / 6.0
+    assert np.allclose(vol * 2.0 ** level, 1 / 48, rtol=1e-9) and level.max() > 0
+    assert [Path(p).name for p in info["outputs"]] == ["box.vtu"]
+
+
+def test_the_error_bound_switch_leaves_the_bound_out(tmp_path):
+    path = tmp_path / "off.toml"
+    path.write_text(BOX_ADAPT.split("[adapt]")[0] + "[output]\nerror_bound = false\n")
+    code, out, err = run("--json", "solve", path, "--output", tmp_path / "res")
+    assert code == 0, err
+    info = json.loads(out)
+    assert info["error_bound"] == {"available": False,
+                                   "reason": "not computed ([output] error_bound = false)"}
+    assert "error_indicator" not in meshio.read(tmp_path / "res" / "off.vtu").cell_data
+    code, text, err = run("solve", path.with_name("off.toml"), "--output", tmp_path / "res")
+    assert "  error bound not computed ([output] error_bound = false)" in text.splitlines()
+
+
+def test_the_bound_is_left_out_by_default_on_large_tetrahedral_meshes(tmp_path, monkeypatch,
+                                                                      capsys):
+    from galerkit.bindings.command import problemfile
+
+    monkeypatch.setattr(problemfile, "BOUND_AUTO_TETRAHEDRA", 40)   # in this process
+    path = tmp_path / "big.toml"
+    path.write_text(BOX_ADAPT.split("[adapt]")[0])   # 48 tetrahedra
+    assert main(["--json", "solve", str(path), "--output", str(tmp_path / "res")]) == 0
+    reason = json.loads(capsys.readouterr().out)["error_bound"]["reason"]
+    assert reason.startswith("not computed for 48 tetrahedra by default (above 40")
+    path.write_text(BOX_ADAPT.split("[adapt]")[0] + "[output]\nerror_bound = true\n")
+    assert main(["--json", "solve", str(path), "--output", str(tmp_path / "res")]) == 0
+    assert json.loads(capsys.readouterr().out)["error_bound"]["available"]

@@ -288,6 +288,17 @@ def test_mesh_arrays_are_read_only_float64_points_and_int32_cells():
         assert not a.flags.writeable
 
 
+def test_the_callers_arrays_stay_writeable_and_cannot_change_the_mesh():
+    points = np.array([[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [1.0, 1.0]])
+    cells = np.array([[0, 1, 2], [1, 3, 2]], dtype=np.int32)
+    mesh = Mesh(points, cells)
+    assert points.flags.writeable and cells.flags.writeable
+    points[3] = [5.0, 5.0]
+    cells[1] = [0, 0, 0]
+    assert mesh.points[3].tolist() == [1.0, 1.0] and mesh.cells[1].tolist() == [1, 3, 2]
+    assert mesh.cell_volumes.sum() == pytest.approx(1.0, abs=1e-15)
+
+
 # -- bad input ---------------------------------------------------------------------
 SQ_POINTS = np.array([[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [1.0, 1.0], [2.0, 0.5]])
 SQ_CELLS = np.array([[0, 1, 2], [1, 3, 2], [1, 4, 3]])

@@ -576,10 +576,23 @@ def test_adapt_mistakes_are_named_with_file_line_key_and_what_to_do(tmp_path, te
         assert ", line " in msg
 
 
-def test_adapt_on_tetrahedra_is_refused_naming_the_section(tmp_path):
-    msg = error_of(tmp_path, "[mesh]\ngenerator = \"box\"\ncells = 2\n[adapt]\n")
-    assert "adapt: adaptive refinement is implemented for triangles only" in msg
-    assert "remove the [adapt] section" in msg
+def test_adapt_on_tetrahedra_is_accepted(tmp_path):
+    spec = load_problem(write(tmp_path, "[mesh]\ngenerator = \"box\"\ncells = 2\n"
+                              "[adapt]\nmax_levels = 2\n"))
+    assert spec.options.adapt["max_levels"] == 2
+
+
+@pytest.mark.parametrize("text, expected", [
+    ("true", "on"), ("false", "off"), ('"auto"', "auto")])
+def test_error_bound_switch_is_read(tmp_path, text, expected):
+    spec = load_problem(write(tmp_path, BASE + f"[output]\nerror_bound = {text}\n"))
+    assert spec.options.error_bound == expected
+
+
+@pytest.mark.parametrize("text", ['"yes"', "1"])
+def test_a_wrong_error_bound_switch_is_named(tmp_path, text):
+    msg = error_of(tmp_path, BASE + f"[output]\nerror_bound = {text}\n")
+    assert "output.error_bound: must be true, false or \"auto\"" in msg, msg
 
 
 def test_adapt_accepts_conductivity_constant_per_region(tmp_path):

@@ -518,7 +518,7 @@ def _solve(args) -> int:
     from galerkit.errors import InputError
     from ..files import write_solution
     from ..files.plots import plot_field, plot_mesh, plot_slices
-    from .problemfile import load_problem
+    from .problemfile import BOUND_AUTO_TETRAHEDRA, load_problem
     from .quantities import (bound_line, error_bound, quantity_lines, solution_quantities,
                              write_probes_csv)
 
@@ -567,6 +567,15 @@ def _solve(args) -> int:
         energy = None if errors is None else errors.get("energy")
         if run is not None:
             est, bound = error_bound(sol, run.estimates[-1], energy)
+        elif rep.converged and opts.error_bound == "off":
+            est, bound = None, {"available": False,
+                                "reason": "not computed ([output] error_bound = false)"}
+        elif (rep.converged and opts.error_bound == "auto" and sol.mesh.dim == 3
+              and sol.mesh.n_cells > BOUND_AUTO_TETRAHEDRA):
+            est, bound = None, {"available": False, "reason": (
+                f"not computed for {sol.mesh.n_cells:,} tetrahedra by default (above "
+                f"{BOUND_AUTO_TETRAHEDRA:,} it costs more than the solve); set [output] "
+                "error_bound = true to compute it")}
         elif rep.converged:
             try:
                 est, bound = error_bound(sol, None, energy)
