@@ -1478,11 +1478,13 @@ def _hierarchy_facts(h):
         "hierarchy_bytes": int(h.memory_bytes()),
         "setup_phases": dict(h.setup_phases),
         "coarsest": h.coarsest,
+        "first_aggregate_radius": h.first_aggregate_radius,
     }
 
 
 def _cg_amg(A, *, coarse_space=None, theta=None, max_coarse=None, max_levels=None,
-            smoother_degree=None, smoother_lower=None, fine_smoother_degree=None):
+            smoother_degree=None, smoother_lower=None, fine_smoother_degree=None,
+            aggregate_radius=None):
     """CG preconditioned by one V-cycle of galerkit's smoothed-aggregation multigrid.
 
     See :mod:`galerkit.multigrid` for the method.  Options (None takes the
@@ -1490,14 +1492,16 @@ def _cg_amg(A, *, coarse_space=None, theta=None, max_coarse=None, max_levels=Non
     threshold, ``max_coarse`` size of the dense coarsest level,
     ``max_levels``, ``smoother_degree`` and ``smoother_lower`` (Chebyshev
     degree and interval), ``coarse_space`` a P_k -> P1 interpolation for
-    p-multigrid (with ``fine_smoother_degree`` on the P_k level).
+    p-multigrid (with ``fine_smoother_degree`` on the P_k level),
+    ``aggregate_radius`` 1, 2 or "auto" (first aggregation level; the
+    report's ``first_aggregate_radius`` says which was used).
     Default maxiter 500.
     """
     from . import multigrid
 
     given = {"theta": theta, "max_coarse": max_coarse, "max_levels": max_levels,
              "smoother_degree": smoother_degree, "smoother_lower": smoother_lower,
-             "fine_smoother_degree": fine_smoother_degree}
+             "fine_smoother_degree": fine_smoother_degree, "aggregate_radius": aggregate_radius}
     settings = {k: (multigrid.DEFAULTS[k] if v is None else v) for k, v in given.items()}
     h = multigrid.build_hierarchy(A, coarse_space=coarse_space, **settings)
     options = {**settings, "p_multigrid": coarse_space is not None,

@@ -246,6 +246,14 @@ MUTANTS = [
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n        c_val = 1.5 * c_val\n"),
     ("multigrid prolongator smoothed with 0.9 of its weight", "multigrid.py",
      "            scale = omega / l1[i]\n", "            scale = 0.9 * omega / l1[i]\n"),
+    ("multigrid radius-2 aggregates: the second ring ignores the strength test", "multigrid.py",
+     "                        if agg[m] == -1 and data[kk] * data[kk] > t2 * abs(diag[j] * diag[m]):",
+     "                        if agg[m] == -1:",
+     "tests/test_multigrid.py::test_aggregates_follow_the_three_pass_rule_with_radius[2]"),
+    ("multigrid aggregate pattern count leaves out each aggregate's own entry", "multigrid.py",
+     "        mark[a] = a\n        total += 1\n", "        mark[a] = a\n",
+     "tests/test_multigrid.py::"
+     "test_radius_two_first_aggregates_on_tetrahedra_lower_the_operator_complexity"),
     ("SpGEMM drops the products after the first of a column", "sparse.py",
      "                        c_val[k] += av * b_val[kb]\n", "                        c_val[k] += 0.0\n"),
     ("consistent flux: residual with the load scaled by 0.97", "fluxes.py",
@@ -277,6 +285,9 @@ SELECTION = [
     "tests/test_multigrid.py::test_coarse_operators_are_galerkin_products",
     "tests/test_multigrid.py::test_prolongator_is_the_smoothed_tentative_prolongator",
     "tests/test_multigrid.py::test_spgemm_matches_scipy",
+    "tests/test_multigrid.py::test_aggregates_follow_the_three_pass_rule_with_radius",
+    "tests/test_multigrid.py::"
+    "test_radius_two_first_aggregates_on_tetrahedra_lower_the_operator_complexity",
     *(f"{_A}element_stiffness_mass_load_equal_exact_integrals_of_an_independent_basis[{c}]"
       for c in ("2-1", "2-2", "2-3", "2-4", "3-1", "3-2")),
     *(f"{_A}facet_mass_and_load_equal_exact_surface_integrals[{c}]"
