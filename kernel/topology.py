@@ -16,6 +16,8 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
+from .compilation import by_size
+
 __all__ = ["incidence", "enumerate_entities", "facet_topology", "index_dtype"]
 
 
@@ -566,7 +568,8 @@ def facet_topology(cells: np.ndarray, n_vertices: int):
     threads = nb.get_num_threads()
     offsets = np.empty(n_vertices + 1, dtype=np.int64)
     items = np.empty(2 * m, dtype=index_dtype(m))
-    _facet_incidence(cells, n_vertices, max(1, min(threads, m)), offsets, items)
+    by_size(_facet_incidence, cells.size)(cells, n_vertices, max(1, min(threads, m)), offsets,
+                                          items)
     # a facet per cell where v is the second smallest vertex, d where it is the smallest
     max_bucket = max(1, int(np.diff(offsets).max()) * (k - 1))
     n_unique = np.empty(n_vertices, dtype=np.int64)
@@ -577,8 +580,8 @@ def facet_topology(cells: np.ndarray, n_vertices: int):
     table_size = 16
     while table_size < 2 * max_bucket:
         table_size *= 2
-    n_shared, n_fold = _facet_count(cells, offsets, items, chunks, table_size, n_unique, n_bnd,
-                                    defects)
+    n_shared, n_fold = by_size(_facet_count, cells.size)(cells, offsets, items, chunks, table_size,
+                                                         n_unique, n_bnd, defects)
     out = {"n_facets": int(n_unique.sum()), "shared": int(n_shared), "folded": int(n_fold)}
     for name, bit in (("shared", 1), ("folded", 2)):
         if out[name]:
@@ -594,7 +597,8 @@ def facet_topology(cells: np.ndarray, n_vertices: int):
     facet_cells = np.empty(nb_total, dtype=index_dtype(m))
     facet_local = np.empty(nb_total, dtype=np.int8)
     if verts.size:
-        _facet_fill(cells, offsets, items, verts, start, max(1, min(8 * threads, verts.size)),
-                    max_bucket, facets, facet_cells, facet_local)
+        by_size(_facet_fill, cells.size)(cells, offsets, items, verts, start,
+                                         max(1, min(8 * threads, verts.size)), max_bucket,
+                                         facets, facet_cells, facet_local)
     out.update(facets=facets, facet_cells=facet_cells, facet_local=facet_local)
     return out
