@@ -47,6 +47,7 @@ import time
 import types
 
 import numba as _nb
+from numba.core.dispatcher import Dispatcher as _Dispatcher
 
 from numba.core import config as _config
 from numba.core import event as _event
@@ -112,8 +113,21 @@ PARALLEL_FROM = _parallel_from()
 _twins = {}
 
 
+def _is_parallel(kernel, _seen=None):
+    """Whether ``kernel`` or a kernel it calls by global name is ``parallel=True``."""
+    if kernel.targetoptions.get("parallel"):
+        return True
+    seen = set() if _seen is None else _seen
+    seen.add(kernel)
+    f = kernel.py_func
+    return any(isinstance(obj, _Dispatcher) and obj not in seen and _is_parallel(obj, seen)
+               for name in f.__code__.co_names for obj in [f.__globals__.get(name)])
+
+
 def serial_twin(kernel):
     """The serial twin of a ``parallel=True`` kernel (made once, compiled on first use).
+
+    A serial kernel that calls parallel ones gets a twin that calls their twins.
 
     The same code object and globals under the name ``<name>_serial``, so numba
     caches it apart from the parallel kernel; every other option (``cache``,
@@ -123,7 +137,13 @@ def serial_twin(kernel):
     twin = _twins.get(kernel)
     if twin is None:
         f = kernel.py_func
-        g = types.FunctionType(f.__code__, f.__globals__, f.__name__ + "_serial",
+        # the kernels it calls by global name, twinned too where they (or what
+        # they call) are parallel; the globals are a copy taken now
+        names = {name: serial_twin(obj) for name in f.__code__.co_names
+                 for obj in [f.__globals__.get(name)]
+                 if isinstance(obj, _Dispatcher) and _is_parallel(obj)}
+        globs = dict(f.__globals__, **names) if names else f.__globals__
+        g = types.FunctionType(f.__code__, globs, f.__name__ + "_serial",
                                f.__defaults__, f.__closure__)
         g.__qualname__ = f.__qualname__ + "_serial"
         g.__module__ = f.__module__
@@ -141,7 +161,7 @@ def serial_twin(kernel):
 def by_size(kernel, work):
     """``kernel`` when ``work`` >= :data:`PARALLEL_FROM` and numba has several threads,
     else its serial twin (same results, bit for bit; see the module notes)."""
-    if work >= PARALLEL_FROM and _nb.get_num_threads() > 1:
+    if work >= PARALLEL_FROM and _nb.get_num_threads() > 1 or not _is_parallel(kernel):
         return kernel
     return serial_twin(kernel)
 

@@ -653,9 +653,10 @@ class Hierarchy:
         x = np.zeros(n) if x0 is None else np.array(x0, dtype=np.float64, copy=True)
         history = np.empty(maxiter + max_restarts + 2)
         r, z, p, q = (np.empty(n) for _ in range(4))
-        k, nh, status = _pcg_vcycle(ptr, ind, val, *self._packed, b, x, x0 is None,
-                                    float(rtol), int(maxiter), int(max_restarts),
-                                    history, r, z, p, q)
+        # below PARALLEL_FROM non-zeros, the twin that calls the serial sparse kernels
+        pcg = by_size(_pcg_vcycle, ind.shape[0])
+        k, nh, status = pcg(ptr, ind, val, *self._packed, b, x, x0 is None, float(rtol),
+                            int(maxiter), int(max_restarts), history, r, z, p, q)
         return x, history[:nh].copy(), int(k), int(status)
 
     # -- set-up --------------------------------------------------------------

@@ -313,28 +313,45 @@ def _facet_incidence(cells, n_vertices, n_chunks, offsets, items):
 
 @nb.njit(cache=True)
 def _sort_pairs(keys, occ, n, tmp_keys, tmp_occ):
-    """Sort ``keys[:n]`` (with ``occ``) by key: insertion sort for the usual
-    few entries, a stable merge sort (``numpy.argsort``) for a large bucket
-    (a vertex in very many cells), so no bucket costs quadratic time."""
-    if n <= 48:
-        for i in range(1, n):
+    """Sort ``keys[:n]`` (with ``occ``) by key, stably: insertion sort for the
+    usual few entries; for a large bucket (a vertex in very many cells) runs of
+    32 sorted so, then merged bottom-up through ``tmp_keys`` / ``tmp_occ``, so
+    no bucket costs quadratic time.  Written out in one function rather than
+    ``numpy.argsort`` (which compiles several times longer) or helpers (which
+    numba would also compile for the literal run bounds)."""
+    run = max(n, 1) if n <= 48 else 32
+    for lo in range(0, n, run):
+        hi = min(lo + run, n)
+        for i in range(lo + 1, hi):
             k = keys[i]
             o = occ[i]
             j = i - 1
-            while j >= 0 and keys[j] > k:
+            while j >= lo and keys[j] > k:
                 keys[j + 1] = keys[j]
                 occ[j + 1] = occ[j]
                 j -= 1
             keys[j + 1] = k
             occ[j + 1] = o
-        return
-    order = np.argsort(keys[:n], kind="mergesort")
-    for i in range(n):
-        tmp_keys[i] = keys[order[i]]
-        tmp_occ[i] = occ[order[i]]
-    for i in range(n):
-        keys[i] = tmp_keys[i]
-        occ[i] = tmp_occ[i]
+    width = run
+    while width < n:
+        for lo in range(0, n, 2 * width):
+            mid = min(lo + width, n)
+            hi = min(lo + 2 * width, n)
+            i = lo
+            j = mid
+            for o in range(lo, hi):
+                if j >= hi or (i < mid and not keys[j] < keys[i]):
+                    tmp_keys[o] = keys[i]
+                    tmp_occ[o] = occ[i]
+                    i += 1
+                else:
+                    tmp_keys[o] = keys[j]
+                    tmp_occ[o] = occ[j]
+                    j += 1
+        for i in range(n):
+            keys[i] = tmp_keys[i]
+            occ[i] = tmp_occ[i]
+        width *= 2
 
 
 @nb.njit(cache=True)
@@ -346,7 +363,7 @@ def _facet_bucket(cells, offsets, items, v, s, perm, keys, occ, tmp_keys, tmp_oc
     k = cells.shape[1]
     d = k - 1
     nv = offsets.shape[0] - 1
-    n = 0
+    n = np.int64(0)  # not the literal 0: _sort_pairs would compile for Literal[int](0) too
     for i in range(offsets[v], offsets[v + 1]):
         c = items[i]
         odd = _sort_cell(cells, c, s, perm)
