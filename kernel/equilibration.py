@@ -524,32 +524,39 @@ def estimate_error_pk(solution, u, quadrature_degree, clock, helpers):
     fv = _source_at(problem.source, disc, cells, pts, xi, Vq)
     clock("source")
 
+    # every cell quantity is a matrix product of the local dofs (or the source values)
+    # with a reference table, then a small per-cell contraction
+    nloc, nq = el.n_local, xi.shape[0]
+    Hm = Jinv @ Kt @ Jinv.transpose(0, 2, 1)  # J^-1 K J^-T: (K grad v . grad w) in ref terms
     # divergence targets: int (l_l f - K grad l_l . grad u_h) q_j
-    grad_ref_u = np.einsum("cb,qbr->cqr", uloc, dphi)  # (m, nq, 2)
+    Wf = np.einsum("q,ql,jq->qlj", w, lamq, Q).reshape(nq, -1)
+    t1 = detJ[:, None, None] * (fv @ Wf).reshape(m, 3, nk)
+    Wg = np.einsum("q,jq,qbs->bjs", w, Q, dphi).reshape(nloc, -1)
+    Vg = (uloc @ Wg).reshape(m, nk, 2)  # int q_j grad_ref u_h
     gl_ref = np.array([[-1.0, -1.0], [1.0, 0.0], [0.0, 1.0]])
-    Hm = Jinv @ Kt @ Jinv.transpose(0, 2, 1)  # J^-1 K J^-T
-    t1 = np.einsum("c,q,ql,jq,cq->clj", detJ, w, lamq, Q, fv)
     glH = np.einsum("lr,crs->cls", gl_ref, Hm)
-    t2 = np.einsum("c,q,jq,cls,cqs->clj", detJ, w, Q, glH, grad_ref_u)
+    t2 = detJ[:, None, None] * (glH @ Vg.transpose(0, 2, 1))
     tgt = np.ascontiguousarray(t1 - t2)
     # linear term of the patch energies: int tau_i . l_l grad_ref u_h
-    bvec = np.ascontiguousarray(np.einsum("q,ql,iqr,cqr->cli", w, lamq, tau, grad_ref_u))
+    Wb = np.einsum("q,ql,iqr,qbr->bli", w, lamq, tau, dphi).reshape(nloc, -1)
+    bvec = np.ascontiguousarray((uloc @ Wb).reshape(m, 3, nbas))
     G = np.ascontiguousarray(J.transpose(0, 2, 1) @ Kinv @ J)
     R = np.ascontiguousarray(np.einsum("q,iqr,jqs->rsij", w, tau, tau))
-    # energy of u_h and the cell oscillation of f against its P_k projection
-    grad_u = np.einsum("crs,cqr->cqs", Jinv, grad_ref_u)  # J^-T g: (J^-1)^T
-    kg = np.einsum("crs,cqs->cqr", Kt, grad_u)
-    energy = np.einsum("c,q,cqr,cqr->c", detJ, w, kg, grad_u)
+    # energy of u_h: sum_rs Hm_rs u^T S_rs u with the reference tables S_rs
+    S = np.einsum("q,qar,qbs->rsab", w, dphi, dphi)
+    energy = detJ * sum(Hm[:, r, t] * np.einsum("ca,ab,cb->c", uloc, S[r, t], uloc,
+                                               optimize=True)
+                        for r in range(2) for t in range(2))
+    # the cell oscillation of f against its P_k projection
     Gq = (Q * w) @ Q.T
     fmomk = (fv * w) @ Q.T  # (m, nk) reference moments of f
     proj = np.linalg.solve(Gq, fmomk.T).T @ Q  # (m, nq): Pi_k f at the points
-    osc = np.sqrt(np.maximum(np.einsum("c,q,cq->c", detJ, w, (fv - proj) ** 2), 0.0))
-    # element residual f + div(K grad u_h) = f + K : Hess u_h
+    osc = np.sqrt(np.maximum(detJ * (((fv - proj) ** 2) @ w), 0.0))
+    # element residual f + div(K grad u_h) = f + sum_rs Hm_rs d_rs u_h (reference Hessian)
     Href = _hessian_table(el, xi)  # (nq, nloc, 2, 2)
-    Hu = np.einsum("cb,qbrs->cqrs", uloc, Href)
-    Hx = np.einsum("cra,cqrs,csb->cqab", Jinv, Hu, Jinv)
-    elres = fv + np.einsum("cab,cqab->cq", Kt, Hx)
-    elres2 = np.einsum("c,q,cq->c", detJ, w, elres**2)
+    Hu = (uloc @ Href.transpose(1, 0, 2, 3).reshape(nloc, -1)).reshape(m, nq, 4)
+    elres = fv + (Hu @ Hm.reshape(m, 4, 1))[:, :, 0]
+    elres2 = detJ * ((elres**2) @ w)
     clock("cells")
 
     vptr, vcell, vloc = helpers["patches"](cells, mesh.n_vertices)
@@ -584,10 +591,8 @@ def estimate_error_pk(solution, u, quadrature_degree, clock, helpers):
             continue
         pe = _edge_points(i, _GL_T)
         uq[sel] = uloc[fcell[sel]] @ el.tabulate(pe).T
-        gr = np.einsum("cb,gbr->cgr", uloc[fcell[sel]], el.tabulate_gradients(pe))
-        gx = np.einsum("crs,cgr->cgs", Jinv[fcell[sel]], gr)
-        kgx = np.einsum("crs,cgs->cgr", Kt[fcell[sel]], gx)
-        nflux[sel] = np.einsum("cgr,cr->cg", kgx, nrm[sel])
+        nflux[sel] = _normal_flux(uloc[fcell[sel]], el.tabulate_gradients(pe), Jinv[fcell[sel]],
+                                  Kt[fcell[sel]], nrm[sel])
     gq = np.zeros((nbf, _GL_T.size))
     for tag, flux in problem.neumann.items():
         ids = mesh.tagged_facets(tag)
@@ -643,9 +648,6 @@ def estimate_error_pk(solution, u, quadrature_degree, clock, helpers):
     jumps = np.zeros(m)
     for i in range(3):
         pe = _edge_points(i, _GL_T)
-        gr = np.einsum("cb,gbr->cgr", uloc, el.tabulate_gradients(pe))
-        gx = np.einsum("crs,cgr->cgs", Jinv, gr)
-        kgx = np.einsum("crs,cgs->cgr", Kt, gx)
         pa = pts[cells[:, (i + 1) % 3]]
         pb = pts[cells[:, (i + 2) % 3]]
         tv = pb - pa
@@ -654,7 +656,7 @@ def estimate_error_pk(solution, u, quadrature_degree, clock, helpers):
         if i == 0:
             qn = np.empty((3, m, _GL_T.size))
             hE = np.empty((3, m))
-        qn[i] = np.einsum("cgr,cr->cg", kgx, nv)
+        qn[i] = _normal_flux(uloc, el.tabulate_gradients(pe), Jinv, Kt, nv)
         hE[i] = he
     ci, ii = np.nonzero(neighbors >= 0)
     other = neighbors[ci, ii]
@@ -671,6 +673,17 @@ def estimate_error_pk(solution, u, quadrature_degree, clock, helpers):
             "energy": energy, "unrouted": unrouted, "n_floating": int(n_floating[0]),
             "scale": fscale, "gap": _quadrature_gap(problem.source, disc, cells, pts, xi, w,
                                                     detJ, fv, quadrature_degree, k)}
+
+
+def _normal_flux(uloc, dphi_e, Jinv, Kt, nrm):
+    """``K grad u_h . n`` at the points of an edge: dphi_e (ng, nloc, 2) reference
+    gradients there, nrm (m, 2) the unit normals; returns (m, ng)."""
+    m, nloc = uloc.shape
+    ng = dphi_e.shape[0]
+    gr = (uloc @ dphi_e.transpose(1, 0, 2).reshape(nloc, -1)).reshape(m, ng, 2)
+    gx = gr @ Jinv  # grad u_h = J^-T grad_ref u_h
+    kn = (Kt.transpose(0, 2, 1) @ nrm[:, :, None])[:, :, 0]  # K^T n
+    return (gx * kn[:, None, :]).sum(axis=2)
 
 
 def _quadrature_gap(source, disc, cells, pts, xi, w, detJ, fv, degree, k):

@@ -57,10 +57,12 @@ When the bound is guaranteed
 holds for the exact solution ``u``, when all of the following hold (up to
 floating-point round-off):
 
-* P1 elements on triangles, conductivity constant on each cell (a number, one
-  value per cell, or a (2, 2) / (n_cells, 2, 2) SPD tensor);
+* P1-P4 elements on triangles (P2-P4: :mod:`galerkit.equilibration`, below),
+  conductivity constant on each cell (a number, one value per cell or per
+  region, or a (2, 2) / (n_cells, 2, 2) SPD tensor);
 * Dirichlet data in the discrete space (a number, a dof vector, or a callable
-  that is affine along every Dirichlet facet, checked);
+  that is a polynomial of the solution's degree along every Dirichlet facet --
+  affine for P1 -- checked);
 * the source ``f`` and boundary data integrated exactly by the quadrature of
   degree ``quadrature_degree`` (default 10; exact for polynomial data up to
   that degree, constants and dof vectors); for other callables the difference
@@ -74,8 +76,15 @@ Tetrahedra: the same construction and the same conditions, read with
 tetrahedra for triangles and faces for edges (:mod:`galerkit.estimators3d`:
 the 3D patch problems are small mixed systems solved exactly per vertex).
 
-Other cases (P2-P4, conductivity varying inside cells, Dirichlet data outside
-the discrete space) raise :class:`~galerkit.errors.UnsupportedError`.
+P2-P4 on triangles: the same bound with a flux of degree k, sigma_h in RT_k
+(divergence in P_k), from the vertex-patch mixed problems of Ern & Vohralik
+(2015) and Braess, Pillwein & Schoeberl (2009) (:mod:`galerkit.equilibration`):
+``Pi_0`` reads ``Pi_k`` in the oscillation and boundary-data terms, the
+residual estimator has the element residual ``f + div(K grad u_h)``; the same
+routing of the algebraic residual, the same notes and the same conditions.
+
+Other cases (P2-P4 on tetrahedra, conductivity varying inside cells, Dirichlet
+data outside the discrete space) raise :class:`~galerkit.errors.UnsupportedError`.
 """
 
 from __future__ import annotations
@@ -673,7 +682,7 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     Parameters
     ----------
     solution : Solution
-        From :meth:`PoissonProblem.solve` (P1 on triangles or tetrahedra).
+        From :meth:`PoissonProblem.solve` (P1-P4 on triangles, P1 on tetrahedra).
     exact_gradient : callable, optional
         ``exact_gradient(x)`` with x (d, n) -> (d, n); then ``error`` and
         ``effectivity`` (bound / error) are filled in.
@@ -688,8 +697,9 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     Raises
     ------
     UnsupportedError
-        Degree above 1, a conductivity given as a callable (varying inside
-        cells), Dirichlet data not affine along a Dirichlet facet.
+        Degree above 1 on tetrahedra, a conductivity given as a callable
+        (varying inside cells), Dirichlet data not a polynomial of the
+        solution's degree along a Dirichlet facet (not affine for P1).
     InputError
         Not a solution, a bad exact gradient or quadrature degree.
 
@@ -711,6 +721,10 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     >>> est = estimate_error(sol, exact_gradient=grad)
     >>> est.guaranteed, est.bound >= est.error, 1.0 < est.effectivity < 1.5
     (True, True, True)
+    >>> est2 = estimate_error(PoissonProblem(mesh, source=f, dirichlet={"boundary": 0.0})
+    ...                       .solve(degree=2), exact_gradient=grad)
+    >>> est2.guaranteed, est2.bound >= est2.error, 1.0 < est2.effectivity < 1.1
+    (True, True, True)
     """
     t_start = time.perf_counter()
     disc = getattr(solution, "disc", None)
@@ -721,7 +735,7 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     mesh = disc.mesh
     if disc.degree != 1 and mesh.dim == 3:
         raise UnsupportedError(
-            f"estimate_error: on tetrahedra the bound is implemented for P1 only, this "
+            f"estimate_error: the bound is implemented for P1 only on tetrahedra, this "
             f"solution is P{disc.degree}; solve with degree=1 to get a bound (P2-P4 are "
             "covered on triangles)")
     if isinstance(quadrature_degree, bool) or not isinstance(quadrature_degree, (int, np.integer)) \

@@ -209,3 +209,29 @@ def test_pk_bound_is_the_same_bits_for_one_and_two_threads():
     finally:
         numba.set_num_threads(saved)
     assert out[0] == out[1]
+
+
+@pytest.mark.parametrize("degree", [2, 3])
+def test_pk_oscillation_term_equals_its_closed_form(degree):
+    # Payne & Weinberger 1960: h_K / pi ||f - Pi_k f||_K with Pi_k the L2 projection onto
+    # P_k; on the two triangles of the unit square (h = sqrt 2 on both) the projection of
+    # f = x^(k+1) + x y^k by exact rational integrals in SymPy (an independent construction)
+    X, Y = sp.symbols("X Y")
+    f = X ** (degree + 1) + X * Y**degree
+    basis = [X**a * Y**b for d in range(degree + 1) for a in range(d + 1) for b in [d - a]]
+    total = 0
+    for lo, hi in ((0, 1 - X), (1 - X, 1)):  # below and above the diagonal x + y = 1
+
+        def integral(g):
+            return sp.integrate(sp.integrate(g, (Y, lo, hi)), (X, 0, 1))
+
+        G = sp.Matrix([[integral(p * q) for q in basis] for p in basis])
+        c = G.LUsolve(sp.Matrix([integral(f * p) for p in basis]))
+        proj = sum(ci * p for ci, p in zip(c, basis))
+        total += integral(sp.expand((f - proj) ** 2))
+    osc = float(sp.sqrt(total))
+    mesh = gk.Mesh([[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [1.0, 1.0]], [[0, 1, 2], [1, 3, 2]])
+    sol = gk.PoissonProblem(mesh, source=lambdify(f.subs({X: x0, Y: x1}), 2),
+                            dirichlet={"boundary": 0.0}).solve(degree=degree)
+    est = gk.estimate_error(sol)
+    assert est.terms["oscillation"] == pytest.approx(np.sqrt(2) / np.pi * osc, rel=1e-9)
