@@ -235,3 +235,26 @@ def test_pk_oscillation_term_equals_its_closed_form(degree):
                             dirichlet={"boundary": 0.0}).solve(degree=degree)
     est = gk.estimate_error(sol)
     assert est.terms["oscillation"] == pytest.approx(np.sqrt(2) / np.pi * osc, rel=1e-9)
+
+
+def _rate(n, b, last):
+    """Least-squares slope of log b against log n over the last ``last`` points."""
+    return float(np.polyfit(np.log(n[-last:]), np.log(b[-last:]), 1)[0])
+
+
+@pytest.mark.slow
+def test_pk_adaptive_p2_on_the_lshape_reaches_the_optimal_rate_and_uniform_stays_at_one_third():
+    # Binev, Dahmen & DeVore 2004; Stevenson 2007: Doerfler marking with newest-vertex
+    # bisection reaches the best rate N^(-k/2) = N^(-1) for P2 despite the corner singularity
+    # r^(2/3) (Strang & Fix 1973), where uniform refinement gives h^(2/3) = N^(-1/3)
+    run = gk.adapt(_lshape(2), degree=2, max_dofs=15000, max_levels=60)
+    n = np.array(run.table.column("n_dofs"), float)
+    b = np.array(run.table.column("bound"))
+    assert abs(_rate(n, b, 6) + 1.0) < 0.05, _rate(n, b, 6)
+    sizes, bounds = [], []
+    for cells in (4, 8, 16, 32):
+        sol = _lshape(cells).solve(degree=2)
+        sizes.append(sol.disc.n_dofs)
+        bounds.append(gk.estimate_error(sol).bound)
+    rate = _rate(np.array(sizes, float), np.array(bounds), 3)
+    assert abs(rate + 1 / 3) < 0.05, rate
