@@ -233,6 +233,7 @@ class PoissonProblem:
         sec["assemble"] = time.perf_counter() - t0
         t0 = time.perf_counter()
         elim, Af, bf, fixed_vals, comps, notes = self.constrain(asm, A, b, robin_diagonal)
+        del A, b, robin_diagonal  # the full system is not needed again: free it for the set-up
         check_scales(Af, bf, fixed_vals)
         sec["constrain"] = time.perf_counter() - t0
         t0 = time.perf_counter()

@@ -96,6 +96,8 @@ REORIENT = f"{_M}negatively_oriented_cells_are_reoriented_and_counted"
 CELL_TABLES = f"{_M}generators_write_the_cell_tables_counted_by_hand"
 SIDE_TAGS = f"{_M}side_tags_have_the_right_sizes_and_lie_on_their_side"
 TAG_IDS = f"{_M}facet_tags_are_sorted_unique_copies_whatever_the_ids_given"
+COMPONENTS = f"{_M}connected_components_equal_scipy_csgraph"
+VOLUMES = f"{_M}generated_mesh_volume_equals_the_domain_volume"
 
 # (name, file relative to kernel/, old text, new text[, test to run first]); old must
 # occur exactly once.  The test to run first is the one seen to kill the fault: it saves
@@ -120,6 +122,12 @@ MUTANTS = [
      "if abs(x - upper[a]) <= tol:", "if abs(x - upper[a]) < -tol:", SIDE_TAGS),
     ("set_facet_tag: unsorted ids kept as given", "mesh.py",
      "if ids.size > 1 and not (ids[1:] > ids[:-1]).all():", "if False:", TAG_IDS),
+    ("cell check: tetrahedron volumes divided by 6.1", "mesh.py",
+     "+ a2 * (b0 * c1 - b1 * c0)) / 6.0, longest", "+ a2 * (b0 * c1 - b1 * c0)) / 6.1, longest",
+     VOLUMES),
+    ("cell check: triangle areas scaled by 1.02", "mesh.py",
+     "return 0.5 * (ax * by - ay * bx), longest", "return 0.51 * (ax * by - ay * bx), longest",
+     VOLUMES),
     ("l2_error scaled by 1.03", "functionals.py",
      "t = _integrate(disc, u, _L2, exact=exact, quadrature_degree=quadrature_degree)\n"
      "    return t if per_cell else float(np.sqrt(max(t.sum(), 0.0)))",
@@ -162,6 +170,10 @@ MUTANTS = [
     ("P4 mass quadrature one degree short", "assembly.py",
      "mass_table(mesh.dim, k, 2 * k).sum(axis=0, keepdims=True)",
      "mass_table(mesh.dim, k, 2 * k - (k == 4)).sum(axis=0, keepdims=True)", A24),
+    ("pattern sort: heapsort sifts towards the smaller child (long rows unsorted)",
+     "assembly.py", "if child + 1 < end and a[lo + child + 1] > a[lo + child]:",
+     "if child + 1 < end and a[lo + child + 1] < a[lo + child]:",
+     "tests/test_assembly.py::test_p4_tetrahedra_long_rows_match_coo_reference"),
     ("transposed local matrix: scatter reads the (unset) lower triangle", "assembly.py",
      "data[base + posmap[p, a, b]] += Kloc[b, a]", "data[base + posmap[p, a, b]] += Kloc[a, b]"),
     ("boundary load: sign flipped", "assembly.py",
@@ -299,6 +311,7 @@ SELECTION = [
       for c in ("2-1", "2-2", "3-2")),
     *(f"{_F}zero_against_products_of_sines_gives_the_closed_forms[{c}]" for c in ("2-1", "3-1")),
     FOLD, FOLD3, _FNP, NONMANIFOLD, REORIENT, CELL_TABLES, SIDE_TAGS, TAG_IDS,
+    COMPONENTS, VOLUMES,
     "tests/test_boundary.py",
     "tests/test_regions.py",
     "tests/test_fluxes.py",

@@ -280,6 +280,37 @@ def test_facet_tags_are_sorted_unique_copies_whatever_the_ids_given():
     assert mesh.set_facet_tag("c", [4, 4]).tolist() == [4]
 
 
+def test_connected_components_equal_scipy_csgraph():
+    # reference: scipy.sparse.csgraph.connected_components of the vertex graph whose
+    # edges join the vertices of each cell; labels renumbered by first cell
+    import scipy.sparse as sp
+    from scipy.sparse.csgraph import connected_components
+
+    rng = np.random.default_rng(5)
+    pieces = [structured_triangles(4, 3), structured_triangles(2, 2, (5, 0), (6, 1)),
+              structured_triangles(3, 1, (0, 5), (3, 6))]
+    pts = np.vstack([p.points for p in pieces])
+    offs = np.cumsum([0] + [p.n_vertices for p in pieces])
+    cells = np.vstack([p.cells + o for p, o in zip(pieces, offs)])
+    new = rng.permutation(len(pts))  # vertex numbers mixed across the pieces
+    q = np.empty_like(pts)
+    q[new] = pts
+    cells = new[cells][rng.permutation(len(cells))]
+    mesh = Mesh(q, cells)
+    rows = np.repeat(mesh.cells[:, :1], 2, axis=1).ravel()
+    graph = sp.coo_array((np.ones(rows.size), (rows, mesh.cells[:, 1:].ravel())),
+                         shape=(len(q), len(q)))
+    n, vertex_label = connected_components(graph, directed=False)
+    cell_label = vertex_label[mesh.cells[:, 0]]
+    _, first = np.unique(cell_label, return_index=True)
+    order = np.argsort(np.argsort(first))  # component -> rank of its first cell
+    count, labels = mesh.connected_components()
+    assert count == n == 3
+    np.testing.assert_array_equal(labels, order[cell_label])
+    count, labels = structured_tetrahedra(3, 2, 2).connected_components()
+    assert count == 1 and not labels.any()
+
+
 def test_mesh_arrays_are_read_only_float64_points_and_int32_cells():
     mesh = structured_tetrahedra(1, 1, 1)
     assert mesh.points.dtype == np.float64 and mesh.cells.dtype == np.int32
