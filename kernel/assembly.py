@@ -38,6 +38,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .coefficients import scalar_values, tensor_values
+from .compilation import by_size
 from .regions import RegionCoefficient, region_coefficient
 from .dofs import Discretization
 from .elements import REFERENCE_FACETS, lagrange_element
@@ -643,19 +644,20 @@ def symbolic_phase(dofs, n_dofs):
     offsets, items = incidence(dofs, n_dofs)
     n_blocks = max(1, min(n_dofs, 4 * nb.get_num_threads()))
     row_nnz = np.empty(n_dofs, dtype=np.int64)
-    _pattern_count(dofs, offsets, items, n_blocks, row_nnz)
+    work = dofs.size * dofs.shape[1]  # entries of the position map
+    by_size(_pattern_count, work)(dofs, offsets, items, n_blocks, row_nnz)
     nnz = int(row_nnz.sum())
     idt = index_dtype(max(nnz, n_dofs))
     indptr = np.zeros(n_dofs + 1, dtype=idt)
     np.cumsum(row_nnz, out=indptr[1:])
     indices = np.empty(nnz, dtype=idt)
-    _pattern_fill(dofs, offsets, items, n_blocks, indptr, indices)
+    by_size(_pattern_fill, work)(dofs, offsets, items, n_blocks, indptr, indices)
     del offsets, items
     order = _cell_order(dofs, n_dofs)
     longest = int(row_nnz.max())
     pdt = np.uint8 if longest <= 256 else (np.uint16 if longest <= 65536 else np.uint32)
     posmap = np.empty((dofs.shape[0], dofs.shape[1], dofs.shape[1]), dtype=pdt)
-    _position_map(dofs, order, indptr, indices, posmap)
+    by_size(_position_map, work)(dofs, order, indptr, indices, posmap)
     return indptr, indices, order, posmap
 
 
@@ -960,15 +962,17 @@ class Assembler:
             if rule is not None:  # gradients are constant: average kappa per cell
                 kappa = np.ascontiguousarray(
                     (kappa @ rule.weights)[:, None] / rule.weights.sum())
-            p1_stiffness_kernel(d)(mesh.points, mesh.cells, self.order, self.posmap,
-                                   self.indptr, rows, cells, kappa, tensor, data)
+            by_size(p1_stiffness_kernel(d), self.posmap.size)(
+                mesh.points, mesh.cells, self.order, self.posmap, self.indptr, rows, cells,
+                kappa, tensor, data)
         else:
             if rule is None:
                 R = stiffness_table(d, k, max(2 * k - 2, 0)).sum(axis=0, keepdims=True)
             else:
                 R = stiffness_table(d, k, rule.degree)
-            _generic_matrix(mesh.points, mesh.cells, disc.cell_dofs, self.order, self.posmap,
-                            self.indptr, rows, cells, 0, R, kappa, tensor, data)
+            by_size(_generic_matrix, self.posmap.size)(
+                mesh.points, mesh.cells, disc.cell_dofs, self.order, self.posmap, self.indptr,
+                rows, cells, 0, R, kappa, tensor, data)
         return self._wrap(data, out)
 
     def mass(self, coefficient=1.0, *, out=None, quadrature_degree=None):
@@ -1000,9 +1004,9 @@ class Assembler:
             R = mass_table(mesh.dim, k, rule.degree)
         data, out = self._new_matrix(out, method="mass", inputs={"the coefficient": coefficient})
         rows, cells = self._chunk_plan()
-        _generic_matrix(mesh.points, mesh.cells, disc.cell_dofs, self.order, self.posmap,
-                        self.indptr, rows, cells, 1, R, coef, np.zeros((0, mesh.dim, mesh.dim)),
-                        data)
+        by_size(_generic_matrix, self.posmap.size)(
+            mesh.points, mesh.cells, disc.cell_dofs, self.order, self.posmap, self.indptr, rows,
+            cells, 1, R, coef, np.zeros((0, mesh.dim, mesh.dim)), data)
         return self._wrap(data, out)
 
     def load(self, source, *, out=None, quadrature_degree=None):
@@ -1042,8 +1046,9 @@ class Assembler:
                 i = int(np.flatnonzero(bad)[0])
                 raise InputError(f"source: dof vector has a non-finite value {f[i]} at dof {i}")
             Mref = mass_reference(mesh.dim, k)
-            _generic_vector(mesh.points, mesh.cells, disc.cell_dofs, self.order, rows, cells,
-                            1, Mref, np.zeros((1, 1)), f, b)
+            by_size(_generic_vector, self.posmap.size)(
+                mesh.points, mesh.cells, disc.cell_dofs, self.order, rows, cells, 1, Mref,
+                np.zeros((1, 1)), f, b)
             return b
         if arr is not None and arr.ndim >= 1:
             # per-cell source values are refused: with n_cells == n_dofs they could not
@@ -1060,8 +1065,9 @@ class Assembler:
             R = np.ascontiguousarray(load_table(mesh.dim, k, k).sum(axis=0, keepdims=True))
         else:
             R = load_table(mesh.dim, k, rule.degree)
-        _generic_vector(mesh.points, mesh.cells, disc.cell_dofs, self.order, rows, cells,
-                        0, R, coef, np.zeros(1), b)
+        by_size(_generic_vector, self.posmap.size)(
+            mesh.points, mesh.cells, disc.cell_dofs, self.order, rows, cells, 0, R, coef,
+            np.zeros(1), b)
         return b
 
     # -- facet terms ----------------------------------------------------------------

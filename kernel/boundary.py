@@ -16,6 +16,7 @@ import numba as nb
 import numpy as np
 import scipy.sparse as sp
 
+from .compilation import by_size
 from .errors import InputError
 from .topology import index_dtype
 from .solvers import _check_csr_structure
@@ -215,12 +216,13 @@ class DirichletElimination:
     def _exact_pattern(self):
         """The reduced pattern by counting (when the prediction does not hold)."""
         rptr = np.zeros(self.free.size + 1, dtype=np.int64)
-        _reduced_pattern(self._indptr, self._indices, self.new_index, self.free, rptr,
-                         np.empty(0, self._pdt))
+        kernel = by_size(_reduced_pattern, self._indices.size)
+        kernel(self._indptr, self._indices, self.new_index, self.free, rptr,
+               np.empty(0, self._pdt))
         np.cumsum(rptr, out=rptr)
         self._set_lengths(rptr)
         rind = np.empty(self._nnz, dtype=self._pdt)
-        _reduced_pattern(self._indptr, self._indices, self.new_index, self.free, rptr, rind)
+        kernel(self._indptr, self._indices, self.new_index, self.free, rptr, rind)
         self._store_pattern(rind)
 
     @property
@@ -312,8 +314,9 @@ class DirichletElimination:
             b = g_full = rhs = self._no_rhs
         if rind is None:
             rind = self._no_rhs.astype(self._pdt)
-        bad, wrong = _reduce(self._indptr, self._indices, data, self.new_index, self.free,
-                             self._rptr, out, rind, lift, b, g_full, rhs)
+        bad, wrong = by_size(_reduce, self._indices.size)(
+            self._indptr, self._indices, data, self.new_index, self.free, self._rptr, out, rind,
+            lift, b, g_full, rhs)
         if bad:
             k = int(np.flatnonzero(~np.isfinite(data[:int(self._indptr[-1])]))[0])
             row = int(np.searchsorted(self._indptr, k, side="right") - 1)

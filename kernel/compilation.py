@@ -23,6 +23,18 @@ signatures, see :func:`galerkit.multigrid.compile_solver_kernels`) into the same
 cache while this process compiles the mesh and assembly kernels;
 :func:`wait_for_compile_ahead`, called before the solver set-up, waits for it and
 counts the wait as compile time.  ``GALERKIT_COMPILE_AHEAD=0`` turns it off.
+
+Serial twins (:func:`by_size`): a ``parallel=True`` kernel compiles two to six
+times slower than the same loops compiled serially (numba's parfor passes), and on
+a small problem its threads save less than that costs.  A kernel called through
+``by_size(kernel, work)`` runs as itself when ``work`` (the array entries the call
+reads or writes: cells x vertices per cell, cells x local matrix entries,
+non-zeros) reaches :data:`PARALLEL_FROM` and numba has more than one thread;
+otherwise it runs as its serial twin: the same source compiled without
+``parallel`` (``prange`` runs as ``range``), cached under its own name
+(``<name>_serial``).  The kernels are deterministic for any thread count, so the
+twin returns the same bits.  ``GALERKIT_PARALLEL_FROM`` sets the threshold
+(0: always the parallel kernel, as the test suite runs).
 """
 
 from __future__ import annotations
@@ -32,12 +44,17 @@ import os
 import subprocess
 import sys
 import time
+import types
+
+import numba as _nb
+from numba.core.dispatcher import Dispatcher as _Dispatcher
 
 from numba.core import config as _config
 from numba.core import event as _event
 
 __all__ = ["compile_seconds", "PhaseSeconds", "cache_folder", "on_first_compile",
-           "start_compile_ahead", "wait_for_compile_ahead"]
+           "start_compile_ahead", "wait_for_compile_ahead", "by_size", "serial_twin",
+           "PARALLEL_FROM"]
 
 _state = {"seconds": 0.0, "depth": 0, "start": 0.0, "count": 0, "announce": None}
 
@@ -75,6 +92,78 @@ def compile_count() -> int:
 def on_first_compile(callback) -> None:
     """Call ``callback()`` once, when the next kernel compilation starts (None: never)."""
     _state["announce"] = callback
+
+
+def _parallel_from() -> int:
+    text = os.environ.get("GALERKIT_PARALLEL_FROM", "5000000")
+    try:
+        value = int(text)
+    except ValueError:
+        raise ValueError(f"GALERKIT_PARALLEL_FROM must be a whole number of array entries "
+                         f"(0: always parallel), got {text!r}") from None
+    if value < 0:
+        raise ValueError(f"GALERKIT_PARALLEL_FROM must be >= 0, got {value}")
+    return value
+
+
+#: work (array entries per call) from which a kernel called through :func:`by_size`
+#: runs in parallel; below it, its serial twin runs (``GALERKIT_PARALLEL_FROM``)
+PARALLEL_FROM = _parallel_from()
+
+_twins = {}
+
+
+def _is_parallel(kernel, _seen=None):
+    """Whether ``kernel`` or a kernel it calls by global name is ``parallel=True``."""
+    if kernel.targetoptions.get("parallel"):
+        return True
+    seen = set() if _seen is None else _seen
+    seen.add(kernel)
+    f = kernel.py_func
+    return any(isinstance(obj, _Dispatcher) and obj not in seen and _is_parallel(obj, seen)
+               for name in f.__code__.co_names for obj in [f.__globals__.get(name)])
+
+
+def serial_twin(kernel):
+    """The serial twin of a ``parallel=True`` kernel (made once, compiled on first use).
+
+    A serial kernel that calls parallel ones gets a twin that calls their twins.
+
+    The same code object and globals under the name ``<name>_serial``, so numba
+    caches it apart from the parallel kernel; every other option (``cache``,
+    ``fastmath``, ``error_model``, ...) is kept.  A kernel without a cache (made
+    at run time) gets a twin without one.
+    """
+    twin = _twins.get(kernel)
+    if twin is None:
+        f = kernel.py_func
+        # the kernels it calls by global name, twinned too where they (or what
+        # they call) are parallel; the globals are a copy taken now
+        names = {name: serial_twin(obj) for name in f.__code__.co_names
+                 for obj in [f.__globals__.get(name)]
+                 if isinstance(obj, _Dispatcher) and _is_parallel(obj)}
+        globs = dict(f.__globals__, **names) if names else f.__globals__
+        g = types.FunctionType(f.__code__, globs, f.__name__ + "_serial",
+                               f.__defaults__, f.__closure__)
+        g.__qualname__ = f.__qualname__ + "_serial"
+        g.__module__ = f.__module__
+        g.__doc__ = f.__doc__
+        g.__kwdefaults__ = f.__kwdefaults__
+        options = {k: v for k, v in kernel.targetoptions.items()
+                   if k not in ("parallel", "nopython")}
+        # ``cache`` is the dispatcher's, not a target option
+        cached = type(getattr(kernel, "_cache", None)).__name__ not in ("NullCache", "NoneType")
+        twin = _nb.njit(cache=cached, **options)(g)
+        _twins[kernel] = twin
+    return twin
+
+
+def by_size(kernel, work):
+    """``kernel`` when ``work`` >= :data:`PARALLEL_FROM` and numba has several threads,
+    else its serial twin (same results, bit for bit; see the module notes)."""
+    if work >= PARALLEL_FROM and _nb.get_num_threads() > 1 or not _is_parallel(kernel):
+        return kernel
+    return serial_twin(kernel)
 
 
 _ahead = {"proc": None, "closed": False}

@@ -11,6 +11,7 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
+from .compilation import by_size
 from .errors import InputError, ResourceError
 from .mesh import Mesh, remove_unreferenced_vertices
 from .topology import index_dtype
@@ -97,8 +98,9 @@ def _tag_box(mesh, lower, upper, spacing):
     tol = 1e-8 * float(np.min(spacing))
     names = [("xmin", "xmax"), ("ymin", "ymax"), ("zmin", "zmax")]
     sides = np.empty(mesh.boundary_facets.shape[0], dtype=np.uint8)
-    _box_sides(mesh.points, mesh.boundary_facets, np.ascontiguousarray(lower, dtype=np.float64),
-               np.ascontiguousarray(upper, dtype=np.float64), tol, sides)
+    by_size(_box_sides, sides.size)(mesh.points, mesh.boundary_facets,
+                                    np.ascontiguousarray(lower, dtype=np.float64),
+                                    np.ascontiguousarray(upper, dtype=np.float64), tol, sides)
     for axis in range(mesh.dim):
         for end, side in enumerate(names[axis]):
             ids = np.flatnonzero(sides & np.uint8(1 << (2 * axis + end)))
@@ -137,7 +139,8 @@ def _grid_points(counts, lower, upper):
     axes = [np.linspace(lower[a], upper[a], counts[a] + 1) for a in range(len(counts))]
     n = int(np.prod([c + 1 for c in counts]))
     pts = np.empty((n, len(counts)))
-    _fill_grid_points(axes[0], axes[1], axes[2] if len(axes) == 3 else np.zeros(1), pts)
+    by_size(_fill_grid_points, pts.size)(axes[0], axes[1],
+                                         axes[2] if len(axes) == 3 else np.zeros(1), pts)
     return pts
 
 
@@ -186,7 +189,7 @@ def _cell_table(counts, n_vertices):
         pattern = np.array(rows, dtype=np.int64)
     cells = np.empty((nx * ny * nz * pattern.shape[0], pattern.shape[1]),
                      dtype=index_dtype(n_vertices))
-    _fill_grid_cells(nx, ny, nz, pattern, cells)
+    by_size(_fill_grid_cells, cells.size)(nx, ny, nz, pattern, cells)
     return cells
 
 

@@ -10,6 +10,8 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
+from .compilation import by_size
+
 __all__ = ["jacobian", "invert", "physical_points"]
 
 
@@ -83,5 +85,6 @@ def physical_points(points, cells, ref_points):
     ndarray, shape (d, m * nq): point ``q`` of cell ``c`` is column ``c*nq + q``.
     """
     out = np.empty((points.shape[1], cells.shape[0] * ref_points.shape[0]))
-    _physical_points(points, cells, np.ascontiguousarray(ref_points, dtype=np.float64), out)
+    by_size(_physical_points, out.size)(points, cells,
+                                        np.ascontiguousarray(ref_points, dtype=np.float64), out)
     return out

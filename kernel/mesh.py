@@ -16,6 +16,7 @@ from functools import cached_property
 import numba as nb
 import numpy as np
 
+from .compilation import by_size
 from .errors import MeshError
 from .regions import DEFAULT_REGION, as_region_ids, interfaces as _interfaces
 from .topology import facet_topology, index_dtype
@@ -651,8 +652,8 @@ class Mesh:
         used = np.zeros(n, dtype=np.uint8)
         codes = np.empty(c.shape[0], dtype=np.uint8)
         vol = np.empty(c.shape[0])
-        n_bad, n_degenerate, n_negative = _validate_cells(src, p, n, DEGENERACY_TOLERANCE, c,
-                                                          codes, used, vol)
+        n_bad, n_degenerate, n_negative = by_size(_validate_cells, c.size)(
+            src, p, n, DEGENERACY_TOLERANCE, c, codes, used, vol)
         del src
         if n_bad:
             raise _bad_index_error(c_in, codes, n_bad, n, d)
@@ -952,7 +953,7 @@ class Mesh:
     @cached_property
     def _components(self):
         labels = np.empty(self.n_cells, dtype=np.int64)
-        count = _cell_components(self.cells, self.n_vertices, labels)
+        count = by_size(_cell_components, self.cells.size)(self.cells, self.n_vertices, labels)
         labels.flags.writeable = False
         return int(count), labels
 

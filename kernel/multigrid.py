@@ -66,6 +66,7 @@ from numba import types as _nbt
 from numba.typed import List
 
 from . import compilation
+from .compilation import by_size
 from .errors import InputError
 from .sparse import (_chunks, cg_update, dot, matvec_add_into, matvec_into, residual_into,
                      spgemm, transpose, xpby_into)
@@ -222,10 +223,11 @@ def _smoothed_prolongator(indptr, indices, data, l1, omega, agg, n_agg):
     (first appearance in A's row), the same for any thread count.
     """
     nchunk = _chunks(indptr.shape[0] - 1)
-    p_ptr = _prolongator_count(indptr, indices, agg, n_agg, nchunk)
+    p_ptr = by_size(_prolongator_count, indices.shape[0])(indptr, indices, agg, n_agg, nchunk)
     p_ind = np.empty(p_ptr[-1], dtype=np.int32)
     p_val = np.empty(p_ptr[-1], dtype=np.float64)
-    _prolongator_fill(indptr, indices, data, l1, omega, agg, n_agg, nchunk, p_ptr, p_ind, p_val)
+    by_size(_prolongator_fill, indices.shape[0])(indptr, indices, data, l1, omega, agg, n_agg,
+                                                 nchunk, p_ptr, p_ind, p_val)
     return p_ptr, p_ind, p_val
 
 
@@ -499,13 +501,13 @@ def _csr_arrays(A):
 
 def _prune(ptr, ind, val):
     """Drop stored exact zeros (right angles give zero couplings); no copy when none."""
-    cnt = _prune_counts(ptr, val)
+    cnt = by_size(_prune_counts, val.shape[0])(ptr, val)
     new_ptr = np.cumsum(cnt)
     if new_ptr[-1] == val.shape[0]:
         return ptr, ind, val, False
     new_ind = np.empty(new_ptr[-1], dtype=np.int32)
     new_val = np.empty(new_ptr[-1], dtype=np.float64)
-    _prune_fill(ptr, ind, val, new_ptr, new_ind, new_val)
+    by_size(_prune_fill, val.shape[0])(ptr, ind, val, new_ptr, new_ind, new_val)
     return _readonly(new_ptr), _readonly(new_ind), _readonly(new_val), True
 
 
@@ -651,9 +653,10 @@ class Hierarchy:
         x = np.zeros(n) if x0 is None else np.array(x0, dtype=np.float64, copy=True)
         history = np.empty(maxiter + max_restarts + 2)
         r, z, p, q = (np.empty(n) for _ in range(4))
-        k, nh, status = _pcg_vcycle(ptr, ind, val, *self._packed, b, x, x0 is None,
-                                    float(rtol), int(maxiter), int(max_restarts),
-                                    history, r, z, p, q)
+        # below PARALLEL_FROM non-zeros, the twin that calls the serial sparse kernels
+        pcg = by_size(_pcg_vcycle, ind.shape[0])
+        k, nh, status = pcg(ptr, ind, val, *self._packed, b, x, x0 is None, float(rtol),
+                            int(maxiter), int(max_restarts), history, r, z, p, q)
         return x, history[:nh].copy(), int(k), int(status)
 
     # -- set-up --------------------------------------------------------------
@@ -721,7 +724,7 @@ class Hierarchy:
         return True
 
     def _level_values(self, lv, level_index):
-        bad = _diagonal_and_l1(lv.ptr, lv.ind, lv.val, lv.diag, lv.l1)
+        bad = by_size(_diagonal_and_l1, lv.ind.shape[0])(lv.ptr, lv.ind, lv.val, lv.diag, lv.l1)
         if bad >= 0:
             where = "the matrix" if level_index == 0 else f"the level-{level_index} operator"
             raise InputError(

@@ -27,6 +27,8 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
+from .compilation import by_size
+
 __all__ = [
     "BLOCK",
     "dot",
@@ -134,7 +136,7 @@ def transpose(indptr, indices, data, n_cols):
     prefix sum gives every block its slot in every output row.
     """
     nblk = max(1, min(nb.get_num_threads(), indptr.shape[0] - 1))
-    return _transpose(indptr, indices, data, n_cols, nblk)
+    return by_size(_transpose, indices.shape[0])(indptr, indices, data, n_cols, nblk)
 
 
 @nb.njit(cache=True, parallel=True)
@@ -191,10 +193,12 @@ def spgemm(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, n_cols):
     are independent, so the result is the same for any thread count.
     """
     nchunk = _chunks(a_ptr.shape[0] - 1)
-    c_ptr = _spgemm_count(a_ptr, a_ind, b_ptr, b_ind, n_cols, nchunk)
+    work = a_ind.shape[0] + b_ind.shape[0]
+    c_ptr = by_size(_spgemm_count, work)(a_ptr, a_ind, b_ptr, b_ind, n_cols, nchunk)
     c_ind = np.empty(c_ptr[-1], dtype=np.int32)
     c_val = np.empty(c_ptr[-1], dtype=np.float64)
-    _spgemm_fill(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, c_ptr, c_ind, c_val, n_cols, nchunk)
+    by_size(_spgemm_fill, work)(a_ptr, a_ind, a_val, b_ptr, b_ind, b_val, c_ptr, c_ind, c_val,
+                                n_cols, nchunk)
     return c_ptr, c_ind, c_val
 
 

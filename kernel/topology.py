@@ -16,6 +16,8 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
+from .compilation import by_size
+
 __all__ = ["incidence", "enumerate_entities", "facet_topology", "index_dtype"]
 
 
@@ -311,28 +313,45 @@ def _facet_incidence(cells, n_vertices, n_chunks, offsets, items):
 
 @nb.njit(cache=True)
 def _sort_pairs(keys, occ, n, tmp_keys, tmp_occ):
-    """Sort ``keys[:n]`` (with ``occ``) by key: insertion sort for the usual
-    few entries, a stable merge sort (``numpy.argsort``) for a large bucket
-    (a vertex in very many cells), so no bucket costs quadratic time."""
-    if n <= 48:
-        for i in range(1, n):
+    """Sort ``keys[:n]`` (with ``occ``) by key, stably: insertion sort for the
+    usual few entries; for a large bucket (a vertex in very many cells) runs of
+    32 sorted so, then merged bottom-up through ``tmp_keys`` / ``tmp_occ``, so
+    no bucket costs quadratic time.  Written out in one function rather than
+    ``numpy.argsort`` (which compiles several times longer) or helpers (which
+    numba would also compile for the literal run bounds)."""
+    run = max(n, 1) if n <= 48 else 32
+    for lo in range(0, n, run):
+        hi = min(lo + run, n)
+        for i in range(lo + 1, hi):
             k = keys[i]
             o = occ[i]
             j = i - 1
-            while j >= 0 and keys[j] > k:
+            while j >= lo and keys[j] > k:
                 keys[j + 1] = keys[j]
                 occ[j + 1] = occ[j]
                 j -= 1
             keys[j + 1] = k
             occ[j + 1] = o
-        return
-    order = np.argsort(keys[:n], kind="mergesort")
-    for i in range(n):
-        tmp_keys[i] = keys[order[i]]
-        tmp_occ[i] = occ[order[i]]
-    for i in range(n):
-        keys[i] = tmp_keys[i]
-        occ[i] = tmp_occ[i]
+    width = run
+    while width < n:
+        for lo in range(0, n, 2 * width):
+            mid = min(lo + width, n)
+            hi = min(lo + 2 * width, n)
+            i = lo
+            j = mid
+            for o in range(lo, hi):
+                if j >= hi or (i < mid and not keys[j] < keys[i]):
+                    tmp_keys[o] = keys[i]
+                    tmp_occ[o] = occ[i]
+                    i += 1
+                else:
+                    tmp_keys[o] = keys[j]
+                    tmp_occ[o] = occ[j]
+                    j += 1
+        for i in range(n):
+            keys[i] = tmp_keys[i]
+            occ[i] = tmp_occ[i]
+        width *= 2
 
 
 @nb.njit(cache=True)
@@ -344,7 +363,7 @@ def _facet_bucket(cells, offsets, items, v, s, perm, keys, occ, tmp_keys, tmp_oc
     k = cells.shape[1]
     d = k - 1
     nv = offsets.shape[0] - 1
-    n = 0
+    n = np.int64(0)  # not the literal 0: _sort_pairs would compile for Literal[int](0) too
     for i in range(offsets[v], offsets[v + 1]):
         c = items[i]
         odd = _sort_cell(cells, c, s, perm)
@@ -566,7 +585,8 @@ def facet_topology(cells: np.ndarray, n_vertices: int):
     threads = nb.get_num_threads()
     offsets = np.empty(n_vertices + 1, dtype=np.int64)
     items = np.empty(2 * m, dtype=index_dtype(m))
-    _facet_incidence(cells, n_vertices, max(1, min(threads, m)), offsets, items)
+    by_size(_facet_incidence, cells.size)(cells, n_vertices, max(1, min(threads, m)), offsets,
+                                          items)
     # a facet per cell where v is the second smallest vertex, d where it is the smallest
     max_bucket = max(1, int(np.diff(offsets).max()) * (k - 1))
     n_unique = np.empty(n_vertices, dtype=np.int64)
@@ -577,8 +597,8 @@ def facet_topology(cells: np.ndarray, n_vertices: int):
     table_size = 16
     while table_size < 2 * max_bucket:
         table_size *= 2
-    n_shared, n_fold = _facet_count(cells, offsets, items, chunks, table_size, n_unique, n_bnd,
-                                    defects)
+    n_shared, n_fold = by_size(_facet_count, cells.size)(cells, offsets, items, chunks, table_size,
+                                                         n_unique, n_bnd, defects)
     out = {"n_facets": int(n_unique.sum()), "shared": int(n_shared), "folded": int(n_fold)}
     for name, bit in (("shared", 1), ("folded", 2)):
         if out[name]:
@@ -594,7 +614,8 @@ def facet_topology(cells: np.ndarray, n_vertices: int):
     facet_cells = np.empty(nb_total, dtype=index_dtype(m))
     facet_local = np.empty(nb_total, dtype=np.int8)
     if verts.size:
-        _facet_fill(cells, offsets, items, verts, start, max(1, min(8 * threads, verts.size)),
-                    max_bucket, facets, facet_cells, facet_local)
+        by_size(_facet_fill, cells.size)(cells, offsets, items, verts, start,
+                                         max(1, min(8 * threads, verts.size)), max_bucket,
+                                         facets, facet_cells, facet_local)
     out.update(facets=facets, facet_cells=facet_cells, facet_local=facet_local)
     return out

@@ -168,3 +168,33 @@ def test_any_number_of_row_ranges_gives_identical_bits(dim, k):
                         asm.stiffness(tensor).data.tobytes(), asm.mass(_kappa).data.tobytes(),
                         asm.load(lambda x: np.exp(x[0]) * x[1]).tobytes()])
     assert results[0] == results[1] == results[2]
+
+
+@pytest.mark.parametrize("dim,k", CASES)
+def test_serial_twins_give_the_bits_of_the_parallel_kernels(dim, k, monkeypatch):
+    # Below GALERKIT_PARALLEL_FROM entries a kernel runs as its serial twin (the same
+    # source compiled without parallel=True, cheaper to compile); the suite runs the
+    # parallel kernels (tests/conftest.py), so here both run on the same input.
+    from galerkit import compilation
+
+    monkeypatch.setattr(compilation, "PARALLEL_FROM", 0)
+    parallel = _everything(dim, k) | {"cg-amg": _poisson(dim, "cg-amg")[0]}
+    monkeypatch.setattr(compilation, "PARALLEL_FROM", 1 << 62)
+    serial = _everything(dim, k) | {"cg-amg": _poisson(dim, "cg-amg")[0]}
+    assert [key for key in parallel if parallel[key] != serial[key]] == []
+    twins = [compilation._twins[kern] for kern in compilation._twins]
+    assert twins and all(not t.targetoptions.get("parallel") for t in twins)
+    assert any(t.signatures for t in twins)
+
+
+def test_a_kernel_below_the_threshold_runs_as_its_serial_twin(monkeypatch):
+    from galerkit import compilation, generators
+
+    kernel = generators._fill_grid_points
+    monkeypatch.setattr(compilation, "PARALLEL_FROM", 10)
+    twin = compilation.by_size(kernel, 9)
+    assert twin is compilation.serial_twin(kernel) and twin is not kernel
+    assert twin.py_func.__qualname__ == "_fill_grid_points_serial"
+    assert twin.py_func.__code__ is kernel.py_func.__code__
+    expected = kernel is compilation.by_size(kernel, 10)
+    assert expected == (numba.get_num_threads() > 1)
