@@ -138,19 +138,20 @@ class AdaptiveRun:
 def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, bulk=0.5,
           max_levels=30, exact_gradient=None, method="auto", rtol=1e-10, maxiter=None,
           keep="all"):
-    """Adaptive P1 solve driven by the guaranteed error bound.
+    """Adaptive solve driven by the guaranteed error bound.
 
     Parameters
     ----------
     problem : PoissonProblem
     degree : int
-        1 (the bound is implemented for P1).
+        1 to 4 on triangles (the bound of :func:`estimate_error` covers P1-P4 there),
+        1 on tetrahedra.
     tol : float, optional
         Stop when ``bound <= tol``.
     relative_tol : float, optional
         Stop when ``bound <= relative_tol * ||K^(1/2) grad u_h||``.
     max_dofs : int
-        Stop before a level whose mesh would have more vertices than this.
+        Stop before a level whose mesh would have more dofs than this.
     bulk : float in (0, 1]
         Doerfler's marking fraction.
     max_levels : int
@@ -170,7 +171,7 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
     InputError
         Bad parameters.
     UnsupportedError
-        Degree other than 1, data that cannot follow the mesh (a
+        Degree above 1 on tetrahedra, data that cannot follow the mesh (a
         source given as a dof vector, per-facet arrays of boundary data).
 
     Examples
@@ -185,9 +186,14 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
     """
     if not isinstance(problem, PoissonProblem):
         raise InputError(f"adapt: expected a PoissonProblem, got {type(problem).__name__}")
-    if degree != 1:
-        raise UnsupportedError(f"adapt: degree {degree!r}: adaptivity runs on the P1 bound only; "
-                               "use degree=1")
+    if isinstance(degree, bool) or not isinstance(degree, (int, np.integer)) \
+            or degree not in (1, 2, 3, 4):
+        raise InputError(f"adapt: degree must be 1, 2, 3 or 4, got {degree!r}")
+    if degree != 1 and problem.mesh.dim == 3:
+        raise UnsupportedError(f"adapt: degree {degree!r} on tetrahedra: the error bound there "
+                               "is implemented for P1 only; use degree=1 (P2-P4 adapt on "
+                               "triangles)")
+    degree = int(degree)
     for name, v, lo in (("bulk", bulk, 0.0), ("tol", tol, 0.0), ("relative_tol", relative_tol, 0.0)):
         if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))
                               or not math.isfinite(v) or v <= lo):
@@ -206,7 +212,7 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
     levels = np.zeros(problem.mesh.n_cells, dtype=np.int32)
     for level in range(max_levels):
         t0 = time.perf_counter()
-        sol = current.solve(degree=1, method=method, rtol=rtol, maxiter=maxiter)
+        sol = current.solve(degree=degree, method=method, rtol=rtol, maxiter=maxiter)
         t1 = time.perf_counter()
         est = estimate_error(sol, exact_gradient=exact_gradient)
         t2 = time.perf_counter()
@@ -236,13 +242,23 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
         fine = refine_marked(sol.mesh, marked)
         t5 = time.perf_counter()
         row["mark_s"], row["refine_s"] = t4 - t3, t5 - t4
-        if fine.n_vertices > max_dofs:
+        if _n_dofs(fine, degree) > max_dofs:
             stopped = "max_dofs"
             break
         levels = cell_levels(sol.mesh, fine, levels)
         current = _carry_problem(current, fine)
     return AdaptiveRun(solutions=solutions, estimates=estimates, table=table, stopped=stopped,
                        cell_levels=levels)
+
+
+def _n_dofs(mesh, degree):
+    """Dofs of a continuous P_k space on a triangle mesh (P1 on any mesh): vertices,
+    k - 1 per edge, (k - 1)(k - 2) / 2 per cell (3 m = 2 E - E_boundary)."""
+    if degree == 1:
+        return mesh.n_vertices
+    n_edges = (3 * mesh.n_cells + len(mesh.boundary_facets)) // 2
+    return (mesh.n_vertices + (degree - 1) * n_edges
+            + (degree - 1) * (degree - 2) // 2 * mesh.n_cells)
 
 
 def cell_levels(coarse, fine, coarse_levels):

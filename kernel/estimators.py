@@ -57,10 +57,12 @@ When the bound is guaranteed
 holds for the exact solution ``u``, when all of the following hold (up to
 floating-point round-off):
 
-* P1 elements on triangles, conductivity constant on each cell (a number, one
-  value per cell, or a (2, 2) / (n_cells, 2, 2) SPD tensor);
+* P1-P4 elements on triangles (P2-P4: :mod:`galerkit.equilibration`, below),
+  conductivity constant on each cell (a number, one value per cell or per
+  region, or a (2, 2) / (n_cells, 2, 2) SPD tensor);
 * Dirichlet data in the discrete space (a number, a dof vector, or a callable
-  that is affine along every Dirichlet facet, checked);
+  that is a polynomial of the solution's degree along every Dirichlet facet --
+  affine for P1 -- checked);
 * the source ``f`` and boundary data integrated exactly by the quadrature of
   degree ``quadrature_degree`` (default 10; exact for polynomial data up to
   that degree, constants and dof vectors); for other callables the difference
@@ -74,8 +76,15 @@ Tetrahedra: the same construction and the same conditions, read with
 tetrahedra for triangles and faces for edges (:mod:`galerkit.estimators3d`:
 the 3D patch problems are small mixed systems solved exactly per vertex).
 
-Other cases (P2-P4, conductivity varying inside cells, Dirichlet data outside
-the discrete space) raise :class:`~galerkit.errors.UnsupportedError`.
+P2-P4 on triangles: the same bound with a flux of degree k, sigma_h in RT_k
+(divergence in P_k), from the vertex-patch mixed problems of Ern & Vohralik
+(2015) and Braess, Pillwein & Schoeberl (2009) (:mod:`galerkit.equilibration`):
+``Pi_0`` reads ``Pi_k`` in the oscillation and boundary-data terms, the
+residual estimator has the element residual ``f + div(K grad u_h)``; the same
+routing of the algebraic residual, the same notes and the same conditions.
+
+Other cases (P2-P4 on tetrahedra, conductivity varying inside cells, Dirichlet
+data outside the discrete space) raise :class:`~galerkit.errors.UnsupportedError`.
 """
 
 from __future__ import annotations
@@ -673,7 +682,7 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     Parameters
     ----------
     solution : Solution
-        From :meth:`PoissonProblem.solve` (P1 on triangles or tetrahedra).
+        From :meth:`PoissonProblem.solve` (P1-P4 on triangles, P1 on tetrahedra).
     exact_gradient : callable, optional
         ``exact_gradient(x)`` with x (d, n) -> (d, n); then ``error`` and
         ``effectivity`` (bound / error) are filled in.
@@ -688,8 +697,9 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     Raises
     ------
     UnsupportedError
-        Degree above 1, a conductivity given as a callable (varying inside
-        cells), Dirichlet data not affine along a Dirichlet facet.
+        Degree above 1 on tetrahedra, a conductivity given as a callable
+        (varying inside cells), Dirichlet data not a polynomial of the
+        solution's degree along a Dirichlet facet (not affine for P1).
     InputError
         Not a solution, a bad exact gradient or quadrature degree.
 
@@ -711,6 +721,10 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     >>> est = estimate_error(sol, exact_gradient=grad)
     >>> est.guaranteed, est.bound >= est.error, 1.0 < est.effectivity < 1.5
     (True, True, True)
+    >>> est2 = estimate_error(PoissonProblem(mesh, source=f, dirichlet={"boundary": 0.0})
+    ...                       .solve(degree=2), exact_gradient=grad)
+    >>> est2.guaranteed, est2.bound >= est2.error, 1.0 < est2.effectivity < 1.1
+    (True, True, True)
     """
     t_start = time.perf_counter()
     disc = getattr(solution, "disc", None)
@@ -719,11 +733,11 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
         raise InputError(f"estimate_error: expected a Solution (from PoissonProblem.solve), got "
                          f"{type(solution).__name__}")
     mesh = disc.mesh
-    if disc.degree != 1:
+    if disc.degree != 1 and mesh.dim == 3:
         raise UnsupportedError(
-            f"estimate_error: the bound is implemented for P1 only, this solution is "
-            f"P{disc.degree}; higher-degree Raviart-Thomas patch problems are not implemented "
-            "yet. Solve with degree=1 to get a bound")
+            f"estimate_error: the bound is implemented for P1 only on tetrahedra, this "
+            f"solution is P{disc.degree}; solve with degree=1 to get a bound (P2-P4 are "
+            "covered on triangles)")
     if isinstance(quadrature_degree, bool) or not isinstance(quadrature_degree, (int, np.integer)) \
             or not 2 <= quadrature_degree <= 20:
         raise InputError(f"estimate_error: quadrature_degree must be an integer in 2..20, got "
@@ -741,13 +755,23 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     if mesh.dim == 3:
         from .estimators3d import estimate_error_tetrahedra
         return estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_start)
-    notes = []
+    clock = _Clock(t_start)
+    if disc.degree > 1:
+        from .equilibration import estimate_error_pk
+        helpers = {"conductivity_arrays": _conductivity_arrays, "cell_diameters": cell_diameters,
+                   "patches": _patches, "cell_neighbors": _cell_neighbors, "route": _route,
+                   "facet_values": _facet_values}
+        r = estimate_error_pk(solution, u, quadrature_degree, clock, helpers)
+        clock("indicators")
+        return _close(r["eta"], r["res_ind"], r["ef2"], r["ea2"], r["eo"], r["bosc"],
+                      float(np.sqrt(max(r["energy"].sum(), 0.0))), r["unrouted"],
+                      r["n_floating"], r["scale"], r["gap"], problem, disc, u, kappa,
+                      exact_gradient, quadrature_degree, clock, t_start)
     m = mesh.n_cells
     pts = np.ascontiguousarray(mesh.points, dtype=np.float64)
     cells = np.ascontiguousarray(mesh.cells)
     area = np.ascontiguousarray(mesh.cell_volumes, dtype=np.float64)
     kscal, ktens = _conductivity_arrays(kappa, m)
-    clock = _Clock(t_start)
 
     # cell moments of the source and its oscillation
     fmom, osc, fnorm2, gap = _source_moments(problem.source, disc, pts, area, cells,
@@ -836,19 +860,30 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
     _cell_terms(pts, cells, area, kinv, flux_h, P, T, neighbors, lam_min, h, osc, fnorm2, bosc,
                 bres, fmom, corr, amount, bkind, gout, eta, parts, dev)
     _check_flux(dev, fmom)
-    bound = float(np.sqrt((eta**2).sum()))
     res_ind = np.ascontiguousarray(parts[:, 3])
-    residual = float(np.sqrt((res_ind**2).sum()))
     clock("indicators")
 
     scale = float(np.abs(fmom).sum() + np.abs(mom_a[sel]).sum() + np.abs(mom_b[sel]).sum()
                   + stiff_abs.sum()) or 1.0
+    return _close(eta, res_ind, parts[:, 0], parts[:, 1], parts[:, 2], bosc, energy_norm,
+                  unrouted, int(n_floating[0]), scale, gap, problem, disc, u, kappa,
+                  exact_gradient, quadrature_degree, clock, t_start)
+
+
+def _close(eta, res_ind, flux2, alg2, osc, bosc, energy_norm, unrouted, n_floating, scale, gap,
+           problem, disc, u, kappa, exact_gradient, quadrature_degree, clock, t_start):
+    """The closing step shared by P1 and P_k on triangles: the bound from the cell
+    indicators, the notes on unrouted residuals and quadrature, the exact error."""
+    notes = []
+    bound = float(np.sqrt((eta**2).sum()))
+    residual = float(np.sqrt((res_ind**2).sum()))
+    scale = scale or 1.0
     guaranteed = True
-    if n_floating[0] and unrouted > 1e-12 * scale:
+    if n_floating and unrouted > 1e-12 * scale:
         if problem.robin or problem.dirichlet:
             guaranteed = False
             notes.append(
-                f"{int(n_floating[0])} mesh part(s) that no Dirichlet facet reaches keep a "
+                f"{int(n_floating)} mesh part(s) that no Dirichlet facet reaches keep a "
                 f"residual of {unrouted:.3e} (algebraic or quadrature residual of a part "
                 "anchored by Robin terms or by a vertex only); the bound holds for the exactly "
                 "solved system only: solve with a tighter rtol")
@@ -857,10 +892,10 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
                      "(a non-polynomial source); raise quadrature_degree if this matters")
     est = ErrorEstimate(
         bound=bound, indicators=eta, residual_estimate=residual, residual_indicators=res_ind,
-        terms={"flux": float(np.sqrt(parts[:, 0].sum())),
-               "oscillation": float(np.sqrt((parts[:, 2] ** 2).sum())),
+        terms={"flux": float(np.sqrt(flux2.sum())),
+               "oscillation": float(np.sqrt((osc ** 2).sum())),
                "boundary_data": float(np.sqrt((bosc**2).sum())),
-               "algebraic": float(np.sqrt(parts[:, 1].sum())),
+               "algebraic": float(np.sqrt(alg2.sum())),
                "unrouted": float(unrouted), "quadrature_gap": float(gap)},
         energy_norm=energy_norm, guaranteed=guaranteed, notes=notes)
     if not (np.isfinite(bound) and np.isfinite(residual)):
@@ -872,7 +907,6 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10) -> Er
         est.error = err
         est.effectivity = bound / err if err > 0 else math.inf
         est.residual_effectivity = residual / err if err > 0 else math.inf
-    if exact_gradient is not None:
         clock("exact_error")
     est.seconds = time.perf_counter() - t_start
     est.phase_seconds = clock.phases

@@ -73,6 +73,13 @@ E3LOOSE = f"{_E3}bound_survives_a_loose_iterative_solve_in_3d"
 E3RT = f"{_E3}raviart_thomas_mass_and_misfit_equal_a_collapsed_gauss_rule"
 ESMOOTH = (f"{_E}bound_is_above_the_error_of_a_smooth_solution_on_every_level_with_"
            "effectivity_below_1_5")
+_PK = "tests/test_estimators_pk.py::test_pk_"
+PKOSC = f"{_PK}oscillation_term_equals_its_closed_form"
+PKSMOOTH = f"{_PK}bound_is_above_the_error_of_a_smooth_solution_with_effectivity_below_1_5"
+PKMIXED = f"{_PK}bound_is_above_the_error_of_a_mixed_condition_problem"
+PKLOOSE = f"{_PK}bound_survives_a_loose_iterative_solve"
+PKRES = f"{_PK}residual_estimator_has_the_element_laplacian"
+PKPATCH = f"{_PK}patch_test_polynomial_solution_gives_a_zero_bound"
 FLUX_WALL = "tests/test_fluxes.py::test_composite_wall_flux_equals_the_series_resistance_formula[2]"
 FLUX_CYL = "tests/test_fluxes.py::test_hollow_cylinder_flux_converges_at_the_expected_rates"
 FLUX_BAL = "tests/test_fluxes.py::test_consistent_fluxes_of_all_tags_sum_to_minus_the_source[2]"
@@ -240,6 +247,22 @@ MUTANTS = [
      "t1 = 16 * np.einsum", "t1 = 15 * np.einsum", E3RT),
     ("3D error bound: a divergence row with its signs flipped", "estimators3d.py",
      "A[rr, uj] += ps[p, j]", "A[rr, uj] -= ps[p, j]", E3PATCH),
+    ("P_k error bound: Poincare constant h/(2 pi) instead of h/pi", "equilibration.py",
+     "eo = h / math.pi * osc", "eo = h / (2 * math.pi) * osc", PKOSC),
+    ("P_k error bound: Legendre parity ignored on reversed edges", "equilibration.py",
+     "sg = -1.0 if (eflip[p, e] and j % 2 == 1) else 1.0", "sg = 1.0", PKSMOOTH),
+    ("P_k error bound: routed residual flux dropped", "equilibration.py",
+     "uloc, dphi, w, tau, X, T, ref", "uloc, dphi, w, tau, X, 0 * T, ref", PKLOOSE),
+    ("P_k residual estimator: element Laplacian dropped", "equilibration.py",
+     "elres = fv + (Hu @ Hm", "elres = fv + 0 * (Hu @ Hm", PKRES),
+    ("P_k error bound: stiffness part of the patch divergence with its sign flipped",
+     "equilibration.py", "tgt = np.ascontiguousarray(t1 - t2)",
+     "tgt = np.ascontiguousarray(t1 + t2)", PKSMOOTH),
+    ("P_k error bound: Neumann moment at the first facet vertex with its sign flipped",
+     "equilibration.py", "ma = -flen[:, None]", "ma = flen[:, None]", PKMIXED),
+    ("P_k error bound: patch energy in the K norm instead of K^-1", "equilibration.py",
+     "G = np.ascontiguousarray(J.transpose(0, 2, 1) @ Kinv @ J)",
+     "G = np.ascontiguousarray(J.transpose(0, 2, 1) @ Kt @ J)", PKMIXED),
     ("multigrid Galerkin product scaled (coarse operator 1.5 P^T A P)", "multigrid.py",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n        c_val = 1.5 * c_val\n"),
@@ -306,6 +329,7 @@ SELECTION = [
     "tests/test_problem.py::test_square_dirichlet_rates_are_k_plus_1_in_l2_and_k_in_h1[1-5-4]",
     EOSC, EPATCH, ERES, ELOOSE, ESMOOTH, EMARK, EBIS, EBIS3, EANG3,
     E3OSC, E3PATCH, E3RES, E3LOOSE, E3RT,
+    PKOSC, PKRES, PKPATCH, PKLOOSE, PKSMOOTH, PKMIXED,
 ]
 
 

@@ -156,3 +156,24 @@ def energy_error_by_green(points, cells, boundary_facets, kappa_cells, uh, u, fl
         auu += float((w * g * uu).sum())
         auuh += float((w * g * vh).sum())
     return float(np.sqrt(max(auu - 2 * auuh + auh, 0.0)))
+
+
+def energy_error_by_green_traces(xa, xb, uh_trace, auh, u, flux, subdivide=8):
+    """The identity of :func:`energy_error_by_green` for a u_h of any degree:
+    ``||e||^2 = a(u, u) - 2 a(u, u_h) + a(u_h, u_h)`` with the two boundary integrals
+    over the facets from ``xa`` to ``xb`` ((n, 2) each) and ``uh_trace(t)`` the values
+    of u_h at the parameters t in [0, 1] of every facet ((n, len(t))); ``auh`` is
+    ``a(u_h, u_h)``."""
+    L = np.hypot(*(xb - xa).T)
+    auu = 0.0
+    auuh = 0.0
+    for piece in range(subdivide):
+        t = (piece + _GT) / subdivide
+        x = xa[:, None, :] * (1 - t)[None, :, None] + xb[:, None, :] * t[None, :, None]
+        xx = x.reshape(-1, 2).T
+        g = flux(xx).reshape(len(L), -1)
+        uu = u(xx).reshape(len(L), -1)
+        w = L[:, None] * _GW[None, :] / subdivide
+        auu += float((w * g * uu).sum())
+        auuh += float((w * g * uh_trace(t)).sum())
+    return float(np.sqrt(max(auu - 2 * auuh + auh, 0.0)))

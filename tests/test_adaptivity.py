@@ -88,7 +88,10 @@ def test_bad_parameters_are_refused():
         gk.adapt(p, bulk=1.5)
     with pytest.raises(InputError, match="max_dofs"):
         gk.adapt(p, max_dofs=0)
-    with pytest.raises(UnsupportedError, match="degree"):
-        gk.adapt(p, degree=2)
+    with pytest.raises(InputError, match="degree"):
+        gk.adapt(p, degree=5)
+    with pytest.raises(UnsupportedError, match="tetrahedra"):
+        gk.adapt(gk.PoissonProblem(gk.structured_tetrahedra(1, 1, 1), source=1.0,
+                                   dirichlet={"boundary": 0.0}), degree=2)
     with pytest.raises(InputError, match="PoissonProblem"):
         gk.adapt(p.mesh)

@@ -605,7 +605,7 @@ def test_adaptive_solve_writes_levels_indicators_and_a_mesh_picture(tmp_path):
     assert "error bound " in text and "(guaranteed" in text
 
 
-def test_solve_prints_the_bound_above_the_exact_error_and_says_why_not_for_p2(tmp_path, square):
+def test_solve_prints_the_bound_above_the_exact_error_for_p1_and_p2(tmp_path, square):
     code, out, err = run("--json", "solve", square, "--degree", 1, "--output", tmp_path)
     assert code == 0, err
     info = json.loads(out)
@@ -614,19 +614,23 @@ def test_solve_prints_the_bound_above_the_exact_error_and_says_why_not_for_p2(tm
     assert b["available"] and b["bound"] >= info["errors"]["energy"]
     assert 1.0 <= b["effectivity"] < 1.5
     assert "error_indicator" in meshio.read(tmp_path / "square.vtu").cell_data
-    code, out, err = run("solve", square, "--output", tmp_path)  # the file's P2
+    code, out, err = run("--json", "solve", square, "--output", tmp_path)  # the file's P2
     assert code == 0, err
-    line = [x for x in out.splitlines() if x.startswith("  error bound")]
-    assert line == ["  error bound not available for P2 on triangles (the bound is "
-                    "implemented for P1 only, this solution is P2)"]
-    assert "error_indicator" not in meshio.read(tmp_path / "square.vtu").cell_data
+    info = json.loads(out)
+    b = info["error_bound"]
+    # the RT_2 patch flux (Ern & Vohralik 2015): above the error, effectivity near 1
+    assert b["available"] and b["bound"] >= info["errors"]["energy"]
+    assert 1.0 <= b["effectivity"] < 1.5
+    assert "error_indicator" in meshio.read(tmp_path / "square.vtu").cell_data
 
 
 def test_adapt_with_a_higher_degree_flag_or_data_the_bound_cannot_take_exits_2(tmp_path, capsys):
-    path = tmp_path / "ell.toml"
-    path.write_text(LSHAPE_ADAPT)
+    path = tmp_path / "box.toml"
+    path.write_text(BOX_ADAPT)
     assert main(["solve", str(path), "--degree", "2", "--output", str(tmp_path)]) == 2
-    assert "has an [adapt] section, and adaptive refinement runs on P1" in capsys.readouterr().err
+    assert "has an [adapt] section on tetrahedra, and adaptive refinement" in \
+        capsys.readouterr().err
+    path = tmp_path / "ell.toml"
     path.write_text(LSHAPE_ADAPT.replace("u = 0", "u = \"x*x\""))
     assert main(["solve", str(path), "--output", str(tmp_path)]) == 2
     err = capsys.readouterr().err

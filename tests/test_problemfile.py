@@ -562,7 +562,6 @@ bulk = 0.3
     ("[adapt]\nbulk = 1.5\n", "adapt.bulk: must be at most 1, got 1.5"),
     ("[adapt]\nbulk = true\n", "adapt.bulk: must be a number, got true/false"),
     ("adapt = 1\n", "adapt: must be a table"),
-    ("[discretization]\ndegree = 2\n[adapt]\n", "adapt: adaptive refinement runs on P1"),
     ("[material]\nconductivity = \"1 + x\"\n[adapt]\n",
      "material.conductivity: the formula '1 + x' varies inside cells"),
 ])
@@ -574,6 +573,14 @@ def test_adapt_mistakes_are_named_with_file_line_key_and_what_to_do(tmp_path, te
     assert "p.toml" in msg and expected in msg, msg
     if "[adapt]" in text and "unknown" not in expected:
         assert ", line " in msg
+
+
+def test_adapt_takes_p2_on_triangles_and_refuses_it_on_tetrahedra(tmp_path):
+    spec = load_problem(write(tmp_path, BASE + "[discretization]\ndegree = 2\n[adapt]\n"))
+    assert spec.options.degree == 2 and spec.options.adapt is not None
+    msg = error_of(tmp_path, "[mesh]\ngenerator = \"box\"\ncells = 2\n[discretization]\n"
+                   "degree = 2\n[adapt]\n")
+    assert "adapt: adaptive refinement on tetrahedra runs on P1" in msg and ", line " in msg
 
 
 def test_adapt_on_tetrahedra_is_accepted(tmp_path):

@@ -538,10 +538,10 @@ def _solve(args) -> int:
             spec = load_problem(args.problem, stay_in_folder=args.stay_in_folder)
         problem, opts = spec.build()
         opts = _apply_overrides(args, opts)
-        if opts.adapt is not None and opts.degree != 1:
+        if opts.adapt is not None and opts.degree != 1 and problem.mesh.dim == 3:
             raise InputError(f"--degree {opts.degree}: the problem file {str(args.problem)!r} "
-                             "has an [adapt] section, and adaptive refinement runs on P1; "
-                             "drop --degree or the [adapt] section")
+                             "has an [adapt] section on tetrahedra, and adaptive refinement "
+                             "there runs on P1; drop --degree or the [adapt] section")
         notes = [str(w.message) for w in caught] + tag_overlaps(spec.mesh)
         load_seconds = time.perf_counter() - t0
         step("assemble and solve" if opts.adapt is None else "adaptive levels")
@@ -713,7 +713,7 @@ def _adapt(problem, opts):
     from galerkit.errors import InputError, UnsupportedError
 
     try:
-        return gk.adapt(problem, degree=1, method=opts.method, rtol=opts.rtol,
+        return gk.adapt(problem, degree=opts.degree, method=opts.method, rtol=opts.rtol,
                         maxiter=opts.maxiter, exact_gradient=opts.exact_gradient, keep="last", **opts.adapt)
     except UnsupportedError as exc:
         raise InputError(f"[adapt]: {exc}; or remove the [adapt] section") from None

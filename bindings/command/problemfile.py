@@ -1055,10 +1055,10 @@ def _adapt_section(r: _Reader, t, opts: RunOptions, mesh, conductivity):
             r.fail(("adapt", "bulk"), f"must be at most 1, got {out['bulk']}",
                    "the fraction of the squared error bound the marked cells carry, for "
                    "example bulk = 0.5")
-    if opts.degree != 1:
-        r.fail(("adapt",), f"adaptive refinement runs on P1 (the error bound is P1 only); "
-               f"discretization.degree is {opts.degree}", "remove discretization.degree or "
-               "set it to 1")
+    if opts.degree != 1 and mesh is not None and mesh.dim == 3:
+        r.fail(("adapt",), f"adaptive refinement on tetrahedra runs on P1 (the error bound "
+               f"there is P1 only); discretization.degree is {opts.degree}",
+               "remove discretization.degree or set it to 1 (P2-P4 adapt on triangles)")
     values = conductivity.values() if isinstance(conductivity, dict) else (conductivity,)
     for v in values:
         if isinstance(v, Expression) and not v.is_constant:
