@@ -575,6 +575,11 @@ def _prune(ptr, ind, val):
     return _readonly(new_ptr), _readonly(new_ind), _readonly(new_val), True
 
 
+#: fine-level passes of a typical solve (15 iterations, each a residual, smoothing of
+#: degree 2 before and after, and the CG product): the work :func:`by_size` weighs
+SOLVE_PASSES = 50
+
+
 class _Level:
     __slots__ = ("ptr", "ind", "val", "diag", "l1", "dinv", "agg", "n_agg",
                  "P", "R", "lower", "degree", "n")
@@ -721,8 +726,10 @@ class Hierarchy:
         x = np.zeros(n) if x0 is None else np.array(x0, dtype=np.float64, copy=True)
         history = np.empty(maxiter + max_restarts + 2)
         r, z, p, q = (np.empty(n) for _ in range(4))
-        # below PARALLEL_FROM non-zeros, the twin that calls the serial sparse kernels
-        pcg = by_size(_pcg_vcycle, ind.shape[0])
+        # the twin that calls the serial sparse kernels below PARALLEL_FROM entries read:
+        # a solve reads each fine-level entry about SOLVE_PASSES times, so systems from
+        # about 100,000 non-zeros solve in parallel (a 1M-dof 2D system has 5M)
+        pcg = by_size(_pcg_vcycle, SOLVE_PASSES * ind.shape[0])
         k, nh, status = pcg(ptr, ind, val, *self._packed, b, x, x0 is None, float(rtol),
                             int(maxiter), int(max_restarts), history, r, z, p, q)
         return x, history[:nh].copy(), int(k), int(status)
@@ -1097,4 +1104,11 @@ def compile_solver_kernels(n: int = 30) -> None:
                      shape=(n * n, n * n))
     A.sum_duplicates()
     assert A.nnz > np.count_nonzero(A.data)
-    prepare_solver(A, method="cg-amg").solve(np.ones(n * n), rtol=1e-8)
+    solver = prepare_solver(A, method="cg-amg")
+    solver.solve(np.ones(n * n), rtol=1e-8)  # the serial twins, as small systems run
+    # the parallel solve loop too, as every system from about 100,000 non-zeros runs it
+    threshold, compilation.PARALLEL_FROM = compilation.PARALLEL_FROM, 0
+    try:
+        solver.solve(np.ones(n * n), rtol=1e-8)
+    finally:
+        compilation.PARALLEL_FROM = threshold
