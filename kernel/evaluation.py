@@ -86,13 +86,17 @@ def locate_points(mesh, x, *, tol=1e-10, candidates=16):
     kk = min(candidates, mesh.n_cells)
     _, cand = tree.query(pts, k=kk)
     cand = cand.reshape(n, kk)
+    # the tree answers n_cells (no neighbour) where a distance overflows to inf (a point
+    # near 1e154 or beyond): such candidates are no cell, the fallback below decides
+    no_cell = cand >= mesh.n_cells
+    cand[no_cell] = 0
     todo = np.arange(n)
     for j in range(kk):
         if todo.size == 0:
             break
         c = cand[todo, j]
         lam, xi = _barycentric(mesh, c, pts[todo])
-        ok = lam.min(axis=1) >= -tol
+        ok = (lam.min(axis=1) >= -tol) & ~no_cell[todo, j]
         found[todo[ok]] = c[ok]
         xi_out[todo[ok]] = xi[ok]
         todo = todo[~ok]

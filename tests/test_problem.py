@@ -480,6 +480,19 @@ def test_evaluate_outside_points():
         sol.evaluate(pts, outside="ignore")
 
 
+def test_points_so_far_out_that_distances_overflow_lie_outside():
+    # found by the random-argument property test: beyond ~1e154 the centroid tree's
+    # distances overflow to inf and it answers "no neighbour" (index n_cells), which
+    # was used as a cell and raised IndexError
+    sol = PoissonProblem(structured_triangles(3, 3), 1.0, 1.0, {"boundary": 0.0}).solve(
+        2, method="direct")
+    pts = np.array([[0.3, 9.48e153, -2e200], [0.2, 9.48e153, 0.5]])
+    vals = sol.evaluate(pts, outside="nan")
+    assert np.isfinite(vals[0]) and np.isnan(vals[1:]).all()
+    with pytest.raises(InputError, match="point 1 .* outside"):
+        sol.evaluate(pts)
+
+
 @pytest.mark.parametrize("dim, degree", [(2, 1), (2, 2), (2, 3), (3, 1), (3, 2)])
 def test_cell_gradients_of_interpolated_linear_function(dim, degree):
     # interpolation reproduces polynomials of degree <= k (Brenner & Scott 2008)
