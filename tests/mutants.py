@@ -81,6 +81,7 @@ PKLOOSE = f"{_PK}bound_survives_a_loose_iterative_solve"
 PKRES = f"{_PK}residual_estimator_has_the_element_laplacian"
 PKPATCH = f"{_PK}patch_test_polynomial_solution_gives_a_zero_bound"
 PKJUMP = f"{_PK}residual_estimator_flux_jump_weight_equals_its_closed_form"
+PKMIN = f"{_PK}minimised_flux_stays_above_the_error_and_below_the_patch_flux"
 FLUX_WALL = "tests/test_fluxes.py::test_composite_wall_flux_equals_the_series_resistance_formula[2]"
 FLUX_CYL = "tests/test_fluxes.py::test_hollow_cylinder_flux_converges_at_the_expected_rates"
 FLUX_BAL = "tests/test_fluxes.py::test_consistent_fluxes_of_all_tags_sum_to_minus_the_source[2]"
@@ -263,6 +264,10 @@ MUTANTS = [
     ("P_k residual estimator: jump weighted by the smaller conductivity of the two cells",
      "equilibration.py", "lamF = np.maximum(lam_min[ci], lam_min[other])",
      "lamF = np.minimum(lam_min[ci], lam_min[other])", PKJUMP),
+    ("minimised flux: stream function free on the boundary (normal trace changed)",
+     "flux_minimisation.py", "    free[fixed] = False", "    free[fixed[:0]] = False", PKMIN),
+    ("minimised flux: right-hand side with its sign flipped", "flux_minimisation.py",
+     "    loc = -np.einsum", "    loc = np.einsum", PKMIN),
     ("P_k error bound: stiffness part of the patch divergence with its sign flipped",
      "equilibration.py", "tgt = np.ascontiguousarray(t1 - t2)",
      "tgt = np.ascontiguousarray(t1 + t2)", PKSMOOTH),
@@ -337,7 +342,7 @@ SELECTION = [
     "tests/test_problem.py::test_square_dirichlet_rates_are_k_plus_1_in_l2_and_k_in_h1[1-5-4]",
     EOSC, EPATCH, ERES, ELOOSE, ESMOOTH, EMARK, EBIS, EBIS3, EANG3,
     E3OSC, E3PATCH, E3RES, E3LOOSE, E3RT,
-    PKOSC, PKRES, PKPATCH, PKLOOSE, PKSMOOTH, PKMIXED, PKJUMP,
+    PKOSC, PKRES, PKPATCH, PKLOOSE, PKSMOOTH, PKMIXED, PKJUMP, PKMIN,
 ]
 
 
