@@ -449,7 +449,7 @@ def _source_at(source, disc, cells, pts, xi, Vq):
 
     def points():
         X = pts[cells]
-        return np.einsum("ql,clj->jcq", lam, X).reshape(dim, -1)
+        return np.matmul(lam, X).transpose(2, 0, 1).reshape(dim, -1)
 
     fv = scalar_values(source, m, "source", points=points, point_shape=(m, nq))
     fv = np.asarray(fv, dtype=np.float64)

@@ -22,8 +22,9 @@ a face use the same test functions (the table of each cell is one of the six
 permutations of the face's vertices).
 
 Each patch problem is a saddle-point system in the broken basis, solved exactly by
-condensation: per cell, the mass matrix (Cholesky) gives the cell's block of the
-multiplier Schur complement; the rows private to a cell (its divergence moments,
+condensation: per cell, once for its four patches (``_cell_blocks_3d``), the mass
+matrix (Cholesky) gives the cell's block of the multiplier Schur complement over all
+its constraint rows; in a patch, the rows private to a cell (its divergence moments,
 the face opposite the vertex, its boundary faces) are eliminated inside the cell,
 leaving a dense system in the moments of the faces shared by two cells of the patch
 (Cholesky).  One compiled parallel kernel runs over the vertices in fixed chunks
@@ -161,38 +162,97 @@ def rt_reference_3d(k):
 
 # -- compiled kernels ---------------------------------------------------------------
 @nb.njit(cache=True, parallel=True)
-def _patch_solve_3d(neighbors, bkind, perm, vptr, vcell, vloc, G, detJ, bvec, tgt, gmom,
-                    R, D, E, qint, X, corr):
-    """Solve the RT_k mixed problem of every vertex patch (tetrahedra).
-
-    Per cell c: ``G[c] = J^T K^-1 J``, ``detJ[c]``, ``perm[c, i]`` (the order of face
-    i's vertices by global number), ``bvec[c, l]`` (linear term of the energy of the
-    patch of local vertex l), ``tgt[c, l]`` (divergence moments), ``gmom[c, i, l]``
-    (prescribed outward moments on flux face i).  Reference: ``R[r, s]`` (nb, nb)
-    products of basis components, ``D``, ``E``, ``qint``.  Writes ``X[c, l]`` (the
-    patch flux of local vertex l on c) and ``corr[c, l]`` (the integral of
-    divergence taken out to make the patch solvable).
-    """
-    n = vptr.shape[0] - 1
+def _cell_blocks_3d(perm, G, detJ, bvec, R, D, E, W, Sfull, MB, GB):
+    """Per cell, once: with the cell's RT_k mass matrix M (K^-1 product, Cholesky) and
+    its constraint rows C (the nk divergence moments, then the nf moments of each of
+    the four faces): ``W = M^-1 C^T``, ``Sfull = C M^-1 C^T``, ``MB[c, l] = M^-1 b_l``
+    and ``GB[c, l] = C M^-1 b_l`` for the patch of each local vertex l."""
+    m = G.shape[0]
     nbas = D.shape[1]
     nk = D.shape[0]
     nf = E.shape[2]
+    mf = nk + 4 * nf
+    nchunk = min(m, 256)
+    for ch in nb.prange(nchunk):
+        Lm = np.empty((nbas, nbas))
+        Cf = np.empty((mf, nbas))
+        z = np.empty(nbas)
+        for c in range(ch * m // nchunk, (ch + 1) * m // nchunk):
+            for i in range(nbas):
+                for j in range(i + 1):
+                    v = 0.0
+                    for s in range(3):
+                        for t in range(3):
+                            v += G[c, s, t] * R[s, t, i, j]
+                    Lm[i, j] = v / detJ[c]
+                    Lm[j, i] = Lm[i, j]
+            _chol(Lm, nbas)
+            for j in range(nk):
+                for i in range(nbas):
+                    Cf[j, i] = D[j, i]
+            for f in range(4):
+                pf = perm[c, f]
+                for j in range(nf):
+                    for i in range(nbas):
+                        Cf[nk + f * nf + j, i] = E[f, pf, j, i]
+            for u in range(mf):
+                for i in range(nbas):
+                    z[i] = Cf[u, i]
+                _chol_solve(Lm, nbas, z)
+                for i in range(nbas):
+                    W[c, i, u] = z[i]
+            for u in range(mf):
+                for v in range(u + 1):
+                    s_ = 0.0
+                    for i in range(nbas):
+                        s_ += Cf[u, i] * W[c, i, v]
+                    Sfull[c, u, v] = s_
+                    Sfull[c, v, u] = s_
+            for l_ in range(4):
+                for i in range(nbas):
+                    z[i] = bvec[c, l_, i]
+                _chol_solve(Lm, nbas, z)
+                for i in range(nbas):
+                    MB[c, l_, i] = z[i]
+                for u in range(mf):
+                    s_ = 0.0
+                    for i in range(nbas):
+                        s_ += Cf[u, i] * z[i]
+                    GB[c, l_, u] = s_
+
+
+@nb.njit(cache=True, parallel=True)
+def _patch_solve_3d(a_lo, a_hi, neighbors, bkind, vptr, vcell, vloc, detJ, tgt, gmom, qint,
+                    slot, W, Sfull, MB, GB, X, corr):
+    """Solve the RT_k mixed problem of every vertex patch (tetrahedra).
+
+    Per cell c: ``W[slot[c]]``, ``Sfull``, ``MB``, ``GB`` from :func:`_cell_blocks_3d` (for the
+    cells of the vertices ``a_lo <= a < a_hi``),
+    ``detJ[c]``, ``tgt[c, l]`` (divergence moments of the patch of local vertex l),
+    ``gmom[c, i, l]`` (prescribed outward moments on flux face i).  The rows of each patch cell are a subset of its full rows (without the free
+    Dirichlet faces and, once per component without a free face, the mean divergence
+    row); the rows private to the cell are eliminated inside it (Schur complement),
+    the faces shared by two patch cells form one dense system (Cholesky).  Writes
+    ``X[c, l]`` (the patch flux of local vertex l on c) and ``corr[c, l]`` (the
+    integral of divergence taken out to make the patch solvable).
+    """
+    n = a_hi - a_lo
+    nbas = W.shape[1]
+    nk = tgt.shape[2]
+    nf = gmom.shape[3]
     kmax = 1
-    for a in range(n):
+    for a in range(a_lo, a_hi):
         kmax = max(kmax, vptr[a + 1] - vptr[a])
     mmax = nk + 4 * nf  # constraint rows of one cell
     nhmax = ((3 * kmax) // 2 + 1) * nf  # rows of the faces shared in a patch
     nchunk = min(n, 256)
     for ch in nb.prange(nchunk):
-        Lm = np.empty((nbas, nbas))
-        Cp = np.empty((mmax, nbas))
         Sp = np.empty((mmax, mmax))
         A = np.empty((mmax, mmax))
-        z = np.empty(max(nbas, mmax))
+        z = np.empty(mmax)
         r = np.empty(mmax)
         lam = np.empty(mmax)
-        Y = np.empty((kmax, nbas, mmax))  # M^-1 C^T of each patch cell
-        mb = np.empty((kmax, nbas))  # M^-1 b
+        idx = np.empty((kmax, mmax), np.int64)  # full row of each row of a patch cell
         AB = np.empty((kmax, mmax, 3 * nf))  # A^-1 B (private rows x shared rows)
         rp = np.empty((kmax, mmax))  # A^-1 r_P
         npv = np.empty(kmax, np.int64)
@@ -209,7 +269,7 @@ def _patch_solve_3d(neighbors, bkind, perm, vptr, vcell, vloc, G, detJ, bvec, tg
         ll = np.empty(kmax, np.int64)
         S = np.empty((nhmax, nhmax))
         rhs = np.empty(nhmax)
-        for a in range(ch * n // nchunk, (ch + 1) * n // nchunk):
+        for a in range(a_lo + ch * n // nchunk, a_lo + (ch + 1) * n // nchunk):
             s0 = vptr[a]
             k = vptr[a + 1] - s0
             for p in range(k):
@@ -295,30 +355,18 @@ def _patch_solve_3d(neighbors, bkind, perm, vptr, vcell, vloc, G, detJ, bvec, tg
             for p in range(k):
                 c = cc[p]
                 la = ll[p]
-                for i in range(nbas):
-                    for j in range(i + 1):
-                        v = 0.0
-                        for s in range(3):
-                            for t in range(3):
-                                v += G[c, s, t] * R[s, t, i, j]
-                        Lm[i, j] = v / detJ[c]
-                        Lm[j, i] = Lm[i, j]
-                _chol(Lm, nbas)
                 # rows: divergence, private faces, then shared faces
                 u = 0
                 for j in range(j0[p], nk):
-                    for i in range(nbas):
-                        Cp[u, i] = D[j, i]
+                    idx[p, u] = j
                     r[u] = tgt[c, la, j] - cr[p] * qint[j] / qint[0]
                     u += 1
                 for f in range(4):
                     if fgrp[p, f] != -2:
                         continue
-                    pf = perm[c, f]
                     bnd = neighbors[c, f] < 0
                     for j in range(nf):
-                        for i in range(nbas):
-                            Cp[u, i] = E[f, pf, j, i]
+                        idx[p, u] = nk + f * nf + j
                         r[u] = gmom[c, f, la, j] if bnd else 0.0
                         u += 1
                 npr = u
@@ -326,10 +374,8 @@ def _patch_solve_3d(neighbors, bkind, perm, vptr, vcell, vloc, G, detJ, bvec, tg
                 for f in range(4):
                     if fgrp[p, f] < 0:
                         continue
-                    pf = perm[c, f]
                     for j in range(nf):
-                        for i in range(nbas):
-                            Cp[u, i] = E[f, pf, j, i]
+                        idx[p, u] = nk + f * nf + j
                         r[u] = 0.0
                         hrow[p, t] = fgrp[p, f] * nf + j
                         u += 1
@@ -337,29 +383,11 @@ def _patch_solve_3d(neighbors, bkind, perm, vptr, vcell, vloc, G, detJ, bvec, tg
                 mrow = u
                 npv[p] = npr
                 nhv[p] = mrow - npr
+                sc = slot[c]
                 for u in range(mrow):
-                    for i in range(nbas):
-                        z[i] = Cp[u, i]
-                    _chol_solve(Lm, nbas, z)
-                    for i in range(nbas):
-                        Y[p, i, u] = z[i]
-                for u in range(mrow):
-                    for v in range(u + 1):
-                        s_ = 0.0
-                        for i in range(nbas):
-                            s_ += Cp[u, i] * Y[p, i, v]
-                        Sp[u, v] = s_
-                        Sp[v, u] = s_
-                for i in range(nbas):
-                    z[i] = bvec[c, la, i]
-                _chol_solve(Lm, nbas, z)
-                for i in range(nbas):
-                    mb[p, i] = z[i]
-                for u in range(mrow):
-                    s_ = 0.0
-                    for i in range(nbas):
-                        s_ += Cp[u, i] * z[i]
-                    r[u] += s_
+                    r[u] += GB[sc, la, idx[p, u]]
+                    for v in range(mrow):
+                        Sp[u, v] = Sfull[sc, idx[p, u], idx[p, v]]
                 # eliminate the private rows: A = S_PP, AB = A^-1 S_PH, rp = A^-1 r_P
                 for u in range(npr):
                     for v in range(npr):
@@ -403,11 +431,47 @@ def _patch_solve_3d(neighbors, bkind, perm, vptr, vcell, vloc, G, detJ, bvec, tg
                     lam[u] = s_
                 for t in range(nhp):
                     lam[npr + t] = rhs[hrow[p, t]]
+                sc = slot[c]
                 for i in range(nbas):
-                    s_ = -mb[p, i]
+                    s_ = -MB[sc, ll[p], i]
                     for u in range(npr + nhp):
-                        s_ += Y[p, i, u] * lam[u]
+                        s_ += W[sc, i, idx[p, u]] * lam[u]
                     X[c, ll[p], i] = s_
+
+
+#: work memory of the cell blocks (``_cell_blocks_3d``) of one batch of vertices
+BLOCK_BYTES = 256 * 2**20
+
+
+def _patches(neighbors, bkind, perm, vptr, vcell, vloc, G, detJ, bvec, tgt, gmom, R, ref, X,
+             corr):
+    """The patch problems of all vertices, in batches of consecutive vertices whose
+    cells' blocks fit in :data:`BLOCK_BYTES` (a cell's block is computed the same way
+    in every batch that needs it, so the result does not depend on the batches)."""
+    D, E, qint = ref["D"], ref["E"], ref["qint"]
+    nk, nbas = D.shape
+    nf = E.shape[2]
+    mf = nk + 4 * nf
+    cap = max(1, BLOCK_BYTES // (8 * (nbas * mf + mf * mf + 4 * nbas + 4 * mf)))
+    n = vptr.shape[0] - 1
+    slot = np.full(G.shape[0], -1, dtype=np.int64)
+    a0 = 0
+    while a0 < n:
+        a1 = int(np.searchsorted(vptr, vptr[a0] + cap, side="right")) - 1
+        a1 = min(max(a1, a0 + 1), n)
+        cells = np.unique(vcell[vptr[a0]:vptr[a1]])
+        slot[cells] = np.arange(cells.size)
+        nc = cells.size
+        W = np.empty((nc, nbas, mf))
+        Sfull = np.empty((nc, mf, mf))
+        MB = np.empty((nc, 4, nbas))
+        GB = np.empty((nc, 4, mf))
+        _cell_blocks_3d(np.ascontiguousarray(perm[cells]), np.ascontiguousarray(G[cells]),
+                        np.ascontiguousarray(detJ[cells]), np.ascontiguousarray(bvec[cells]),
+                        R, D, E, W, Sfull, MB, GB)
+        _patch_solve_3d(a0, a1, neighbors, bkind, vptr, vcell, vloc, detJ, tgt, gmom, qint,
+                        slot, W, Sfull, MB, GB, X, corr)
+        a0 = a1
 
 
 @nb.njit(cache=True, parallel=True)
@@ -666,8 +730,8 @@ def estimate_error_pk_tetrahedra(solution, u, quadrature_degree, clock, helpers)
 
     X = np.empty((m, 4, nbas))
     corr = np.empty((m, 4))
-    _patch_solve_3d(neighbors, bkind, perm, vptr, vcell, vloc, G, detJ, bvec, tgt,
-                    np.ascontiguousarray(gmom), R, ref["D"], ref["E"], ref["qint"], X, corr)
+    _patches(neighbors, bkind, perm, vptr, vcell, vloc, G, detJ, bvec, tgt,
+             np.ascontiguousarray(gmom), R, ref, X, corr)
     clock("patches")
     amount = np.ascontiguousarray(corr.sum(axis=1))
     T = np.zeros((m, 4))

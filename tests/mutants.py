@@ -88,6 +88,7 @@ P3LOOSE = f"{_P3}bound_survives_a_loose_iterative_solve"
 P3RT = f"{_P3}rt_reference_tables_equal_exact_sympy_moments_and_are_unisolvent[2]"
 P3SMOOTH = f"{_P3}bound_is_above_the_error_of_a_smooth_solution_with_effectivity_below_1_5[2-sizes0]"
 P3MIXED = f"{_P3}bound_is_above_the_error_of_a_mixed_condition_problem[False]"
+P3NUMBER = f"{_P3}bound_does_not_depend_on_the_vertex_numbering"
 FLUX_WALL = "tests/test_fluxes.py::test_composite_wall_flux_equals_the_series_resistance_formula[2]"
 FLUX_CYL = "tests/test_fluxes.py::test_hollow_cylinder_flux_converges_at_the_expected_rates"
 FLUX_BAL = "tests/test_fluxes.py::test_consistent_fluxes_of_all_tags_sum_to_minus_the_source[2]"
@@ -295,6 +296,9 @@ MUTANTS = [
     ("P_k 3D bound: private rows of a cell not eliminated (Schur update dropped)",
      "equilibration3d.py", "                            s_ -= Sp[u, npr + t1] * AB[p, u, t2]\n",
      "                            s_ -= 0.0 * Sp[u, npr + t1] * AB[p, u, t2]\n", P3PATCH),
+    ("P_k 3D bound: cell blocks of a batch looked up in reverse order", "equilibration3d.py",
+     "slot[cells] = np.arange(cells.size)", "slot[cells] = np.arange(cells.size)[::-1]",
+     P3PATCH),
     ("multigrid Galerkin product scaled (coarse operator 1.5 P^T A P)", "multigrid.py",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n        c_val = 1.5 * c_val\n"),
@@ -362,7 +366,7 @@ SELECTION = [
     EOSC, EPATCH, ERES, ELOOSE, ESMOOTH, EMARK, EBIS, EBIS3, EANG3,
     E3OSC, E3PATCH, E3RES, E3LOOSE, E3RT,
     PKOSC, PKRES, PKPATCH, PKLOOSE, PKSMOOTH, PKMIXED,
-    P3RT, P3OSC, P3BDATA, P3PATCH, P3LOOSE, P3SMOOTH, P3MIXED,
+    P3RT, P3OSC, P3BDATA, P3PATCH, P3LOOSE, P3SMOOTH, P3MIXED, P3NUMBER,
 ]
 
 
