@@ -137,7 +137,7 @@ class AdaptiveRun:
 
 def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, bulk=0.5,
           max_levels=30, exact_gradient=None, method="auto", rtol=1e-10, maxiter=None,
-          keep="all"):
+          keep="all", minimise_flux=False):
     """Adaptive solve driven by the guaranteed error bound.
 
     Parameters
@@ -161,6 +161,9 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
         Passed to :meth:`PoissonProblem.solve`.
     keep : "all" or "last"
         Keep every level's solution (default) or only the last one.
+    minimise_flux : bool
+        Passed to :func:`estimate_error` (triangles: the flux term minimised over
+        divergence-free corrections, one extra solve per level).
 
     Returns
     -------
@@ -215,7 +218,7 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
         t0 = time.perf_counter()
         sol = current.solve(degree=degree, method=method, rtol=rtol, maxiter=maxiter)
         t1 = time.perf_counter()
-        est = estimate_error(sol, exact_gradient=exact_gradient)
+        est = estimate_error(sol, exact_gradient=exact_gradient, minimise_flux=minimise_flux)
         t2 = time.perf_counter()
         row = {"level": level, "n_cells": sol.mesh.n_cells, "n_dofs": sol.disc.n_dofs,
                "bound": est.bound, "residual_estimate": est.residual_estimate,

@@ -23,6 +23,15 @@ signatures, see :func:`galerkit.multigrid.compile_solver_kernels`) into the same
 cache while this process compiles the mesh and assembly kernels;
 :func:`wait_for_compile_ahead`, called before the solver set-up, waits for it and
 counts the wait as compile time.  ``GALERKIT_COMPILE_AHEAD=0`` turns it off.
+The second process works in two stages: first every kernel a solve needs (the
+serial twins of the solve loop included), then the parallel solve loop, which alone
+compiles for about 7 s and saves a fraction of a second per solve.  It reports the
+end of the first stage on its output, and the wait ends there.  While a second
+process runs, a kernel called through ``by_size(kernel, work, cached_only=True)``
+runs in parallel only once it is compiled or in the cache; until then its serial
+twin runs (the same bits).  At exit the second process is stopped unless it is in
+its second stage: then it finishes that compile (seconds) and stops by itself, so
+the next run finds the parallel loop in the cache.
 
 Serial twins (:func:`by_size`): a ``parallel=True`` kernel compiles two to six
 times slower than the same loops compiled serially (numba's parfor passes), and on
@@ -158,18 +167,44 @@ def serial_twin(kernel):
     return twin
 
 
-def by_size(kernel, work):
+def by_size(kernel, work, *, cached_only=False):
     """``kernel`` when ``work`` >= :data:`PARALLEL_FROM` and numba has several threads,
-    else its serial twin (same results, bit for bit; see the module notes)."""
-    if work >= PARALLEL_FROM and _nb.get_num_threads() > 1 or not _is_parallel(kernel):
+    else its serial twin (same results, bit for bit; see the module notes).
+
+    ``cached_only``: while a second process compiles ahead (the command line),
+    the parallel kernel is chosen only once it is compiled or cached; until then
+    the serial twin runs, so the run does not wait for a long compile that the
+    second process does for the next run.
+    """
+    if not _is_parallel(kernel):
+        return kernel
+    if work >= PARALLEL_FROM and _nb.get_num_threads() > 1:
+        if cached_only and _ahead["proc"] and not is_ready(kernel):
+            return serial_twin(kernel)
         return kernel
     return serial_twin(kernel)
 
 
-_ahead = {"proc": None, "closed": False}
+def is_ready(kernel) -> bool:
+    """Whether ``kernel`` has a compiled signature in this process or an entry in
+    its on-disk cache (then a call loads it instead of compiling)."""
+    if kernel.overloads:
+        return True
+    try:
+        # numba's cache index: empty when missing or stale (source changed)
+        return bool(kernel._cache._cache_file._load_index())
+    except Exception:  # no cache, or numba's internals changed: assume not ready
+        return False
+
+
+_ahead = {"proc": None, "closed": False, "staged": False}
 
 #: the second process's program (kernel module only: it never imports bindings)
-_AHEAD_CODE = "from galerkit.multigrid import compile_solver_kernels; compile_solver_kernels()"
+_AHEAD_CODE = ("from galerkit.multigrid import compile_solver_kernels; "
+               "compile_solver_kernels(report_stage=True)")
+
+#: the line the second process prints when its first stage is done
+STAGE_LINE = "galerkit-compile-ahead: solve kernels ready"
 
 
 def start_compile_ahead() -> bool:
@@ -191,8 +226,8 @@ def start_compile_ahead() -> bool:
         env["NUMBA_CACHE_DIR"] = str(_config.CACHE_DIR)
     try:
         _ahead["proc"] = subprocess.Popen([sys.executable, "-c", _AHEAD_CODE], env=env,
-                                          stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
-                                          stderr=subprocess.DEVNULL)
+                                          stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+                                          stderr=subprocess.DEVNULL, text=True)
     except OSError:
         _ahead["proc"] = False
         return False
@@ -201,7 +236,8 @@ def start_compile_ahead() -> bool:
 
 
 def wait_for_compile_ahead(timeout: float = 900.0) -> float:
-    """Wait for the process of :func:`start_compile_ahead`, if one runs; seconds waited.
+    """Wait for the first stage of the process of :func:`start_compile_ahead`, if one
+    runs (or for its end, when it reports no stage); seconds waited.
 
     The wait is compilation (the other process compiles what this one is about
     to run), so it is added to :func:`compile_seconds`.  Past ``timeout`` this
@@ -216,17 +252,39 @@ def wait_for_compile_ahead(timeout: float = 900.0) -> float:
     if not proc or proc.poll() is not None or _state["depth"] > 0:
         return 0.0
     t0 = time.perf_counter()
-    try:
-        proc.wait(timeout)
-    except subprocess.TimeoutExpired:
-        pass
+    if proc.stdout is None:  # a process that reports no stage: wait for its end
+        try:
+            proc.wait(timeout)
+        except subprocess.TimeoutExpired:
+            pass
+    else:
+        import select
+        while time.perf_counter() - t0 < timeout:
+            ready, _, _ = select.select([proc.stdout], [], [], timeout)
+            if not ready:
+                break
+            line = proc.stdout.readline()
+            if not line:  # the process ended
+                break
+            if line.strip() == STAGE_LINE:
+                _ahead["staged"] = True
+                break
     waited = time.perf_counter() - t0
     _state["seconds"] += waited
     return waited
 
 
+def report_stage() -> None:
+    """In the second process: say that the first stage is done (see the module notes)."""
+    print(STAGE_LINE, flush=True)
+
+
 def _stop_ahead():
     proc = _ahead["proc"]
+    if proc and proc.poll() is None and _ahead["staged"]:
+        # in its second stage: let it finish that compile for the next run; it
+        # prints nothing more and stops by itself
+        return
     if proc and proc.poll() is None:
         proc.terminate()
         try:

@@ -683,7 +683,18 @@ def estimate_error_pk(solution, u, quadrature_degree, clock, helpers):
     np.add.at(jumps, ci, hE[ii, ci] ** 2 * jump2 / (2 * lamF))
     res_ind = np.ascontiguousarray(np.sqrt(h**2 / lam_min * elres2 + jumps + bres))
     fscale = float(np.abs(tgt).sum() + np.abs(gmom).sum())
-    return {"eta": eta, "res_ind": res_ind, "ef2": ef2, "ea2": ea2, "eo": eo, "bosc": bosc,
+    scoef = X.sum(axis=1) + T @ ref["rt0"]  # coefficients of sigma_h per cell
+
+    def residual_at(xq):
+        """``sigma_h + K grad u_h`` at reference points xq of every cell: (m, nq, 2)."""
+        tq, _ = _rt_values(k, xq)
+        sig = np.einsum("crs,cqs->cqr", J, np.einsum("ci,iqr->cqr", scoef, tq))
+        sig /= detJ[:, None, None]
+        gref = np.einsum("cb,qbr->cqr", uloc, el.tabulate_gradients(xq))
+        return sig + np.einsum("cij,cqj->cqi", Kt, np.einsum("cqr,crs->cqs", gref, Jinv))
+
+    return {"residual_at": residual_at, "J": J, "Kinv": Kinv,
+            "eta": eta, "res_ind": res_ind, "ef2": ef2, "ea2": ea2, "eo": eo, "bosc": bosc,
             "energy": energy, "unrouted": unrouted, "n_floating": int(n_floating[0]),
             "scale": fscale, "gap": _quadrature_gap(problem.source, disc, cells, pts, xi, w,
                                                     detJ, fv, quadrature_degree, k)}

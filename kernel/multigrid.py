@@ -728,8 +728,10 @@ class Hierarchy:
         r, z, p, q = (np.empty(n) for _ in range(4))
         # the twin that calls the serial sparse kernels below PARALLEL_FROM entries read:
         # a solve reads each fine-level entry about SOLVE_PASSES times, so systems from
-        # about 100,000 non-zeros solve in parallel (a 1M-dof 2D system has 5M)
-        pcg = by_size(_pcg_vcycle, SOLVE_PASSES * ind.shape[0])
+        # about 100,000 non-zeros solve in parallel (a 1M-dof 2D system has 5M), once
+        # the parallel loop is compiled: it compiles for ~7 s, longer than it saves in
+        # a first run, so while a second process compiles it the serial twin runs
+        pcg = by_size(_pcg_vcycle, SOLVE_PASSES * ind.shape[0], cached_only=True)
         k, nh, status = pcg(ptr, ind, val, *self._packed, b, x, x0 is None, float(rtol),
                             int(maxiter), int(max_restarts), history, r, z, p, q)
         return x, history[:nh].copy(), int(k), int(status)
@@ -1081,7 +1083,7 @@ def p1_coarse_space(disc, free):
     return sp.csr_array(I[np.asarray(free)][:, vertex_free])
 
 
-def compile_solver_kernels(n: int = 30) -> None:
+def compile_solver_kernels(n: int = 30, report_stage: bool = False) -> None:
     """Compile (or load) the kernels of solver ``cg-amg`` on a small system.
 
     A 5-point Laplacian on an ``n`` x ``n`` grid (more unknowns than the dense
@@ -1089,7 +1091,9 @@ def compile_solver_kernels(n: int = 30) -> None:
     through the same entry points as any solve: every array is normalised at
     those boundaries, so the signatures are those of every ``cg-amg`` solve.
     Run by the command line's second process (galerkit.compilation) and by
-    ``galerkit warm-up``.
+    ``galerkit warm-up``.  Two stages: every kernel of a solve (the serial twins
+    of the solve loop), then the parallel solve loop; ``report_stage`` prints
+    the line the first process waits for between them.
     """
     from .solvers import prepare_solver
 
@@ -1106,6 +1110,8 @@ def compile_solver_kernels(n: int = 30) -> None:
     assert A.nnz > np.count_nonzero(A.data)
     solver = prepare_solver(A, method="cg-amg")
     solver.solve(np.ones(n * n), rtol=1e-8)  # the serial twins, as small systems run
+    if report_stage:
+        compilation.report_stage()
     # the parallel solve loop too, as every system from about 100,000 non-zeros runs it
     threshold, compilation.PARALLEL_FROM = compilation.PARALLEL_FROM, 0
     try:

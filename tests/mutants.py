@@ -89,6 +89,8 @@ P3RT = f"{_P3}rt_reference_tables_equal_exact_sympy_moments_and_are_unisolvent[2
 P3SMOOTH = f"{_P3}bound_is_above_the_error_of_a_smooth_solution_with_effectivity_below_1_5[2-sizes0]"
 P3MIXED = f"{_P3}bound_is_above_the_error_of_a_mixed_condition_problem[False]"
 P3NUMBER = f"{_P3}bound_does_not_depend_on_the_vertex_numbering"
+PKJUMP = f"{_PK}residual_estimator_flux_jump_weight_equals_its_closed_form"
+PKMIN = f"{_PK}minimised_flux_stays_above_the_error_and_below_the_patch_flux"
 FLUX_WALL = "tests/test_fluxes.py::test_composite_wall_flux_equals_the_series_resistance_formula[2]"
 FLUX_CYL = "tests/test_fluxes.py::test_hollow_cylinder_flux_converges_at_the_expected_rates"
 FLUX_BAL = "tests/test_fluxes.py::test_consistent_fluxes_of_all_tags_sum_to_minus_the_source[2]"
@@ -228,6 +230,8 @@ MUTANTS = [
      "kinv[c, 0, 1] = -k01 / det", "kinv[c, 0, 1] = k01 / det", EROT),
     ("residual estimator: full jump on each side", "estimators.py",
      "(mine - other) ** 2 / (2 * lamF)", "(mine - other) ** 2 / lamF", ERES),
+    ("residual estimator: jump weighted by the smaller conductivity of the two cells",
+     "estimators.py", "lamF = max(lam, lam_min[nb_])", "lamF = min(lam, lam_min[nb_])", PKJUMP),
     ("Doerfler marking takes one cell fewer", "adaptivity.py",
      "return np.sort(order[:min(k, eta2.size)])", "return np.sort(order[:max(min(k, eta2.size) - 1, 1)])",
      EMARK),
@@ -264,6 +268,15 @@ MUTANTS = [
      "uloc, dphi, w, tau, X, T, ref", "uloc, dphi, w, tau, X, 0 * T, ref", PKLOOSE),
     ("P_k residual estimator: element Laplacian dropped", "equilibration.py",
      "elres = fv + (Hu @ Hm", "elres = fv + 0 * (Hu @ Hm", PKRES),
+    ("P_k residual estimator: jump term scaled by h_F^(3/2) instead of h_F^(1/2)",
+     "equilibration.py", "hE[ii, ci] ** 2 * jump2", "hE[ii, ci] ** 3 * jump2", PKJUMP),
+    ("P_k residual estimator: jump weighted by the smaller conductivity of the two cells",
+     "equilibration.py", "lamF = np.maximum(lam_min[ci], lam_min[other])",
+     "lamF = np.minimum(lam_min[ci], lam_min[other])", PKJUMP),
+    ("minimised flux: stream function free on the boundary (normal trace changed)",
+     "flux_minimisation.py", "    free[fixed] = False", "    free[fixed[:0]] = False", PKMIN),
+    ("minimised flux: right-hand side with its sign flipped", "flux_minimisation.py",
+     "    loc = -np.einsum", "    loc = np.einsum", PKMIN),
     ("P_k error bound: stiffness part of the patch divergence with its sign flipped",
      "equilibration.py", "tgt = np.ascontiguousarray(t1 - t2)",
      "tgt = np.ascontiguousarray(t1 + t2)", PKSMOOTH),
@@ -365,7 +378,7 @@ SELECTION = [
     "tests/test_problem.py::test_square_dirichlet_rates_are_k_plus_1_in_l2_and_k_in_h1[1-5-4]",
     EOSC, EPATCH, ERES, ELOOSE, ESMOOTH, EMARK, EBIS, EBIS3, EANG3,
     E3OSC, E3PATCH, E3RES, E3LOOSE, E3RT,
-    PKOSC, PKRES, PKPATCH, PKLOOSE, PKSMOOTH, PKMIXED,
+    PKOSC, PKRES, PKPATCH, PKLOOSE, PKSMOOTH, PKMIXED, PKJUMP, PKMIN,
     P3RT, P3OSC, P3BDATA, P3PATCH, P3LOOSE, P3SMOOTH, P3MIXED, P3NUMBER,
 ]
 

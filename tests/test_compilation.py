@@ -160,6 +160,56 @@ def test_waiting_for_the_second_process_counts_as_compile_time(monkeypatch):
     assert compilation.start_compile_ahead() is False
 
 
+def test_the_wait_ends_at_the_first_stage_and_exit_leaves_the_second_stage_running(
+        monkeypatch):
+    """A second process that prints the stage line is waited for up to that line only;
+    at exit it is left to finish (its second stage fills the cache for the next run),
+    while one that has not reported its stage is stopped."""
+    code = (f"import time; print({compilation.STAGE_LINE!r}, flush=True); time.sleep(30)")
+    proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
+    try:
+        monkeypatch.setitem(compilation._ahead, "proc", proc)
+        monkeypatch.setitem(compilation._ahead, "closed", False)
+        monkeypatch.setitem(compilation._ahead, "staged", False)
+        waited = compilation.wait_for_compile_ahead(timeout=60.0)
+        assert 0.0 < waited < 30.0 and compilation._ahead["staged"]
+        assert proc.poll() is None  # still in its second stage
+        compilation._stop_ahead()
+        assert proc.poll() is None  # left running
+        monkeypatch.setitem(compilation._ahead, "staged", False)
+        compilation._stop_ahead()  # not staged: stopped
+        assert proc.wait(10) is not None
+    finally:
+        proc.kill()
+        proc.wait()
+
+
+def test_cached_only_runs_the_serial_twin_until_the_parallel_kernel_is_ready(monkeypatch):
+    """While a second process compiles ahead, by_size(..., cached_only=True) picks the
+    parallel kernel only once it is compiled or cached; without one it picks as before."""
+
+    @nb.njit(parallel=True)
+    def par(x):
+        for i in nb.prange(x.shape[0]):
+            x[i] += 1.0
+
+    monkeypatch.setattr(compilation, "PARALLEL_FROM", 0)
+    if nb.get_num_threads() < 2:
+        pytest.skip("one numba thread: by_size always picks the serial twin")
+    assert not compilation.is_ready(par)
+    monkeypatch.setitem(compilation._ahead, "proc", None)  # earlier commands may have run one
+    assert compilation.by_size(par, 10, cached_only=True) is par  # no second process
+    monkeypatch.setitem(compilation._ahead, "proc", object())  # one runs
+    twin = compilation.by_size(par, 10, cached_only=True)
+    assert twin is compilation.serial_twin(par)
+    assert compilation.by_size(par, 10) is par  # only cached_only calls wait for it
+    x = np.zeros(4)
+    twin(x)
+    par(x)  # compiled here: ready from now on
+    assert compilation.is_ready(par) and np.array_equal(x, np.full(4, 2.0))
+    assert compilation.by_size(par, 10, cached_only=True) is par
+
+
 _RECORD = """
 import json, sys
 from numba.core import event

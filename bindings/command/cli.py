@@ -163,7 +163,9 @@ def _demo(args) -> int:
     out = _folder(args.output)
     nx, ny = args.size, (2 * args.size) // 3
     compile_before = _compile_seconds()
+    t_start = time.perf_counter()
     mesh = gk.structured_triangles(nx, ny, (0.0, 0.0), (0.30, 0.20))
+    t_mesh = time.perf_counter() - t_start
     kappa = 160.0  # W/(m K), aluminium alloy plate (demo value)
     thickness = 0.004  # m
     # six cells of 0.07 m x 0.05 m, 12 W each, spread through the plate thickness
@@ -180,10 +182,11 @@ def _demo(args) -> int:
     h_coolant, t_coolant = 1500.0 / thickness, 25.0
     problem = gk.PoissonProblem(mesh, conductivity=kappa, source=source,
                                 robin={"ymin": (h_coolant, t_coolant)})
-    t0 = time.perf_counter()
     sol = problem.solve(degree=1, method=args.method, rtol=1e-10)
-    total = time.perf_counter() - t0
-    seconds = _with_compile(sol.seconds, compile_before)
+    # total: mesh to solution, compilation included (the lines above it sum to it,
+    # up to the set-up of the problem between them)
+    total = time.perf_counter() - t_start
+    seconds = _with_compile({"mesh": t_mesh, **sol.seconds}, compile_before)
     vtu = write_solution(out / "cooling_plate.vtu", sol, name="temperature")
     png = plot_field(out / "cooling_plate.png", sol, title="Cooling plate: steady temperature",
                      units="temperature [deg C]", length_unit="m")

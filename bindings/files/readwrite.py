@@ -58,6 +58,8 @@ from galerkit.errors import InputError, MeshError
 from galerkit.mesh import Mesh, merge_duplicate_vertices
 from galerkit.refinement import refine_uniform
 
+from .vtu import write_vtu
+
 __all__ = ["read_mesh", "write_solution", "atomic_path", "write_atomically", "xml_name",
            "sample_solution", "SampledSolution", "TAG_ARRAY_PREFIX"]
 
@@ -668,7 +670,6 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
     >>> bool(np.allclose(back.point_data["u"], sol.u)), sorted(back.cell_data)[:2]
     (True, ['conductivity', 'flux'])
     """
-    import meshio
 
     s = sample_solution(solution, refinements)
     mesh = s.mesh
@@ -703,9 +704,9 @@ def write_solution(path, solution, *, name="u", conductivity=None, refinements=N
         if tag in mesh.facet_groups:
             member[mesh.boundary_facets[mesh.facet_groups[tag]].ravel()] = 1
         point_data[xml_name(TAG_ARRAY_PREFIX + tag)] = member
-    out = meshio.Mesh(pts, [(_CELL_OF_DIM[d], np.asarray(mesh.cells))], point_data=point_data,
-                      cell_data=cell_data)
-    return write_atomically(path, lambda tmp: meshio.write(str(tmp), out, file_format="vtu"))
+    cell_data = {k: v[0] for k, v in cell_data.items()}
+    return write_atomically(path, lambda tmp: write_vtu(tmp, pts, _CELL_OF_DIM[d], mesh.cells,
+                                                        point_data, cell_data))
 
 
 def _cell_conductivity(kappa, mesh, parent_cells, n_parent):
