@@ -1,20 +1,25 @@
 """Cost of one adaptive level beyond the solve: estimate, mark, refine, against the solve.
 
 P1 on the L-shaped domain (unit source, u = 0 on the boundary) at about ``--dofs``
-unknowns; every kernel is compiled first on a small mesh, so the times are warm.
+unknowns, or with ``--dim 3`` on the unit cube cut into tetrahedra
+(``structured_tetrahedra``, same data); every kernel is compiled first on a small mesh,
+so the times are warm.
 Prints the solve's phases, the estimate's phases (``ErrorEstimate.phase_seconds``),
 Doerfler marking and newest-vertex bisection, and the ratio (estimate + mark + refine) /
 solve.  With ``--before REV`` the estimator of git revision REV (its
-``kernel/estimators.py``) runs on the same solution in the same process: the ratio of
-the two and the difference of their bounds are printed too.
+``kernel/estimators.py``, in 3D its ``kernel/estimators3d.py``) runs on the same
+solution in the same process: the ratio of the two and the difference of their bounds
+are printed too.  The peak resident set size of the process ends the report.
 
     .venv/bin/python benchmarks/estimate_speed.py --dofs 1000000 --before 81898b5
+    .venv/bin/python benchmarks/estimate_speed.py --dim 3 --dofs 300000 --before 5aeb757
 """
 
 import argparse
 import importlib.util
 import math
 import os
+import resource
 import subprocess
 import sys
 import tempfile
@@ -26,10 +31,11 @@ import galerkit as gk
 from galerkit.adaptivity import doerfler_marking
 
 
-def load_before(rev):
+def load_before(rev, dim=2):
     """The estimator module of git revision ``rev``, imported beside the current one."""
     root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-    text = subprocess.run(["git", "show", f"{rev}:kernel/estimators.py"], cwd=root,
+    name = "estimators.py" if dim == 2 else "estimators3d.py"
+    text = subprocess.run(["git", "show", f"{rev}:kernel/{name}"], cwd=root,
                           check=True, capture_output=True, text=True).stdout
     folder = tempfile.mkdtemp(prefix="estimators-before-")
     path = os.path.join(folder, "estimators_before.py")
@@ -42,9 +48,15 @@ def load_before(rev):
     return mod
 
 
-def problem(n, source):
-    return gk.PoissonProblem(gk.l_shaped_triangles(n), source=source,
-                             dirichlet={"boundary": 0.0})
+def problem(n, source, dim=2):
+    mesh = gk.l_shaped_triangles(n) if dim == 2 else gk.structured_tetrahedra(n, n, n)
+    return gk.PoissonProblem(mesh, source=source, dirichlet={"boundary": 0.0})
+
+
+def before_estimate(before, sol, dim):
+    if dim == 2:
+        return before.estimate_error(sol)
+    return before.estimate_error_tetrahedra(sol, None, 4, time.perf_counter())
 
 
 def best(f, repeat):
@@ -58,7 +70,9 @@ def best(f, repeat):
 
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--dofs", type=int, default=1_000_000)
+    ap.add_argument("--dofs", type=int, default=None,
+                    help="about this many unknowns (default 1,000,000 in 2D, 300,000 in 3D)")
+    ap.add_argument("--dim", type=int, choices=[2, 3], default=2)
     ap.add_argument("--before", metavar="REV", help="also time the estimator of this revision")
     ap.add_argument("--repeat", type=int, default=2)
     ap.add_argument("--refine-share", type=float, default=None, metavar="S",
@@ -70,17 +84,23 @@ def main():
     args = ap.parse_args()
     source = 1.0 if args.source == "constant" else (
         lambda x: 1.0 + np.sin(3 * x[0]) * np.cos(2 * x[1]))
-    before = load_before(args.before) if args.before else None
+    dim = args.dim
+    dofs = args.dofs or (1_000_000 if dim == 2 else 300_000)
+    before = load_before(args.before, dim) if args.before else None
     # warm up every kernel on a small mesh
-    small = problem(8, source).solve()
+    small = problem(8 if dim == 2 else 4, source, dim).solve()
     est = gk.estimate_error(small)
     gk.refine_marked(small.mesh, doerfler_marking(est.indicators))
     if before is not None:
-        before.estimate_error(small)
-    n = max(2, round(math.sqrt(args.dofs / 3)))
-    pb = problem(n, source)
+        before_estimate(before, small, dim)
+    if dim == 2:
+        n = max(2, round(math.sqrt(dofs / 3)))
+    else:
+        n = max(2, round(dofs ** (1 / 3)) - 1)
+    pb = problem(n, source, dim)
     sol, t_solve = best(lambda: pb.solve(), args.repeat)
-    print(f"L-shape n={n}: {sol.disc.n_dofs} dofs, {sol.mesh.n_cells} cells, "
+    print(f"{'L-shape' if dim == 2 else 'cube'} n={n}: {sol.disc.n_dofs} dofs, "
+          f"{sol.mesh.n_cells} cells, "
           f"{os.environ.get('NUMBA_NUM_THREADS', 'all')} threads")
     print(f"solve      {t_solve:8.3f} s  " + ", ".join(
         f"{k} {v:.3f}" for k, v in sol.seconds.items()))
@@ -100,10 +120,15 @@ def main():
     print(f"(estimate + mark + refine) / solve = {(t_est + t_mark + t_ref) / t_solve:.2f}; "
           f"estimate / solve = {t_est / t_solve:.2f}")
     if before is not None:
-        old, t_old = best(lambda: before.estimate_error(sol), args.repeat)
+        old, t_old = best(lambda: before_estimate(before, sol, dim), args.repeat)
         print(f"estimate of {args.before}: {t_old:.3f} s = {t_old / t_solve:.2f} x the solve; "
               f"speed-up {t_old / t_est:.1f}x; bounds {old.bound:.12e} / {est.bound:.12e} "
-              f"(relative difference {abs(old.bound - est.bound) / old.bound:.1e})")
+              f"(relative difference {abs(old.bound - est.bound) / old.bound:.1e}); "
+              f"largest indicator difference "
+              f"{np.abs(old.indicators - est.indicators).max() / est.indicators.max():.1e}")
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(f"peak resident set size {peak:.0f} MiB "
+          f"({peak * 2**20 / sol.disc.n_dofs:.0f} bytes per dof)")
 
 
 if __name__ == "__main__":

@@ -12,8 +12,13 @@ bound) -- among the fields with zero flux through the faces opposite ``a``,
 the facet moments ``-(g, psi_a)_F`` of the Neumann/Robin data on boundary
 faces, a free flux on Dirichlet faces, and the hat-weighted residual
 ``(f, psi_a)_K - (K grad u_h, grad psi_a)_K`` as divergence on each cell.  In
-3D the patch problem is a small mixed system (face fluxes and one multiplier
-per cell), solved exactly by a dense LU factorisation per vertex.  The
+3D the patch problem is a small constrained minimisation over the face fluxes,
+solved exactly by a null-space method: a spanning tree of the patch cells,
+grown from its Dirichlet faces, gives a flux with the required divergence,
+every face off the tree closes a divergence-free cycle, and a small SPD
+system (Cholesky) picks the best combination of cycles.  A vertex whose
+system is not numerically positive definite is solved by the mixed system
+(face fluxes and one multiplier per cell, dense LU) instead.  The
 residual of an inexact solve is taken out of the patches without a Dirichlet
 face and carried along a spanning tree of the cells to a Dirichlet facet,
 as in 2D.  Then, cell by cell,
@@ -50,8 +55,8 @@ import numpy as np
 
 from .coefficients import evaluate_callable, scalar_values, tensor_values
 from .errors import InputError, UnsupportedError
-from .estimators import (ErrorEstimate, _DIRICHLET, _FLUX, _INTERIOR, _check_equilibrium,
-                         _route, cell_diameters)
+from .estimators import (ErrorEstimate, _Clock, _DIRICHLET, _FLUX, _INTERIOR,
+                         _check_equilibrium, _route)
 from .regions import RegionCoefficient
 from .quadrature import simplex_quadrature
 from .topology import enumerate_entities
@@ -59,12 +64,498 @@ from .topology import enumerate_entities
 __all__ = ["estimate_error_tetrahedra"]
 
 _FACES = np.array([[1, 2, 3], [0, 2, 3], [0, 1, 3], [0, 1, 2]])  # face i: opposite vertex i
+_FORCE_MIXED = False  # tests: every patch by the mixed system (the null-space method's check)
 
 
-# -- compiled kernel ------------------------------------------------------------------
+# -- compiled kernels -------------------------------------------------------------------
+_CHUNK = 64  # vertices per block of the patch kernel: fixed, so no result depends on threads
+_CELL_CHUNK = 1024  # cells per block of the cell kernels (work arrays once per block)
+
+
+@nb.njit(cache=True)
+def _inv3(A, out):
+    """``out = A^-1`` for a (3, 3) matrix, by the adjugate."""
+    c00 = A[1, 1] * A[2, 2] - A[1, 2] * A[2, 1]
+    c01 = A[1, 2] * A[2, 0] - A[1, 0] * A[2, 2]
+    c02 = A[1, 0] * A[2, 1] - A[1, 1] * A[2, 0]
+    det = A[0, 0] * c00 + A[0, 1] * c01 + A[0, 2] * c02
+    r = 1.0 / det
+    out[0, 0] = c00 * r
+    out[1, 0] = c01 * r
+    out[2, 0] = c02 * r
+    out[0, 1] = (A[0, 2] * A[2, 1] - A[0, 1] * A[2, 2]) * r
+    out[1, 1] = (A[0, 0] * A[2, 2] - A[0, 2] * A[2, 0]) * r
+    out[2, 1] = (A[0, 1] * A[2, 0] - A[0, 0] * A[2, 1]) * r
+    out[0, 2] = (A[0, 1] * A[1, 2] - A[0, 2] * A[1, 1]) * r
+    out[1, 2] = (A[0, 2] * A[1, 0] - A[0, 0] * A[1, 2]) * r
+    out[2, 2] = (A[0, 0] * A[1, 1] - A[0, 1] * A[1, 0]) * r
+
+
+@nb.njit(cache=True)
+def _rt_mass_cell(X, vol, kinv, M, D, AE):
+    """``M[i, j] = int_c phi_i . K^-1 phi_j`` with ``phi_i = (x - x_i) / (3 |c|)``: exact,
+    from ``int l_k l_l = |c| (1 + delta_kl) / 20`` (Stroud 1971):
+    ``(16 D_i.A D_j + sum_k E_ik.A E_jk) / (180 |c|)``, ``D_i = xbar - x_i``,
+    ``E_ik = x_k - x_i``; ``D`` (4, 3) and ``AE`` (4, 4, 3) are work arrays."""
+    for i in range(4):
+        for a in range(3):
+            D[i, a] = 0.25 * (X[0, a] + X[1, a] + X[2, a] + X[3, a]) - X[i, a]
+    for i in range(4):  # AE[i, k] = A E_ik
+        for k in range(4):
+            for a in range(3):
+                s = 0.0
+                for b in range(3):
+                    s += kinv[a, b] * (X[k, b] - X[i, b])
+                AE[i, k, a] = s
+    for i in range(4):
+        for j in range(i, 4):
+            t1 = 0.0
+            for a in range(3):
+                s = 0.0
+                for b in range(3):
+                    s += kinv[a, b] * D[j, b]
+                t1 += D[i, a] * s
+            t2 = 0.0
+            for k in range(4):
+                for a in range(3):
+                    t2 += (X[k, a] - X[i, a]) * AE[j, k, a]
+            M[i, j] = M[j, i] = (16.0 * t1 + t2) / (180.0 * vol)
+
+
 @nb.njit(cache=True, parallel=True)
-def _patch_fluxes_3d(cells, vol, M, qf, fid, bkind, draw, gout, vptr, vcell, vloc, P, corr):
-    """Local equilibrated fluxes on every vertex patch (3D, lowest order).
+def _rt_mass(X, vol, kinv):
+    """:func:`_rt_mass_cell` on every cell: shape (m, 4, 4)."""
+    m = X.shape[0]
+    M = np.empty((m, 4, 4))
+    for b in nb.prange((m + _CELL_CHUNK - 1) // _CELL_CHUNK):
+        D = np.empty((4, 3))
+        AE = np.empty((4, 4, 3))
+        for c in range(b * _CELL_CHUNK, min(m, (b + 1) * _CELL_CHUNK)):
+            _rt_mass_cell(X[c], vol[c], kinv[c], M[c], D, AE)
+    return M
+
+
+@nb.njit(cache=True)
+def _rt_misfit_cell(X, vol, F, q, A, W):
+    """``||A^1/2 (sigma + q)||_c**2`` for the RT0 field of outward face fluxes F:
+    ``int w.A w = |c|/20 (sum_k w_k.A w_k + (sum_k w_k).A(sum_k w_k))`` for affine w
+    with vertex values w_k (exact simplex integrals, Stroud 1971); ``W`` (4, 3) work."""
+    for k in range(4):
+        for a in range(3):
+            s = q[a]
+            for i in range(4):
+                s += F[i] * (X[k, a] - X[i, a]) / (3.0 * vol)
+            W[k, a] = s
+    acc = 0.0
+    for k in range(5):
+        for a in range(3):
+            wa = W[0, a] + W[1, a] + W[2, a] + W[3, a] if k == 4 else W[k, a]
+            for b in range(3):
+                wb = W[0, b] + W[1, b] + W[2, b] + W[3, b] if k == 4 else W[k, b]
+                acc += wa * A[a, b] * wb
+    return vol / 20.0 * acc
+
+
+@nb.njit(cache=True, parallel=True)
+def _rt_misfit_3d(X, vol, F, flux_h, kinv):
+    """:func:`_rt_misfit_cell` on every cell: shape (m,)."""
+    m = X.shape[0]
+    out = np.empty(m)
+    for b in nb.prange((m + _CELL_CHUNK - 1) // _CELL_CHUNK):
+        W = np.empty((4, 3))
+        for c in range(b * _CELL_CHUNK, min(m, (b + 1) * _CELL_CHUNK)):
+            out[c] = _rt_misfit_cell(X[c], vol[c], F[c], flux_h[c], kinv[c], W)
+    return out
+
+
+@nb.njit(cache=True, parallel=True)
+def _cell_data_3d(X, K, ucell, vol, kinv, lam_min, h, grad_uh, flux_h, stiff, M):
+    """Per cell: ``K^-1``, the smallest diagonal entry of K (its smallest eigenvalue when
+    K is diagonal; the caller takes LAPACK's otherwise), the longest edge, ``grad u_h``,
+    ``K grad u_h``, ``stiff[c, l] = (K grad u_h, grad l_l)_c`` and the Raviart--Thomas
+    mass matrix.  The barycentric gradients are the rows of ``J^-1``,
+    ``J = [x_1 - x_0, x_2 - x_0, x_3 - x_0]``, and ``grad l_0 = -sum of the others``."""
+    m = X.shape[0]
+    for blk in nb.prange((m + _CELL_CHUNK - 1) // _CELL_CHUNK):
+        J = np.empty((3, 3))
+        Ji = np.empty((3, 3))
+        gl = np.empty((4, 3))
+        D = np.empty((4, 3))
+        AE = np.empty((4, 4, 3))
+        for c in range(blk * _CELL_CHUNK, min(m, (blk + 1) * _CELL_CHUNK)):
+            Xc = X[c]
+            for a in range(3):
+                for i in range(3):
+                    J[a, i] = Xc[i + 1, a] - Xc[0, a]
+            _inv3(J, Ji)
+            for a in range(3):
+                gl[0, a] = -(Ji[0, a] + Ji[1, a] + Ji[2, a])
+                for i in range(3):
+                    gl[i + 1, a] = Ji[i, a]
+            Kc = K[c]
+            _inv3(Kc, kinv[c])
+            lam_min[c] = min(Kc[0, 0], min(Kc[1, 1], Kc[2, 2]))
+            hh = 0.0
+            for i in range(4):
+                for j in range(i + 1, 4):
+                    d = 0.0
+                    for a in range(3):
+                        d += (Xc[i, a] - Xc[j, a]) ** 2
+                    hh = max(hh, math.sqrt(d))
+            h[c] = hh
+            for a in range(3):
+                s = 0.0
+                for i in range(4):
+                    s += ucell[c, i] * gl[i, a]
+                grad_uh[c, a] = s
+            for a in range(3):
+                s = 0.0
+                for b in range(3):
+                    s += Kc[a, b] * grad_uh[c, b]
+                flux_h[c, a] = s
+            for l in range(4):
+                s = 0.0
+                for a in range(3):
+                    s += flux_h[c, a] * gl[l, a]
+                stiff[c, l] = vol[c] * s
+            _rt_mass_cell(Xc, vol[c], kinv[c], M[c], D, AE)
+
+
+@nb.njit(cache=True, parallel=True)
+def _flux_jumps_3d(qf, fid, neighbors, lam_min, X):
+    """Per cell: sum over interior faces of h_F / (2 lambda_F) ||[K grad u_h . n]||_F**2."""
+    m = qf.shape[0]
+    out = np.zeros(m)
+    for c in nb.prange(m):
+        acc = 0.0
+        for i in range(4):
+            o = neighbors[c, i]
+            if o < 0:
+                continue
+            back = 0
+            for t in range(4):
+                if fid[o, t] == fid[c, i]:
+                    back = t
+                    break
+            v0, v1, v2 = (1, 2, 3) if i == 0 else ((0, 2, 3) if i == 1 else
+                                                   ((0, 1, 3) if i == 2 else (0, 1, 2)))
+            ax = X[c, v1, 0] - X[c, v0, 0]
+            ay = X[c, v1, 1] - X[c, v0, 1]
+            az = X[c, v1, 2] - X[c, v0, 2]
+            bx = X[c, v2, 0] - X[c, v0, 0]
+            by = X[c, v2, 1] - X[c, v0, 1]
+            bz = X[c, v2, 2] - X[c, v0, 2]
+            ex = X[c, v2, 0] - X[c, v1, 0]
+            ey = X[c, v2, 1] - X[c, v1, 1]
+            ez = X[c, v2, 2] - X[c, v1, 2]
+            cx = ay * bz - az * by
+            cy = az * bx - ax * bz
+            cz = ax * by - ay * bx
+            area = 0.5 * math.sqrt(cx * cx + cy * cy + cz * cz)
+            hF = max(math.sqrt(ax * ax + ay * ay + az * az),
+                     max(math.sqrt(bx * bx + by * by + bz * bz),
+                         math.sqrt(ex * ex + ey * ey + ez * ez)))
+            jump = (qf[c, i] + qf[o, back]) / area  # outward fluxes of both sides
+            lamF = max(lam_min[c], lam_min[o])
+            acc += hF * area * jump**2 / (2 * lamF)
+        out[c] = acc
+    return out
+
+
+@nb.njit(cache=True)
+def _patch_position(vcell, s0, k, c):
+    """Index of cell ``c`` in the ascending ``vcell[s0:s0 + k]`` (bisection)."""
+    lo = 0
+    hi = k - 1
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if vcell[s0 + mid] < c:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
+@nb.njit(cache=True, parallel=True)
+def _patch_fluxes_3d(vol, M, qf, fid, neighbors, bkind, draw, gout, vptr, vcell, vloc,
+                     P, corr, flagged):
+    """Local equilibrated fluxes on every vertex patch (3D, lowest order), by a
+    null-space method: a graph whose nodes are the patch cells (and one "ground" node
+    for the Dirichlet faces) and whose edges are the free faces.  A spanning tree,
+    grown from the ground and then from the first cell of each floating component,
+    carries the hat-weighted residual of every cell to the root (a particular
+    solution of the divergence constraint); every face off the tree closes one
+    cycle, a divergence-free field, and the fluxes closest to the target in the
+    ``M`` norm are the particular solution plus the combination of cycles that a
+    small SPD system (Cholesky) gives.  The minimiser is the one of the mixed
+    system of :func:`_patch_fluxes_mixed_3d`; a vertex whose reduced system is not
+    numerically positive definite is left to that one (``flagged[a] = 1``).
+
+    ``M[c]``: the (4, 4) Raviart--Thomas mass matrix of cell ``c`` in the ``K^-1``
+    product (basis of unit outward face fluxes); ``qf[c, i]``: outward flux of
+    ``K grad u_h`` through face ``i``; ``fid``, ``neighbors``: face ids and the cell
+    across each face; ``bkind``, ``draw``, ``gout`` as in 2D.  Writes ``P[c, l, i]``
+    (outward flux of patch ``l`` through face ``i`` of ``c``) and ``corr[c, l]``; each
+    (c, l) belongs to one vertex, so the writes never collide.  Work arrays are made
+    once per block of ``_CHUNK`` vertices.
+    """
+    n = vptr.shape[0] - 1
+    kmax = 1
+    for a in range(n):
+        kmax = max(kmax, vptr[a + 1] - vptr[a])
+    F3 = 3 * kmax
+    for blk in nb.prange((n + _CHUNK - 1) // _CHUNK):
+        ftype = np.empty(F3, np.int64)      # 0 free interior, 1 free Dirichlet, 2 fixed
+        fval = np.empty(F3)                 # fixed value (owner's outward flux)
+        fown = np.empty(F3, np.int64)       # owner (first) cell of the face, other cell
+        foth = np.empty(F3, np.int64)
+        pf = np.empty((kmax, 3), np.int64)  # local face of (patch cell, slot)
+        ps = np.empty((kmax, 3))            # orientation: +1 owner, -1 other side
+        pl = np.empty((kmax, 3), np.int64)  # local face index i in the cell
+        par = np.empty(kmax, np.int64)      # slot of the tree face to the parent, -1 root
+        comp = np.empty(kmax, np.int64)     # -1 anchored, else first cell of the component
+        order = np.empty(kmax, np.int64)    # breadth-first order
+        d = np.empty(kmax)
+        tot = np.empty(kmax)
+        vs = np.empty(kmax)
+        tree = np.empty(F3, np.bool_)
+        y = np.empty(F3)
+        w = np.empty(F3)
+        col = np.empty(F3, np.int64)        # column of each cycle face, -1 otherwise
+        Z = np.empty((F3, F3))              # Z[f, j]: flux of cycle j through face f
+        R = np.empty((F3, F3))
+        g = np.empty(F3)
+        v = np.empty(3)
+        act = np.empty(F3, np.int64)
+        MZ = np.empty((3, F3))
+        for a in range(blk * _CHUNK, min(n, (blk + 1) * _CHUNK)):
+            s0 = vptr[a]
+            k = vptr[a + 1] - s0
+            # local faces: owned by the first patch cell that meets them
+            nf = 0
+            for p in range(k):
+                c = vcell[s0 + p]
+                la = vloc[s0 + p]
+                j = 0
+                for i in range(4):
+                    if i == la:
+                        continue
+                    o = neighbors[c, i]
+                    q = -1 if o < 0 else _patch_position(vcell, s0, k, o)
+                    if q < 0 or q > p:
+                        f = nf
+                        nf += 1
+                        fown[f] = p
+                        foth[f] = q
+                        ps[p, j] = 1.0
+                        fval[f] = 0.0
+                        if bkind[c, i] == 1:
+                            ftype[f] = 1
+                        elif bkind[c, i] == 2:
+                            ftype[f] = 2
+                            fval[f] = gout[c, i, la]
+                        else:
+                            ftype[f] = 0
+                    else:
+                        f = -1
+                        for jj in range(3):
+                            if neighbors[o, pl[q, jj]] == c and fid[o, pl[q, jj]] == fid[c, i]:
+                                f = pf[q, jj]
+                        ps[p, j] = -1.0
+                    pf[p, j] = f
+                    pl[p, j] = i
+                    j += 1
+            # spanning forest: from the ground through the Dirichlet faces, then from
+            # the first unreached cell of each floating component
+            for p in range(k):
+                par[p] = -2
+            for f in range(nf):
+                tree[f] = False
+            no = 0
+            for p in range(k):
+                for j in range(3):
+                    if ftype[pf[p, j]] == 1 and par[p] == -2:
+                        par[p] = j
+                        comp[p] = -1
+                        tree[pf[p, j]] = True
+                        order[no] = p
+                        no += 1
+            head = 0
+            start = 0
+            while True:
+                while head < no:
+                    p = order[head]
+                    head += 1
+                    for j in range(3):
+                        f = pf[p, j]
+                        if ftype[f] != 0:
+                            continue
+                        q = foth[f] if fown[f] == p else fown[f]
+                        if par[q] == -2:
+                            for jj in range(3):
+                                if pf[q, jj] == f:
+                                    par[q] = jj
+                            comp[q] = comp[p]
+                            tree[f] = True
+                            order[no] = q
+                            no += 1
+                while start < k and par[start] != -2:
+                    start += 1
+                if start == k:
+                    break
+                par[start] = -1
+                comp[start] = start
+                order[no] = start
+                no += 1
+            # residual of every cell; floating components take theirs out (by volume)
+            for p in range(k):
+                d[p] = draw[vcell[s0 + p], vloc[s0 + p]]
+                tot[p] = 0.0
+                vs[p] = 0.0
+            for p in range(k):
+                r = comp[p]
+                if r >= 0:
+                    tot[r] += d[p]
+                    vs[r] += vol[vcell[s0 + p]]
+                    for j in range(3):
+                        if ftype[pf[p, j]] == 2:
+                            tot[r] -= ps[p, j] * fval[pf[p, j]]
+            for p in range(k):
+                r = comp[p]
+                cj = 0.0
+                if r >= 0:
+                    cj = tot[r] * vol[vcell[s0 + p]] / vs[r]
+                    d[p] -= cj
+                corr[vcell[s0 + p], vloc[s0 + p]] = cj
+            # particular solution: leaves first, each cell's balance through its tree face
+            for f in range(nf):
+                y[f] = fval[f]
+            for t in range(no - 1, -1, -1):
+                p = order[t]
+                jp = par[p]
+                if jp < 0:
+                    continue
+                s = d[p]
+                for j in range(3):
+                    if j != jp:
+                        s -= ps[p, j] * y[pf[p, j]]
+                y[pf[p, jp]] = ps[p, jp] * s
+            # cycles: unit flux through a free face off the tree, closed through the tree
+            nz = 0
+            for f in range(nf):
+                col[f] = -1
+                if ftype[f] != 2 and not tree[f]:
+                    col[f] = nz
+                    nz += 1
+            if nz > 0:
+                for f in range(nf):
+                    for jz in range(nz):
+                        Z[f, jz] = 0.0
+                for f in range(nf):
+                    jz = col[f]
+                    if jz < 0:
+                        continue
+                    Z[f, jz] = 1.0
+                    for t in range(no - 1, -1, -1):
+                        p = order[t]
+                        jp = par[p]
+                        if jp < 0:
+                            continue
+                        s = 0.0
+                        for j in range(3):
+                            if j != jp:
+                                s -= ps[p, j] * Z[pf[p, j], jz]
+                        Z[pf[p, jp], jz] = ps[p, jp] * s
+                # reduced system R z = -Z^T (A y + b): A = sum_p S_p^T M_p S_p, and
+                # b = sum_p S_p^T M_p t_p with the target t_p = a third of qf
+                for f in range(nf):
+                    w[f] = 0.0
+                for i1 in range(nz):
+                    for i2 in range(nz):
+                        R[i1, i2] = 0.0
+                for p in range(k):
+                    c = vcell[s0 + p]
+                    for j in range(3):
+                        v[j] = ps[p, j] * y[pf[p, j]] + qf[c, pl[p, j]] / 3.0
+                    for j in range(3):
+                        acc = 0.0
+                        for jj in range(3):
+                            acc += M[c, pl[p, j], pl[p, jj]] * v[jj]
+                        w[pf[p, j]] += ps[p, j] * acc
+                    na = 0
+                    for jz in range(nz):
+                        if Z[pf[p, 0], jz] != 0.0 or Z[pf[p, 1], jz] != 0.0 \
+                                or Z[pf[p, 2], jz] != 0.0:
+                            act[na] = jz
+                            na += 1
+                    for j in range(3):
+                        for t in range(na):
+                            acc = 0.0
+                            for jj in range(3):
+                                acc += M[c, pl[p, j], pl[p, jj]] * ps[p, jj] \
+                                    * Z[pf[p, jj], act[t]]
+                            MZ[j, t] = acc
+                    for t1 in range(na):
+                        for t2 in range(na):
+                            acc = 0.0
+                            for j in range(3):
+                                acc += ps[p, j] * Z[pf[p, j], act[t1]] * MZ[j, t2]
+                            R[act[t1], act[t2]] += acc
+                for jz in range(nz):
+                    acc = 0.0
+                    for f in range(nf):
+                        acc += Z[f, jz] * w[f]
+                    g[jz] = -acc
+                # Cholesky R = L L^T in place (lower triangle), then the two solves
+                ok = True
+                for i1 in range(nz):
+                    s = R[i1, i1]
+                    dia = s
+                    for t in range(i1):
+                        s -= R[i1, t] * R[i1, t]
+                    if not s > 1e-12 * dia:
+                        ok = False
+                        break
+                    lii = math.sqrt(s)
+                    R[i1, i1] = lii
+                    for i2 in range(i1 + 1, nz):
+                        s2 = R[i2, i1]
+                        for t in range(i1):
+                            s2 -= R[i2, t] * R[i1, t]
+                        R[i2, i1] = s2 / lii
+                if not ok:
+                    flagged[a] = 1
+                    continue
+                for i1 in range(nz):
+                    s = g[i1]
+                    for t in range(i1):
+                        s -= R[i1, t] * g[t]
+                    g[i1] = s / R[i1, i1]
+                for i1 in range(nz - 1, -1, -1):
+                    s = g[i1]
+                    for t in range(i1 + 1, nz):
+                        s -= R[t, i1] * g[t]
+                    g[i1] = s / R[i1, i1]
+                for f in range(nf):
+                    if ftype[f] != 2:
+                        acc = 0.0
+                        for jz in range(nz):
+                            acc += Z[f, jz] * g[jz]
+                        y[f] += acc
+            for p in range(k):
+                c = vcell[s0 + p]
+                la = vloc[s0 + p]
+                P[c, la, la] = 0.0
+                for j in range(3):
+                    P[c, la, pl[p, j]] = ps[p, j] * y[pf[p, j]]
+
+
+@nb.njit(cache=True, parallel=True)
+def _patch_fluxes_mixed_3d(vol, M, qf, fid, bkind, draw, gout, vptr, vcell, vloc, P, corr,
+                           verts):
+    """Local equilibrated fluxes on the patches of the vertices ``verts`` (3D, lowest
+    order), by the mixed system (face fluxes and one multiplier per cell, dense LU):
+    the fallback of :func:`_patch_fluxes_3d`, and its check in the tests.
 
     ``M[c]``: the (4, 4) Raviart--Thomas mass matrix of cell ``c`` in the ``K^-1``
     product (basis of unit outward face fluxes); ``qf[c, i]``: outward flux of
@@ -73,8 +564,8 @@ def _patch_fluxes_3d(cells, vol, M, qf, fid, bkind, draw, gout, vptr, vcell, vlo
     through face ``i`` of ``c``) and ``corr[c, l]``; each (c, l) belongs to one
     vertex, so the writes never collide.
     """
-    n = vptr.shape[0] - 1
-    for a in nb.prange(n):
+    for iv in nb.prange(verts.size):
+        a = verts[iv]
         s0 = vptr[a]
         k = vptr[a + 1] - s0
         nmax = 3 * k
@@ -233,6 +724,7 @@ def _patch_fluxes_3d(cells, vol, M, qf, fid, bkind, draw, gout, vptr, vcell, vlo
 # -- the estimator ----------------------------------------------------------------------
 def estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_start):
     """:func:`galerkit.estimate_error` for P1 on tetrahedra (validated arguments)."""
+    clock = _Clock(t_start)
     disc = solution.disc
     problem = solution.problem
     mesh = disc.mesh
@@ -243,31 +735,34 @@ def estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_sta
     cells = np.ascontiguousarray(mesh.cells)
     X = pts[cells]  # (m, 4, 3)
     vol = np.ascontiguousarray(mesh.cell_volumes, dtype=np.float64)
-    J = np.stack([X[:, i] - X[:, 0] for i in (1, 2, 3)], axis=2)  # columns x_i - x_0
-    Jinv = np.linalg.inv(J)
-    glam = np.empty((m, 4, 3))
-    glam[:, 1:] = Jinv
-    glam[:, 0] = -Jinv.sum(axis=1)
     K = _conductivity_tensor_3d(problem.conductivity, m)
-    kinv = np.ascontiguousarray(np.linalg.inv(K))
-    lam_min = np.linalg.eigvalsh(K)[:, 0]
-    grad_uh = np.einsum("ci,cij->cj", u[cells], glam)
-    flux_h = np.ascontiguousarray(np.einsum("cij,cj->ci", K, grad_uh))
+    kinv = np.empty((m, 3, 3))
+    lam_min = np.empty(m)
+    h = np.empty(m)
+    grad_uh = np.empty((m, 3))
+    flux_h = np.empty((m, 3))
+    stiff = np.empty((m, 4))
+    Mrt = np.empty((m, 4, 4))
+    _cell_data_3d(X, K, np.ascontiguousarray(u[cells]), vol, kinv, lam_min, h, grad_uh, flux_h,
+                  stiff, Mrt)
+    if (K[:, 0, 1] != 0).any() or (K[:, 0, 2] != 0).any() or (K[:, 1, 2] != 0).any():
+        lam_min = np.linalg.eigvalsh(K)[:, 0]
+    del K
     energy_norm = float(np.sqrt(max((vol * (flux_h * grad_uh).sum(axis=1)).sum(), 0.0)))
-    h = cell_diameters(mesh)
+    clock("cells")
 
     fmom, osc, fnorm2, gap = _source_moments_3d(problem.source, disc, X, vol, cells,
                                                 quadrature_degree)
-    stiff = vol[:, None] * np.einsum("ci,cli->cl", flux_h, glam)
+    clock("source")
     draw = np.ascontiguousarray(fmom - stiff)
     # outward flux of K grad u_h through face i: n_i |F_i| = -3 |K| grad l_i
-    qf = np.ascontiguousarray(-3.0 * vol[:, None] * np.einsum("ci,cli->cl", flux_h, glam))
-    Mrt = _rt_mass(X, vol, kinv)
+    qf = -3.0 * stiff
 
     _, fid, _, _ = enumerate_entities(cells, _FACES, mesh.n_vertices)
     fid = np.ascontiguousarray(fid, dtype=np.int64)
     neighbors = _neighbors_from_faces(fid)
     bkind = np.where(neighbors < 0, _FLUX, _INTERIOR).astype(np.int8)
+    clock("topology")
     gout = np.zeros((m, 4, 4))
     bosc = np.zeros(m)
     bres = np.zeros(m)
@@ -311,11 +806,22 @@ def estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_sta
     hF = _face_diameters(FX)
     resq = farea * (((gq - nflux[:, None]) ** 2) * fw[None, :]).sum(axis=1)
     np.add.at(bres, fcell[sel], (hF * resq / lam_min[fcell])[sel])
+    clock("boundary")
 
     vptr, vcell, vloc = _vertex_patches_3d(cells, mesh.n_vertices)
     P = np.zeros((m, 4, 4))
     corr = np.zeros((m, 4))
-    _patch_fluxes_3d(cells, vol, Mrt, qf, fid, bkind, draw, gout, vptr, vcell, vloc, P, corr)
+    flagged = np.zeros(mesh.n_vertices, dtype=np.int8)
+    if _FORCE_MIXED:
+        flagged[:] = 1
+    else:
+        _patch_fluxes_3d(vol, Mrt, qf, fid, neighbors, bkind, draw, gout, vptr, vcell, vloc,
+                         P, corr, flagged)
+    verts = np.flatnonzero(flagged).astype(np.int64)
+    if verts.size:
+        _patch_fluxes_mixed_3d(vol, Mrt, qf, fid, bkind, draw, gout, vptr, vcell, vloc, P,
+                               corr, verts)
+    clock("patches")
     amount = np.ascontiguousarray(corr.sum(axis=1))
     T = np.zeros((m, 4))
     parent = np.empty(m, dtype=np.int64)
@@ -324,6 +830,7 @@ def estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_sta
     unrouted = _route(neighbors, bkind, amount, vol, T, parent, order, n_floating)
     F = P.sum(axis=1) + T
     _check_equilibrium(F, fmom, amount, corr, neighbors, bkind, gout)
+    clock("route")
 
     eta_flux = np.sqrt(np.maximum(_rt_misfit_3d(X, vol, F, flux_h, kinv), 0.0))
     eta_alg = np.sqrt(np.maximum(_rt_misfit_3d(X, vol, T, np.zeros_like(flux_h), kinv), 0.0))
@@ -334,6 +841,7 @@ def estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_sta
     jumps = _flux_jumps_3d(qf, fid, neighbors, lam_min, X)
     res_ind = np.sqrt(h**2 / lam_min * fnorm2 + jumps + bres)
     residual = float(np.sqrt((res_ind**2).sum()))
+    clock("indicators")
 
     scale = float(np.abs(fmom).sum() + np.abs(gout).sum() + np.abs(stiff).sum()) or 1.0
     guaranteed = True
@@ -366,7 +874,9 @@ def estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_sta
         est.error = err
         est.effectivity = bound / err if err > 0 else math.inf
         est.residual_effectivity = residual / err if err > 0 else math.inf
+        clock("exact_error")
     est.seconds = time.perf_counter() - t_start
+    est.phase_seconds = clock.phases
     return est
 
 
@@ -423,30 +933,6 @@ def _source_moments_3d(source, disc, X, vol, cells, degree):
     return fmom, osc, fnorm2, gap
 
 
-def _rt_mass(X, vol, kinv):
-    """``M[c, i, j] = int_c phi_i . K^-1 phi_j`` with ``phi_i = (x - x_i) / (3 |c|)``:
-    exact, from ``int l_k l_l = |c| (1 + delta_kl) / 20`` (Stroud 1971)."""
-    xbar = X.mean(axis=1)
-    D = xbar[:, None, :] - X  # (m, 4, 3): xbar - x_i
-    E = X[:, None, :, :] - X[:, :, None, :]  # E[c, i, k] = x_k - x_i
-    t1 = 16 * np.einsum("cia,cab,cjb->cij", D, kinv, D)
-    t2 = np.einsum("cika,cab,cjkb->cij", E, kinv, E)
-    return np.ascontiguousarray((t1 + t2) / (180.0 * vol[:, None, None]))
-
-
-def _rt_misfit_3d(X, vol, F, flux_h, kinv):
-    """``||K^-1/2 (sigma + flux_h)||_c**2`` for the RT0 field of outward face fluxes F:
-    ``int w.A w = |c|/20 (sum_k w_k.A w_k + (sum_k w_k).A(sum_k w_k))`` for affine w
-    with vertex values w_k (exact simplex integrals, Stroud 1971)."""
-    W = np.zeros_like(X)  # w at the vertices
-    for i in range(4):
-        W += F[:, i, None, None] * (X - X[:, i, None, :]) / (3 * vol[:, None, None])
-    W += flux_h[:, None, :]
-    s = W.sum(axis=1)
-    return vol / 20 * (np.einsum("cka,cab,ckb->c", W, kinv, W)
-                       + np.einsum("ca,cab,cb->c", s, kinv, s))
-
-
 def _neighbors_from_faces(fid):
     m = fid.shape[0]
     flat = fid.ravel()
@@ -471,23 +957,6 @@ def _vertex_patches_3d(cells, n):
 def _face_diameters(FX):
     return np.max([np.linalg.norm(FX[:, i] - FX[:, j], axis=1)
                    for i, j in ((0, 1), (0, 2), (1, 2))], axis=0)
-
-
-def _flux_jumps_3d(qf, fid, neighbors, lam_min, X):
-    """Per cell: sum over interior faces of h_F / (2 lambda_F) ||[K grad u_h . n]||_F**2."""
-    m = qf.shape[0]
-    out = np.zeros(m)
-    for i in range(4):
-        nb_ = neighbors[:, i]
-        inner = np.flatnonzero(nb_ >= 0)
-        other = nb_[inner]
-        back = np.argmax(fid[other] == fid[inner, i][:, None], axis=1)
-        FX = X[inner][:, _FACES[i]]
-        area = 0.5 * np.linalg.norm(np.cross(FX[:, 1] - FX[:, 0], FX[:, 2] - FX[:, 0]), axis=1)
-        jump = (qf[inner, i] + qf[other, back]) / area  # outward fluxes of both sides
-        lamF = np.maximum(lam_min[inner], lam_min[other])
-        out[inner] += _face_diameters(FX) * area * jump**2 / (2 * lamF)
-    return out
 
 
 def _facet_values_3d(value, ids, xq, name):
