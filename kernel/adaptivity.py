@@ -193,9 +193,10 @@ def adapt(problem, degree=1, tol=None, *, relative_tol=None, max_dofs=200_000, b
             or degree not in (1, 2, 3, 4):
         raise InputError(f"adapt: degree must be 1, 2, 3 or 4, got {degree!r}")
     if degree != 1 and problem.mesh.dim == 3:
-        raise UnsupportedError(f"adapt: degree {degree!r} on tetrahedra: the error bound there "
-                               "is implemented for P1 only; use degree=1 (P2-P4 adapt on "
-                               "triangles)")
+        raise UnsupportedError(f"adapt: degree {degree!r} on tetrahedra: the adaptive loop on "
+                               "tetrahedra is implemented for P1 only (estimate_error gives "
+                               "the P2-P4 bound of one solve there); use degree=1 (P2-P4 "
+                               "adapt on triangles)")
     degree = int(degree)
     for name, v, lo in (("bulk", bulk, 0.0), ("tol", tol, 0.0), ("relative_tol", relative_tol, 0.0)):
         if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))

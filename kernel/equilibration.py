@@ -445,34 +445,48 @@ def _source_at(source, disc, cells, pts, xi, Vq):
             and np.shape(source) == (disc.n_dofs,):
         return np.ascontiguousarray(np.asarray(source, dtype=np.float64)[disc.cell_dofs] @ Vq.T)
     lam = np.column_stack([1 - xi.sum(axis=1), xi])
+    dim = xi.shape[1]
 
     def points():
         X = pts[cells]
-        return np.einsum("ql,clj->jcq", lam, X).reshape(2, -1)
+        return np.matmul(lam, X).transpose(2, 0, 1).reshape(dim, -1)
 
     fv = scalar_values(source, m, "source", points=points, point_shape=(m, nq))
     fv = np.asarray(fv, dtype=np.float64)
     return np.ascontiguousarray(np.broadcast_to(fv.reshape(fv.shape[0], -1), (m, nq)))
 
 
+def _monomials_nd(k, dim):
+    """Exponent tuples of the monomials of degree <= k in ``dim`` variables, graded,
+    each degree in decreasing lexicographic order (``_monomials`` for dim = 2)."""
+    def exact(d, n):
+        if n == 1:
+            return [(d,)]
+        return [(a,) + rest for a in range(d, -1, -1) for rest in exact(d - a, n - 1)]
+    return [t for d in range(k + 1) for t in exact(d, dim)]
+
+
 def _hessian_table(el, xi):
-    """Exact reference Hessians of the basis at xi: (nq, nloc, 2, 2), from the
-    gradients fitted by monomials of degree k-1 (exact: they are such polynomials)."""
+    """Exact reference Hessians of the basis at xi: (nq, nloc, d, d), from the
+    gradients fitted by monomials of degree k-1 (exact: they are such polynomials);
+    triangles and tetrahedra."""
     k = el.degree
-    probe = simplex_quadrature(2, 2 * k).points
-    dphi = el.tabulate_gradients(probe)  # (np, nloc, 2)
-    mons = _monomials(k - 1)
-    A = np.array([probe[:, 0] ** a * probe[:, 1] ** b for a, b in mons]).T  # (np, nm)
+    dim = xi.shape[1]
+    probe = simplex_quadrature(dim, 2 * k).points
+    dphi = el.tabulate_gradients(probe)  # (np, nloc, d)
+    mons = _monomials_nd(k - 1, dim)
+    A = np.array([np.prod([probe[:, r] ** e[r] for r in range(dim)], axis=0)
+                  for e in mons]).T  # (np, nm)
     coef = np.linalg.lstsq(A, dphi.reshape(probe.shape[0], -1), rcond=None)[0]
-    coef = coef.reshape(len(mons), el.n_local, 2)  # d phi / d x_r as sum of monomials
-    H = np.zeros((xi.shape[0], el.n_local, 2, 2))
-    x, y = xi[:, 0], xi[:, 1]
-    for mi, (a, b) in enumerate(mons):
-        dx = a * x ** max(a - 1, 0) * y**b if a else np.zeros_like(x)
-        dy = b * x**a * y ** max(b - 1, 0) if b else np.zeros_like(x)
-        for r in range(2):
-            H[:, :, r, 0] += dx[:, None] * coef[mi, :, r][None, :]
-            H[:, :, r, 1] += dy[:, None] * coef[mi, :, r][None, :]
+    coef = coef.reshape(len(mons), el.n_local, dim)  # d phi / d x_r as sum of monomials
+    H = np.zeros((xi.shape[0], el.n_local, dim, dim))
+    for mi, e in enumerate(mons):
+        for t in range(dim):
+            if e[t] == 0:
+                continue
+            d = e[t] * np.prod([xi[:, r] ** (e[r] - (r == t)) for r in range(dim)], axis=0)
+            for r in range(dim):
+                H[:, :, r, t] += d[:, None] * coef[mi, :, r][None, :]
     return H
 
 
@@ -687,11 +701,11 @@ def estimate_error_pk(solution, u, quadrature_degree, clock, helpers):
 
 
 def _normal_flux(uloc, dphi_e, Jinv, Kt, nrm):
-    """``K grad u_h . n`` at the points of an edge: dphi_e (ng, nloc, 2) reference
-    gradients there, nrm (m, 2) the unit normals; returns (m, ng)."""
+    """``K grad u_h . n`` at the points of an edge (a face): dphi_e (ng, nloc, d)
+    reference gradients there, nrm (m, d) the unit normals; returns (m, ng)."""
     m, nloc = uloc.shape
     ng = dphi_e.shape[0]
-    gr = (uloc @ dphi_e.transpose(1, 0, 2).reshape(nloc, -1)).reshape(m, ng, 2)
+    gr = (uloc @ dphi_e.transpose(1, 0, 2).reshape(nloc, -1)).reshape(m, ng, dphi_e.shape[2])
     gx = gr @ Jinv  # grad u_h = J^-T grad_ref u_h
     kn = (Kt.transpose(0, 2, 1) @ nrm[:, :, None])[:, :, 0]  # K^T n
     return (gx * kn[:, None, :]).sum(axis=2)
@@ -703,7 +717,7 @@ def _quadrature_gap(source, disc, cells, pts, xi, w, detJ, fv, degree, k):
     if not (callable(source) or (isinstance(source, RegionCoefficient) and source.has_callable)):
         return 0.0
     d2 = min(20, max(degree + k + 1, 2 * k + 2) + 2)
-    rule2 = simplex_quadrature(2, d2)
+    rule2 = simplex_quadrature(xi.shape[1], d2)
     fv2 = _source_at(source, disc, cells, pts, rule2.points, disc.element.tabulate(rule2.points))
     i1 = detJ * (fv @ w)
     i2 = detJ * (fv2 @ rule2.weights)

@@ -83,8 +83,13 @@ P2-P4 on triangles: the same bound with a flux of degree k, sigma_h in RT_k
 residual estimator has the element residual ``f + div(K grad u_h)``; the same
 routing of the algebraic residual, the same notes and the same conditions.
 
-Other cases (P2-P4 on tetrahedra, conductivity varying inside cells, Dirichlet
-data outside the discrete space) raise :class:`~galerkit.errors.UnsupportedError`.
+P2-P4 on tetrahedra: the same bound again, RT_k fluxes on tetrahedra
+(:mod:`galerkit.equilibration3d`: face moments in the face coordinates ordered by
+the global vertex numbers, patch problems condensed onto the faces shared inside
+each patch), with the 3D trace constant, under the same conditions.
+
+Other cases (conductivity varying inside cells, Dirichlet data outside the
+discrete space) raise :class:`~galerkit.errors.UnsupportedError`.
 """
 
 from __future__ import annotations
@@ -683,7 +688,7 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10,
     Parameters
     ----------
     solution : Solution
-        From :meth:`PoissonProblem.solve` (P1-P4 on triangles, P1 on tetrahedra).
+        From :meth:`PoissonProblem.solve` (P1-P4 on triangles and tetrahedra).
     exact_gradient : callable, optional
         ``exact_gradient(x)`` with x (d, n) -> (d, n); then ``error`` and
         ``effectivity`` (bound / error) are filled in.
@@ -704,7 +709,7 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10,
     Raises
     ------
     UnsupportedError
-        Degree above 1 on tetrahedra, a conductivity given as a callable
+        A conductivity given as a callable
         (varying inside cells), Dirichlet data not a polynomial of the
         solution's degree along a Dirichlet facet (not affine for P1).
     InputError
@@ -740,11 +745,6 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10,
         raise InputError(f"estimate_error: expected a Solution (from PoissonProblem.solve), got "
                          f"{type(solution).__name__}")
     mesh = disc.mesh
-    if disc.degree != 1 and mesh.dim == 3:
-        raise UnsupportedError(
-            f"estimate_error: the bound is implemented for P1 only on tetrahedra, this "
-            f"solution is P{disc.degree}; solve with degree=1 to get a bound (P2-P4 are "
-            "covered on triangles)")
     if isinstance(quadrature_degree, bool) or not isinstance(quadrature_degree, (int, np.integer)) \
             or not 2 <= quadrature_degree <= 20:
         raise InputError(f"estimate_error: quadrature_degree must be an integer in 2..20, got "
@@ -765,16 +765,20 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10,
     if minimise_flux and mesh.dim == 3:
         raise UnsupportedError("estimate_error: minimise_flux is implemented on triangles only; "
                                "leave it False on tetrahedra")
-    if mesh.dim == 3:
+    if mesh.dim == 3 and disc.degree == 1:
         from .estimators3d import estimate_error_tetrahedra
         return estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_start)
     clock = _Clock(t_start)
     if disc.degree > 1:
-        from .equilibration import estimate_error_pk
         helpers = {"conductivity_arrays": _conductivity_arrays, "cell_diameters": cell_diameters,
                    "patches": _patches, "cell_neighbors": _cell_neighbors, "route": _route,
                    "facet_values": _facet_values}
-        r = estimate_error_pk(solution, u, quadrature_degree, clock, helpers)
+        if mesh.dim == 3:
+            from .equilibration3d import estimate_error_pk_tetrahedra
+            r = estimate_error_pk_tetrahedra(solution, u, quadrature_degree, clock, helpers)
+        else:
+            from .equilibration import estimate_error_pk
+            r = estimate_error_pk(solution, u, quadrature_degree, clock, helpers)
         clock("indicators")
         if minimise_flux:
             from .flux_minimisation import minimise_flux_term
@@ -901,8 +905,8 @@ def estimate_error(solution, *, exact_gradient=None, quadrature_degree=10,
 
 def _close(eta, res_ind, flux2, alg2, osc, bosc, energy_norm, unrouted, n_floating, scale, gap,
            problem, disc, u, kappa, exact_gradient, quadrature_degree, clock, t_start):
-    """The closing step shared by P1 and P_k on triangles: the bound from the cell
-    indicators, the notes on unrouted residuals and quadrature, the exact error."""
+    """The closing step shared by P1 and P_k (P_k also on tetrahedra): the bound from the
+    cell indicators, the notes on unrouted residuals and quadrature, the exact error."""
     notes = []
     bound = float(np.sqrt((eta**2).sum()))
     residual = float(np.sqrt((res_ind**2).sum()))

@@ -81,6 +81,15 @@ PKMIXED = f"{_PK}bound_is_above_the_error_of_a_mixed_condition_problem"
 PKLOOSE = f"{_PK}bound_survives_a_loose_iterative_solve"
 PKRES = f"{_PK}residual_estimator_has_the_element_laplacian"
 PKPATCH = f"{_PK}patch_test_polynomial_solution_gives_a_zero_bound"
+_P3 = "tests/test_estimators_pk3d.py::test_pk3d_"
+P3OSC = f"{_P3}oscillation_term_equals_its_closed_form"
+P3BDATA = f"{_P3}boundary_data_term_equals_its_closed_form"
+P3PATCH = f"{_P3}patch_test_polynomial_solution_gives_a_zero_bound[2]"
+P3LOOSE = f"{_P3}bound_survives_a_loose_iterative_solve"
+P3RT = f"{_P3}rt_reference_tables_equal_exact_sympy_moments_and_are_unisolvent[2]"
+P3SMOOTH = f"{_P3}bound_is_above_the_error_of_a_smooth_solution_with_effectivity_below_1_5[2-sizes0]"
+P3MIXED = f"{_P3}bound_is_above_the_error_of_a_mixed_condition_problem[False]"
+P3NUMBER = f"{_P3}bound_does_not_depend_on_the_vertex_numbering"
 PKJUMP = f"{_PK}residual_estimator_flux_jump_weight_equals_its_closed_form"
 PKMIN = f"{_PK}minimised_flux_stays_above_the_error_and_below_the_patch_flux"
 FLUX_WALL = "tests/test_fluxes.py::test_composite_wall_flux_equals_the_series_resistance_formula[2]"
@@ -283,6 +292,33 @@ MUTANTS = [
     ("P_k error bound: patch energy in the K norm instead of K^-1", "equilibration.py",
      "G = np.ascontiguousarray(J.transpose(0, 2, 1) @ Kinv @ J)",
      "G = np.ascontiguousarray(J.transpose(0, 2, 1) @ Kt @ J)", PKMIXED),
+    ("P_k 3D bound: every face moment table of the identity vertex order (global face "
+     "coordinates ignored)", "equilibration3d.py",
+     "Ve, _ = _rt_values_3d(k, _face_points(i, p, bary))",
+     "Ve, _ = _rt_values_3d(k, _face_points(i, 0, bary))", P3SMOOTH),
+    ("P_k 3D reference basis: divergence of x p with k + 2 for k + 3", "equilibration3d.py",
+     "divs.append((k + 3) * p)", "divs.append((k + 2) * p)", P3RT),
+    ("P_k 3D bound: Poincare constant h/(2 pi) instead of h/pi", "equilibration3d.py",
+     "eo = h / math.pi * osc", "eo = h / (2 * math.pi) * osc", P3OSC),
+    ("P_k 3D bound: trace constant without its 2/(3 pi) part", "equilibration3d.py",
+     "(1 / math.pi**2 + 2 / (3 * math.pi))", "(1 / math.pi**2)", P3BDATA),
+    ("P_k 3D bound: routed residual flux dropped", "equilibration3d.py",
+     "uloc, dphi_e, we, tau_e, X, T, ref", "uloc, dphi_e, we, tau_e, X, 0 * T, ref", P3LOOSE),
+    ("P_k 3D bound: patch residual not taken out of the divergence rows", "equilibration3d.py",
+     "r[u] = tgt[c, la, j] - cr[p] * qint[j] / qint[0]", "r[u] = tgt[c, la, j]", P3LOOSE),
+    ("P_k 3D bound: stiffness part of the patch divergence with its sign flipped",
+     "equilibration3d.py", "tgt = np.ascontiguousarray(t1 - t2)",
+     "tgt = np.ascontiguousarray(t1 + t2)", P3SMOOTH),
+    ("P_k 3D bound: Neumann moments with their sign flipped", "equilibration3d.py",
+     "mom = -farea[:, None, None]", "mom = farea[:, None, None]", P3MIXED),
+    ("P_k 3D residual estimator: element Laplacian dropped", "equilibration3d.py",
+     "elres = fv + (Hu @ Hm", "elres = fv + 0 * (Hu @ Hm", P3PATCH),
+    ("P_k 3D bound: private rows of a cell not eliminated (Schur update dropped)",
+     "equilibration3d.py", "                            s_ -= Sp[u, npr + t1] * AB[p, u, t2]\n",
+     "                            s_ -= 0.0 * Sp[u, npr + t1] * AB[p, u, t2]\n", P3PATCH),
+    ("P_k 3D bound: cell blocks of a batch looked up in reverse order", "equilibration3d.py",
+     "slot[cells] = np.arange(cells.size)", "slot[cells] = np.arange(cells.size)[::-1]",
+     P3PATCH),
     ("multigrid Galerkin product scaled (coarse operator 1.5 P^T A P)", "multigrid.py",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n",
      "        c_ptr, c_ind, c_val = spgemm(*lv.R, *AP, n_next)\n        c_val = 1.5 * c_val\n"),
@@ -350,6 +386,7 @@ SELECTION = [
     EOSC, EPATCH, ERES, ELOOSE, ESMOOTH, EMARK, EBIS, EBIS3, EANG3,
     E3OSC, E3PATCH, E3RES, E3LOOSE, E3RT, E3NULL,
     PKOSC, PKRES, PKPATCH, PKLOOSE, PKSMOOTH, PKMIXED, PKJUMP, PKMIN,
+    P3RT, P3OSC, P3BDATA, P3PATCH, P3LOOSE, P3SMOOTH, P3MIXED, P3NUMBER,
 ]
 
 

@@ -521,7 +521,7 @@ def _solve(args) -> int:
     from galerkit.errors import InputError
     from ..files import write_solution
     from ..files.plots import plot_field, plot_mesh, plot_slices
-    from .problemfile import BOUND_AUTO_TETRAHEDRA, load_problem
+    from .problemfile import BOUND_AUTO_TETRAHEDRA, BOUND_AUTO_TETRAHEDRA_PK, load_problem
     from .quantities import (bound_line, error_bound, quantity_lines, solution_quantities,
                              write_probes_csv)
 
@@ -574,11 +574,13 @@ def _solve(args) -> int:
             est, bound = None, {"available": False,
                                 "reason": "not computed ([output] error_bound = false)"}
         elif (rep.converged and opts.error_bound == "auto" and sol.mesh.dim == 3
-              and sol.mesh.n_cells > BOUND_AUTO_TETRAHEDRA):
+              and sol.mesh.n_cells > (limit := BOUND_AUTO_TETRAHEDRA if sol.disc.degree == 1
+                                      else BOUND_AUTO_TETRAHEDRA_PK)):
             est, bound = None, {"available": False, "reason": (
                 f"not computed for {sol.mesh.n_cells:,} tetrahedra by default (above "
-                f"{BOUND_AUTO_TETRAHEDRA:,} it costs more than the solve); set [output] "
-                "error_bound = true to compute it")}
+                f"{limit:,} it costs more than the solve"
+                f"{'' if sol.disc.degree == 1 else f' for P{sol.disc.degree}'}); set "
+                "[output] error_bound = true to compute it")}
         elif rep.converged:
             try:
                 est, bound = error_bound(sol, None, energy)

@@ -129,6 +129,9 @@ GENERATORS = {"square": (2, 16), "box": (3, 8), "l-shape": (2, 8)}
 #: mesh up to this many cells: the 3D patch problems cost about 20 us per cell on
 #: the reference machine (4 s for 162,000 tetrahedra against a 0.2 s solve).
 BOUND_AUTO_TETRAHEDRA = 100_000
+#: the same for P2-P4 on tetrahedra: the RT_k patch problems cost about 0.5 ms per
+#: cell for P2 (2.1 s for 3,072 tetrahedra against a 0.1-0.5 s solve), more for P3-P4
+BOUND_AUTO_TETRAHEDRA_PK = 5_000
 
 
 # ----------------------------------------------------------------------------
@@ -186,8 +189,9 @@ class RunOptions:
         Contour lines on the 2D picture (0: none).
     error_bound : str
         ``"auto"`` (the default: the bound of every solve the estimator covers,
-        on tetrahedral meshes up to :data:`BOUND_AUTO_TETRAHEDRA` cells, where
-        it costs more than the solve), ``"on"`` or ``"off"``.
+        on tetrahedral meshes up to :data:`BOUND_AUTO_TETRAHEDRA` cells for P1 and
+        :data:`BOUND_AUTO_TETRAHEDRA_PK` for P2-P4, where it costs more than the
+        solve), ``"on"`` or ``"off"``.
     adapt : dict or None
         The ``[adapt]`` section as keyword arguments of :func:`galerkit.adapt`
         (``tol``, ``relative_tol``, ``max_dofs``, ``max_levels``, ``bulk``);
@@ -928,7 +932,8 @@ def _output_section(r: _Reader, t, opts: RunOptions, base: Path, mesh=None):
             r.fail(("output", "error_bound"), f"must be true, false or \"auto\", got "
                    f"{_type_word(v) if not isinstance(v, str) else repr(v)}",
                    "true computes the bound whatever the mesh size, false never, \"auto\" "
-                   f"(the default) up to {BOUND_AUTO_TETRAHEDRA} tetrahedra")
+                   f"(the default) up to {BOUND_AUTO_TETRAHEDRA} tetrahedra for P1, "
+                   f"{BOUND_AUTO_TETRAHEDRA_PK} for P2-P4")
 
 
 def _output_quantities(r: _Reader, t, opts: RunOptions, mesh):
@@ -1056,8 +1061,9 @@ def _adapt_section(r: _Reader, t, opts: RunOptions, mesh, conductivity):
                    "the fraction of the squared error bound the marked cells carry, for "
                    "example bulk = 0.5")
     if opts.degree != 1 and mesh is not None and mesh.dim == 3:
-        r.fail(("adapt",), f"adaptive refinement on tetrahedra runs on P1 (the error bound "
-               f"there is P1 only); discretization.degree is {opts.degree}",
+        r.fail(("adapt",), f"adaptive refinement on tetrahedra runs on P1 (the P2-P4 error "
+               f"bound there is given per solve, not adapted on); discretization.degree is "
+               f"{opts.degree}",
                "remove discretization.degree or set it to 1 (P2-P4 adapt on triangles)")
     values = conductivity.values() if isinstance(conductivity, dict) else (conductivity,)
     for v in values:
