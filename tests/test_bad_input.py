@@ -415,12 +415,12 @@ def small_solution():
 
 
 def _write_part_then_fail(error):
-    import meshio
+    from galerkit.bindings.files import readwrite
 
-    real = meshio.write
+    real = readwrite.write_vtu
 
-    def failing(path, mesh, *args, **kwargs):
-        real(path, mesh, *args, **kwargs)
+    def failing(path, *args, **kwargs):
+        real(path, *args, **kwargs)
         data = Path(path).read_bytes()
         Path(path).write_bytes(data[: len(data) // 3])  # a third of the file, then failure
         raise error
@@ -434,12 +434,12 @@ def _write_part_then_fail(error):
 def test_failed_write_keeps_the_old_file_and_leaves_no_temporary(tmp_path, monkeypatch,
                                                                  small_solution, error, raised):
     import meshio
-    from galerkit.bindings.files import write_solution
+    from galerkit.bindings.files import readwrite, write_solution
 
     target = tmp_path / "u.vtu"
     write_solution(target, small_solution)
     good = target.read_bytes()
-    monkeypatch.setattr(meshio, "write", _write_part_then_fail(error))
+    monkeypatch.setattr(readwrite, "write_vtu", _write_part_then_fail(error))
     with pytest.raises(raised):
         write_solution(target, small_solution, name="other")
     assert target.read_bytes() == good
@@ -450,10 +450,9 @@ def test_failed_write_keeps_the_old_file_and_leaves_no_temporary(tmp_path, monke
 
 
 def test_failed_first_write_leaves_no_file_at_all(tmp_path, monkeypatch, small_solution):
-    import meshio
-    from galerkit.bindings.files import write_solution
+    from galerkit.bindings.files import readwrite, write_solution
 
-    monkeypatch.setattr(meshio, "write", _write_part_then_fail(OSError(5, "I/O error")))
+    monkeypatch.setattr(readwrite, "write_vtu", _write_part_then_fail(OSError(5, "I/O error")))
     with pytest.raises(InputError, match="cannot write"):
         write_solution(tmp_path / "new.vtu", small_solution)
     assert list(tmp_path.iterdir()) == []
