@@ -56,6 +56,13 @@ $(MPI_STAMP): $(STAMP)
 	$(PY) -m pip install --no-build-isolation petsc==$(PETSC_VER)
 	PETSC_DIR=$$($(PY) -c "import petsc; print(petsc.get_petsc_dir())") \
 	  $(PY) -m pip install --no-build-isolation petsc4py==$(PETSC_VER)
+	# a petsc4py wheel from pip's cache names the absolute PETSc folder of the venv
+	# it was first built in; point it at this venv's PETSc, then check it loads
+	SO=$$(find $(VENV) -path '*/petsc4py/lib/PETSc*.so' | head -n 1) && \
+	  patchelf --set-rpath '$$ORIGIN/../../petsc/lib' "$$SO" && \
+	  sed -i "s|^PETSC_DIR *=.*|PETSC_DIR  = $$($(PY) -c 'import petsc; print(petsc.get_petsc_dir())')|" \
+	    "$$(dirname "$$SO")/petsc.cfg"
+	$(PY) -c "import petsc4py; petsc4py.init([]); from petsc4py import PETSc; PETSc.Sys.getVersion()"
 	$(PY) -m pip install --quiet --no-build-isolation -e ".[test,bench,mpi,mpi-test]"
 	touch $(MPI_STAMP)
 
