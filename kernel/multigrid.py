@@ -482,15 +482,26 @@ def _pcg_vcycle(m_ptr, m_ind, m_val, a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_
     rnorm = math.sqrt(dot(r, r))
     history[0] = rnorm / bnorm
     nh = 1
-    _vcycle(a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_val, r_ptr, r_ind, r_val,
-            xs, bs, rs, ds, lower, degree, chol, r, z)
-    rz = dot(r, z)
-    _copy_into(z, p)
     k = 0
     restarts = 0
     status = 0
     true_checked = False
+    # one call site of the V-cycle (each site is compiled into this kernel anew):
+    # direction 1 restarts the search direction (p = z), 2 updates it
+    # (p = z + beta p), 0 applies no preconditioner this pass
+    direction = 1
+    rz = 1.0  # set by the first pass (direction 1)
     while True:
+        if direction != 0:
+            _vcycle(a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_val, r_ptr, r_ind, r_val,
+                    xs, bs, rs, ds, lower, degree, chol, r, z)
+            rz_new = dot(r, z)
+            if direction == 1:
+                _copy_into(z, p)
+            else:
+                xpby_into(z, rz_new / rz, p)
+            rz = rz_new
+            direction = 0
         if rnorm <= target:
             residual_into(m_ptr, m_ind, m_val, x, b, q)
             tnorm = math.sqrt(dot(q, q))
@@ -501,10 +512,8 @@ def _pcg_vcycle(m_ptr, m_ind, m_val, a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_
             restarts += 1
             _copy_into(q, r)
             rnorm = tnorm
-            _vcycle(a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_val, r_ptr, r_ind, r_val,
-                    xs, bs, rs, ds, lower, degree, chol, r, z)
-            rz = dot(r, z)
-            _copy_into(z, p)
+            direction = 1
+            continue
         if k >= maxiter:
             break
         if not rz > 0.0:
@@ -521,14 +530,8 @@ def _pcg_vcycle(m_ptr, m_ind, m_val, a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_
         true_checked = False
         history[nh] = rnorm / bnorm
         nh += 1
-        if rnorm <= target:
-            continue
-        _vcycle(a_ptr, a_ind, a_val, dinv, p_ptr, p_ind, p_val, r_ptr, r_ind, r_val,
-                xs, bs, rs, ds, lower, degree, chol, r, z)
-        rz_new = dot(r, z)
-        beta = rz_new / rz
-        rz = rz_new
-        xpby_into(z, beta, p)
+        if rnorm > target:
+            direction = 2
     if not true_checked:
         residual_into(m_ptr, m_ind, m_val, x, b, q)
         history[nh - 1] = math.sqrt(dot(q, q)) / bnorm
