@@ -56,7 +56,7 @@ import numpy as np
 from .coefficients import evaluate_callable, scalar_values, tensor_values
 from .errors import InputError, UnsupportedError
 from .estimators import (ErrorEstimate, _Clock, _DIRICHLET, _FLUX, _INTERIOR,
-                         _check_equilibrium, _route)
+                         _route)
 from .regions import RegionCoefficient
 from .quadrature import simplex_quadrature
 from .topology import enumerate_entities
@@ -139,13 +139,15 @@ def _rt_mass(X, vol, kinv):
 def _rt_misfit_cell(X, vol, F, q, A, W):
     """``||A^1/2 (sigma + q)||_c**2`` for the RT0 field of outward face fluxes F:
     ``int w.A w = |c|/20 (sum_k w_k.A w_k + (sum_k w_k).A(sum_k w_k))`` for affine w
-    with vertex values w_k (exact simplex integrals, Stroud 1971); ``W`` (4, 3) work."""
-    for k in range(4):
-        for a in range(3):
-            s = q[a]
-            for i in range(4):
-                s += F[i] * (X[k, a] - X[i, a]) / (3.0 * vol)
-            W[k, a] = s
+    with vertex values w_k (exact simplex integrals, Stroud 1971); ``W`` (4, 3) work.
+    ``sigma(x_k) = sum_i F_i (x_k - x_i) / (3 |c|) = (S x_k - G) / (3 |c|)`` with
+    ``S = sum_i F_i`` and ``G = sum_i F_i x_i``."""
+    S = F[0] + F[1] + F[2] + F[3]
+    r = 1.0 / (3.0 * vol)
+    for a in range(3):
+        G = F[0] * X[0, a] + F[1] * X[1, a] + F[2] * X[2, a] + F[3] * X[3, a]
+        for k in range(4):
+            W[k, a] = q[a] + (S * X[k, a] - G) * r
     acc = 0.0
     for k in range(5):
         for a in range(3):
@@ -222,44 +224,99 @@ def _cell_data_3d(X, K, ucell, vol, kinv, lam_min, h, grad_uh, flux_h, stiff, M)
 
 
 @nb.njit(cache=True, parallel=True)
-def _flux_jumps_3d(qf, fid, neighbors, lam_min, X):
-    """Per cell: sum over interior faces of h_F / (2 lambda_F) ||[K grad u_h . n]||_F**2."""
-    m = qf.shape[0]
-    out = np.zeros(m)
-    for c in nb.prange(m):
-        acc = 0.0
-        for i in range(4):
-            o = neighbors[c, i]
-            if o < 0:
-                continue
-            back = 0
-            for t in range(4):
-                if fid[o, t] == fid[c, i]:
-                    back = t
-                    break
-            v0, v1, v2 = (1, 2, 3) if i == 0 else ((0, 2, 3) if i == 1 else
-                                                   ((0, 1, 3) if i == 2 else (0, 1, 2)))
-            ax = X[c, v1, 0] - X[c, v0, 0]
-            ay = X[c, v1, 1] - X[c, v0, 1]
-            az = X[c, v1, 2] - X[c, v0, 2]
-            bx = X[c, v2, 0] - X[c, v0, 0]
-            by = X[c, v2, 1] - X[c, v0, 1]
-            bz = X[c, v2, 2] - X[c, v0, 2]
-            ex = X[c, v2, 0] - X[c, v1, 0]
-            ey = X[c, v2, 1] - X[c, v1, 1]
-            ez = X[c, v2, 2] - X[c, v1, 2]
-            cx = ay * bz - az * by
-            cy = az * bx - ax * bz
-            cz = ax * by - ay * bx
-            area = 0.5 * math.sqrt(cx * cx + cy * cy + cz * cz)
-            hF = max(math.sqrt(ax * ax + ay * ay + az * az),
-                     max(math.sqrt(bx * bx + by * by + bz * bz),
-                         math.sqrt(ex * ex + ey * ey + ez * ez)))
-            jump = (qf[c, i] + qf[o, back]) / area  # outward fluxes of both sides
-            lamF = max(lam_min[c], lam_min[o])
-            acc += hF * area * jump**2 / (2 * lamF)
-        out[c] = acc
-    return out
+def _cell_terms_3d(X, vol, kinv, flux_h, qf, P, T, fid, neighbors, lam_min, hcell, osc,
+                   fnorm2, bosc, bres, fmom, corr, amount, bkind, gout, eta, res_ind, sums,
+                   dev, where):
+    """Per cell, from the patch fluxes ``P`` and the routed flux ``T`` (outward face
+    fluxes; the equilibrated flux is ``F = sum_l P[c, l] + T[c]``): the indicator
+    ``eta`` and the residual indicator ``res_ind``, whose jumps are
+    ``h_F / (2 lambda_F) ||[K grad u_h . n]||_F**2`` over the interior faces (``qf``:
+    outward fluxes of ``K grad u_h``).  Per block ``b`` of ``_CELL_CHUNK`` cells:
+    ``sums[b] = (flux**2, algebraic**2, oscillation**2)`` summed over its cells, and
+    the checks of the flux, ``dev[b] = (divergence miss, flux jump across a face,
+    miss of the boundary data, |F| and |fmom|)`` at their largest, ``where[b, j]`` the cell of
+    ``dev[b, j]`` (for the jump ``4 * cell + face``)."""
+    m = X.shape[0]
+    for b in nb.prange((m + _CELL_CHUNK - 1) // _CELL_CHUNK):
+        s_f = 0.0
+        s_a = 0.0
+        s_o = 0.0
+        for j in range(4):
+            dev[b, j] = 0.0
+            where[b, j] = -1
+        W = np.empty((4, 3))
+        F = np.empty(4)
+        Tc = np.empty(4)
+        zero = np.zeros(3)
+        for c in range(b * _CELL_CHUNK, min(m, (b + 1) * _CELL_CHUNK)):
+            for i in range(4):
+                F[i] = P[c, 0, i] + P[c, 1, i] + P[c, 2, i] + P[c, 3, i] + T[c, i]
+                Tc[i] = T[c, i]
+            ef2 = max(_rt_misfit_cell(X[c], vol[c], F, flux_h[c], kinv[c], W), 0.0)
+            ea2 = max(_rt_misfit_cell(X[c], vol[c], Tc, zero, kinv[c], W), 0.0)
+            lam = lam_min[c]
+            eo = hcell[c] / math.pi * osc[c] / math.sqrt(lam)
+            eta[c] = math.sqrt(ef2) + eo + bosc[c]
+            acc = 0.0
+            jmax = 0.0
+            jface = 4 * c
+            miss = 0.0
+            for i in range(4):
+                o = neighbors[c, i]
+                if o < 0:
+                    if bkind[c, i] == _FLUX:
+                        miss = max(miss, abs(F[i] - (gout[c, i, 0] + gout[c, i, 1]
+                                                     + gout[c, i, 2] + gout[c, i, 3])))
+                    continue
+                back = 0
+                for t in range(4):
+                    if fid[o, t] == fid[c, i]:
+                        back = t
+                        break
+                Fo = P[o, 0, back] + P[o, 1, back] + P[o, 2, back] + P[o, 3, back] + T[o, back]
+                if abs(F[i] + Fo) > jmax:
+                    jmax = abs(F[i] + Fo)
+                    jface = 4 * c + i
+                v0, v1, v2 = (1, 2, 3) if i == 0 else ((0, 2, 3) if i == 1 else
+                                                       ((0, 1, 3) if i == 2 else (0, 1, 2)))
+                ax = X[c, v1, 0] - X[c, v0, 0]
+                ay = X[c, v1, 1] - X[c, v0, 1]
+                az = X[c, v1, 2] - X[c, v0, 2]
+                bx = X[c, v2, 0] - X[c, v0, 0]
+                by = X[c, v2, 1] - X[c, v0, 1]
+                bz = X[c, v2, 2] - X[c, v0, 2]
+                ex = X[c, v2, 0] - X[c, v1, 0]
+                ey = X[c, v2, 1] - X[c, v1, 1]
+                ez = X[c, v2, 2] - X[c, v1, 2]
+                cx = ay * bz - az * by
+                cy = az * bx - ax * bz
+                cz = ax * by - ay * bx
+                area = 0.5 * math.sqrt(cx * cx + cy * cy + cz * cz)
+                hF = max(math.sqrt(ax * ax + ay * ay + az * az),
+                         max(math.sqrt(bx * bx + by * by + bz * bz),
+                             math.sqrt(ex * ex + ey * ey + ez * ez)))
+                jump = (qf[c, i] + qf[o, back]) / area  # outward fluxes of both sides
+                lamF = max(lam, lam_min[o])
+                acc += hF * area * jump**2 / (2 * lamF)
+            s_f += ef2
+            s_a += ea2
+            s_o += eo * eo
+            res_ind[c] = math.sqrt(hcell[c] ** 2 / lam * fnorm2[c] + acc + bres[c])
+            div = abs(F[0] + F[1] + F[2] + F[3]
+                      - (fmom[c, 0] + fmom[c, 1] + fmom[c, 2] + fmom[c, 3]
+                         - (corr[c, 0] + corr[c, 1] + corr[c, 2] + corr[c, 3])
+                         + amount[c]))
+            fmax = max(max(abs(F[0]), abs(F[1])), max(abs(F[2]), abs(F[3])))
+            for i in range(4):
+                fmax = max(fmax, abs(fmom[c, i]))
+            for j in range(4):
+                d = div if j == 0 else (jmax if j == 1 else (miss if j == 2 else fmax))
+                if d > dev[b, j]:
+                    dev[b, j] = d
+                    where[b, j] = jface if j == 1 else c
+        sums[b, 0] = s_f
+        sums[b, 1] = s_a
+        sums[b, 2] = s_o
 
 
 @nb.njit(cache=True)
@@ -828,19 +885,21 @@ def estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_sta
     order = np.empty(m, dtype=np.int64)
     n_floating = np.zeros(1, dtype=np.int64)
     unrouted = _route(neighbors, bkind, amount, vol, T, parent, order, n_floating)
-    F = P.sum(axis=1) + T
-    _check_equilibrium(F, fmom, amount, corr, neighbors, bkind, gout)
+    del parent, order
     clock("route")
 
-    eta_flux = np.sqrt(np.maximum(_rt_misfit_3d(X, vol, F, flux_h, kinv), 0.0))
-    eta_alg = np.sqrt(np.maximum(_rt_misfit_3d(X, vol, T, np.zeros_like(flux_h), kinv), 0.0))
-    eta_osc = h / math.pi * osc / np.sqrt(lam_min)
-    eta = eta_flux + eta_osc + bosc
+    eta = np.empty(m)
+    res_ind = np.empty(m)
+    nblk = (m + _CELL_CHUNK - 1) // _CELL_CHUNK
+    sums = np.empty((nblk, 3))
+    dev = np.empty((nblk, 4))
+    where = np.empty((nblk, 4), dtype=np.int64)
+    _cell_terms_3d(X, vol, kinv, flux_h, qf, P, T, fid, neighbors, lam_min, h, osc, fnorm2,
+                   bosc, bres, fmom, corr, amount, bkind, gout, eta, res_ind, sums, dev, where)
+    _check_flux_blocks(dev, where, neighbors)
     bound = float(np.sqrt((eta**2).sum()))
-
-    jumps = _flux_jumps_3d(qf, fid, neighbors, lam_min, X)
-    res_ind = np.sqrt(h**2 / lam_min * fnorm2 + jumps + bres)
     residual = float(np.sqrt((res_ind**2).sum()))
+    sums = sums.sum(axis=0)
     clock("indicators")
 
     scale = float(np.abs(fmom).sum() + np.abs(gout).sum() + np.abs(stiff).sum()) or 1.0
@@ -858,10 +917,10 @@ def estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_sta
                      "(a non-polynomial source); raise quadrature_degree if this matters")
     est = ErrorEstimate(
         bound=bound, indicators=eta, residual_estimate=residual, residual_indicators=res_ind,
-        terms={"flux": float(np.sqrt((eta_flux**2).sum())),
-               "oscillation": float(np.sqrt((eta_osc**2).sum())),
+        terms={"flux": float(np.sqrt(sums[0])),
+               "oscillation": float(np.sqrt(sums[2])),
                "boundary_data": float(np.sqrt((bosc**2).sum())),
-               "algebraic": float(np.sqrt((eta_alg**2).sum())),
+               "algebraic": float(np.sqrt(sums[1])),
                "unrouted": float(unrouted), "quadrature_gap": float(gap)},
         energy_norm=energy_norm, guaranteed=guaranteed, notes=notes)
     if not (np.isfinite(bound) and np.isfinite(residual)):
@@ -881,6 +940,27 @@ def estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_sta
 
 
 # -- helpers --------------------------------------------------------------------------
+def _check_flux_blocks(dev, where, neighbors):
+    """The flux must balance the source cell by cell, be conforming, and meet the
+    boundary data (checks of what the compiled kernels returned; ``dev`` and ``where``
+    from :func:`_cell_terms_3d`)."""
+    scale = max(float(dev[:, 3].max(initial=0.0)), 1e-300)
+    worst = dev[:, :3].max(axis=0, initial=0.0)
+    if not (worst > 1e-8 * scale).any():
+        return
+    j = int(np.argmax(worst > 1e-8 * scale))
+    c = int(where[int(np.argmax(dev[:, j])), j])
+    if j == 1:
+        c, i = divmod(c, 4)
+    what = ("misses the source on cell {c} by {d:.3e}; internal error, please report with "
+            "the mesh",
+            "is not conforming across the face between cells {c} and {o} (jump {d:.3e}); "
+            "internal error, please report with the mesh",
+            "misses the boundary data on a face of cell {c} by {d:.3e}; internal error")[j]
+    raise RuntimeError("estimate_error: the equilibrated flux " + what.format(
+        c=c, o=int(neighbors[c, i]) if j == 1 else -1, d=worst[j]))
+
+
 def _conductivity_tensor_3d(kappa, m):
     t = tensor_values(kappa, m, 3, "conductivity")
     if t is not None:

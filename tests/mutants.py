@@ -252,7 +252,7 @@ MUTANTS = [
     ("3D error bound: patch target with half, not a third, of each face flux",
      "estimators3d.py", "+ qf[c, pl[p, j]] / 3.0", "+ qf[c, pl[p, j]] / 2.0", E3PATCH),
     ("3D error bound: routed residual flux dropped", "estimators3d.py",
-     "F = P.sum(axis=1) + T", "F = P.sum(axis=1)", E3LOOSE),
+     "+ P[c, 3, i] + T[c, i]", "+ P[c, 3, i]", E3LOOSE),
     ("3D residual estimator: full jump on each side", "estimators3d.py",
      "jump**2 / (2 * lamF)", "jump**2 / lamF", E3RES),
     ("3D error bound: flux misfit integral with 1/24 for 1/20", "estimators3d.py",

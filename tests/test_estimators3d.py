@@ -277,3 +277,30 @@ def test_raviart_thomas_mass_and_misfit_equal_a_collapsed_gauss_rule():
         nrm *= np.sign(nrm @ (X[f[0]] - X[i]))
         assert (X[f].mean(axis=0) - X[0]) / (3 * vol) @ nrm == pytest.approx(float(i == 0))
 
+
+
+@pytest.mark.parametrize("fault", ["divergence", "conformity"])
+def test_a_flux_that_is_not_equilibrated_is_refused_naming_the_cell(monkeypatch, fault):
+    # common practice: the estimator checks what its compiled kernels returned; a flux
+    # that misses the source on a cell, or whose two sides of a face disagree, must stop
+    # the estimate (an unequilibrated flux bounds nothing, Prager & Synge 1947)
+    import galerkit.estimators3d as e3
+    problem = gk.PoissonProblem(gk.structured_tetrahedra(3, 3, 3), source=1.0,
+                                dirichlet={"boundary": 0.0})
+    sol = problem.solve()
+    route = e3._route
+    cell = 40
+
+    def broken(neighbors, bkind, amount, vol, T, *rest):
+        out = route(neighbors, bkind, amount, vol, T, *rest)
+        inner = np.flatnonzero(neighbors[cell] >= 0)
+        T[cell, inner[0]] += 1e-3
+        if fault == "conformity":  # the cell's total stays: only the faces disagree
+            T[cell, inner[1]] -= 1e-3
+        return out
+
+    monkeypatch.setattr(e3, "_route", broken)
+    text = (f"misses the source on cell {cell} " if fault == "divergence" else
+            rf"is not conforming across the face between cells (\d+ and {cell}|{cell} and \d+) ")
+    with pytest.raises(RuntimeError, match=text):
+        gk.estimate_error(sol)
