@@ -1072,31 +1072,6 @@ def _outward_normal_flux(flux, xa, xb, xopp):
     return (flux * n).sum(axis=1) * sgn
 
 
-def _check_equilibrium(F, fmom, amount, corr, neighbors, bkind, gout):
-    """The flux must balance the source cell by cell, be conforming, and meet the
-    boundary data (checks of what the compiled kernels returned)."""
-    scale = max(float(np.abs(F).max()), float(np.abs(fmom).max()), 1e-300)
-    div = np.abs(F.sum(axis=1) - (fmom.sum(axis=1) - corr.sum(axis=1) + amount))
-    if (div > 1e-8 * scale).any():
-        c = int(np.argmax(div))
-        raise RuntimeError(f"estimate_error: the equilibrated flux misses the source on cell "
-                           f"{c} by {div[c]:.3e}; internal error, please report with the mesh")
-    c_i, l_i = np.nonzero(neighbors >= 0)
-    other = neighbors[c_i, l_i]
-    back = np.argmax(neighbors[other] == c_i[:, None], axis=1)
-    jump = np.abs(F[c_i, l_i] + F[other, back])
-    if (jump > 1e-8 * scale).any():
-        j = int(np.argmax(jump))
-        raise RuntimeError(f"estimate_error: the equilibrated flux is not conforming across the "
-                           f"facet between cells {int(c_i[j])} and {int(other[j])} (jump "
-                           f"{jump[j]:.3e}); internal error, please report with the mesh")
-    miss = np.abs(np.where(bkind == _FLUX, F - gout.sum(axis=2), 0.0))
-    if (miss > 1e-8 * scale).any():
-        c, i = np.unravel_index(int(np.argmax(miss)), miss.shape)
-        raise RuntimeError(f"estimate_error: the equilibrated flux misses the boundary data on "
-                           f"facet {i} of cell {c} by {miss[c, i]:.3e}; internal error")
-
-
 def _check_flux(dev, fmom):
     """The flux must balance the source cell by cell, be conforming, and meet the
     boundary data (checks of what the compiled kernels returned; ``dev`` from

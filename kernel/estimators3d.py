@@ -159,18 +159,6 @@ def _rt_misfit_cell(X, vol, F, q, A, W):
 
 
 @nb.njit(cache=True, parallel=True)
-def _rt_misfit_3d(X, vol, F, flux_h, kinv):
-    """:func:`_rt_misfit_cell` on every cell: shape (m,)."""
-    m = X.shape[0]
-    out = np.empty(m)
-    for b in nb.prange((m + _CELL_CHUNK - 1) // _CELL_CHUNK):
-        W = np.empty((4, 3))
-        for c in range(b * _CELL_CHUNK, min(m, (b + 1) * _CELL_CHUNK)):
-            out[c] = _rt_misfit_cell(X[c], vol[c], F[c], flux_h[c], kinv[c], W)
-    return out
-
-
-@nb.njit(cache=True, parallel=True)
 def _cell_data_3d(X, K, ucell, vol, kinv, lam_min, h, grad_uh, flux_h, stiff, M):
     """Per cell: ``K^-1``, the smallest diagonal entry of K (its smallest eigenvalue when
     K is diagonal; the caller takes LAPACK's otherwise), the longest edge, ``grad u_h``,
