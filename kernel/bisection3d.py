@@ -34,21 +34,107 @@ refinement edge with tag 0; the closure then still gives a conforming mesh
 when it ends, but the bound on its length and on the angles is not proved;
 ``refine_tetrahedra`` stops with :class:`~galerkit.errors.UnsupportedError`
 after ``_MAX_ROUNDS`` rounds instead of looping.
+
+Implementation: compiled kernels on validated arrays.  The labelling compares
+the six edges of each cell by (squared length, vertex numbers); the closure
+keeps the split edges in an open-addressing hash table (edge key -> midpoint),
+bisects the cells of a round in one pass (first child in place, second appended)
+and finds the next round's cells by one parallel scan that looks up only the
+edges whose two vertices both end a split edge.
 """
 
 from __future__ import annotations
 
+import numba as nb
 import numpy as np
 
+from .compilation import by_size
 from .errors import UnsupportedError
 
 __all__ = ["refine_tetrahedra", "tetrahedron_labels"]
 
 _MAX_ROUNDS = 10_000  # a safety net: the closure ends (Arnold, Mukherjee & Pouly 2000)
 _TYPE_A, _TYPE_M = 3, 4  # initial cells that are no tagged simplex (first bisection only)
-_KEY = np.int64(1) << 31  # edge key lo * _KEY + hi (vertex ids below 2**31)
+_KEY = 1 << 31  # edge key lo * _KEY + hi (vertex ids below 2**31)
+_EMPTY = -1  # a free slot of the hash table
 # the six edges of a tetrahedron, as local vertex pairs
-_EDGES6 = np.array([[0, 1], [0, 2], [0, 3], [1, 2], [1, 3], [2, 3]])
+_EDGES6 = np.array([[0, 1], [0, 2], [0, 3], [1, 2], [1, 3], [2, 3]], dtype=np.int64)
+
+
+# --------------------------------------------------------------------------- labelling
+
+@nb.njit(cache=True, inline="always")
+def _edge_key(a, b):
+    return min(a, b) * _KEY + max(a, b)
+
+
+@nb.njit(cache=True, inline="always")
+def _len2(pts, a, b):
+    lo, hi = min(a, b), max(a, b)
+    dx = pts[lo, 0] - pts[hi, 0]
+    dy = pts[lo, 1] - pts[hi, 1]
+    dz = pts[lo, 2] - pts[hi, 2]
+    return dx * dx + dy * dy + dz * dz
+
+
+@nb.njit(cache=True, inline="always")
+def _longer(pts, a, b, c, d):
+    """Whether edge ``a b`` comes after edge ``c d`` in the strict order of the edges:
+    squared length, then key (ties of length broken by vertex numbers)."""
+    la, lc = _len2(pts, a, b), _len2(pts, c, d)
+    if la != lc:
+        return la > lc
+    return _edge_key(a, b) > _edge_key(c, d)
+
+
+@nb.njit(cache=True, inline="always")
+def _face_mark(pts, v, p, q):
+    """Marked (longest) edge of the face (v, p, q): 0 = v-p, 1 = v-q, 2 = p-q."""
+    best, ba, bb = 0, v, p
+    if _longer(pts, v, q, ba, bb):
+        best, ba, bb = 1, v, q
+    if _longer(pts, p, q, ba, bb):
+        best = 2
+    return best
+
+
+@nb.njit(cache=True, parallel=True)
+def _longest_edge_labels(cells, pts, out, tag):
+    """The longest-edge labelling of every cell into ``out`` (m, 4) and ``tag`` (m,)."""
+    for c in nb.prange(cells.shape[0]):
+        w = (np.int64(cells[c, 0]), np.int64(cells[c, 1]), np.int64(cells[c, 2]),
+             np.int64(cells[c, 3]))
+        a, b = w[0], w[1]
+        for e in range(1, 6):
+            u, v = w[_EDGES6[e, 0]], w[_EDGES6[e, 1]]
+            if _longer(pts, u, v, a, b):
+                a, b = u, v
+        # the other two vertices, ascending
+        p = q = -1
+        for i in range(4):
+            if w[i] != a and w[i] != b:
+                if p < 0:
+                    p = w[i]
+                else:
+                    q = w[i]
+        if p > q:
+            p, q = q, p
+        ma, mb = _face_mark(pts, a, p, q), _face_mark(pts, b, p, q)  # faces without b, a
+        # the face without a marked p-q and the other not: mirror so that x0's face is it
+        if mb == 2 and ma != 2:
+            x0, x3, m0, m3 = b, a, mb, ma
+        else:
+            x0, x3, m0, m3 = a, b, ma, mb
+        # x2: the partner of x0 in its face's mark (P, O), of x3 in its face's mark (M)
+        y0 = p if m0 == 0 else q
+        y3 = p if m3 == 0 else q
+        x2 = y0 if m0 != 2 else (y3 if m3 != 2 else q)
+        x1 = q if x2 == p else p
+        if m0 == 2:
+            tag[c] = _TYPE_A if m3 == 2 else _TYPE_M
+        else:
+            tag[c] = 1 if y0 == y3 else 0
+        out[c, 0], out[c, 1], out[c, 2], out[c, 3] = x0, x1, x2, x3
 
 
 def tetrahedron_labels(mesh):
@@ -59,53 +145,161 @@ def tetrahedron_labels(mesh):
     tags = getattr(mesh, "refinement_tags", None)
     if cells is not None and tags is not None and np.shape(tags) == (mesh.n_cells,):
         return (np.array(cells, dtype=np.int64), np.array(tags, dtype=np.int8), "carried")
-    c = np.asarray(mesh.cells, dtype=np.int64)
-    m = c.shape[0]
-    rows = np.arange(m)
-    # a strict order of the edges: squared length (computed once per edge), then key
-    ea, eb = c[:, _EDGES6[:, 0]], c[:, _EDGES6[:, 1]]
-    keys = _edge_keys(ea, eb).ravel()
-    ukeys, first = np.unique(keys, return_index=True)
-    lo, hi = ukeys // _KEY, ukeys % _KEY
-    len2 = ((mesh.points[lo] - mesh.points[hi]) ** 2).sum(axis=1)
-    rank_of_unique = np.empty(ukeys.size, dtype=np.int64)
-    rank_of_unique[np.lexsort((ukeys, len2))] = np.arange(ukeys.size)
-
-    def rank(u, v):
-        return rank_of_unique[np.searchsorted(ukeys, _edge_keys(u, v))]
-
-    R = rank(ea, eb)  # (m, 6)
-    best = np.argmax(R, axis=1)
-    a = c[rows, _EDGES6[best, 0]]
-    b = c[rows, _EDGES6[best, 1]]
-    other = np.where((c == a[:, None]) | (c == b[:, None]), np.iinfo(np.int64).max, c)
-    other = np.sort(other, axis=1)[:, :2]
-    p, q = other[:, 0], other[:, 1]
-
-    def face_mark(v):
-        """Marked (longest) edge of the face (v, p, q): 0 = v-p, 1 = v-q, 2 = p-q."""
-        return np.argmax(np.stack([rank(v, p), rank(v, q), rank(p, q)], axis=1), axis=1)
-
-    ma, mb = face_mark(a), face_mark(b)  # faces without b and without a
-    # the face without a marked p-q and the other not: mirror so that x0's face is it
-    swap = (mb == 2) & (ma != 2)
-    x0 = np.where(swap, b, a)
-    x3 = np.where(swap, a, b)
-    m0 = np.where(swap, mb, ma)  # mark of the face without x3
-    m3 = np.where(swap, ma, mb)  # mark of the face without x0
-    # x2: the partner of x0 in its face's mark (P, O), of x3 in its face's mark (M)
-    y0 = np.where(m0 == 0, p, q)
-    y3 = np.where(m3 == 0, p, q)
-    x2 = np.where(m0 != 2, y0, np.where(m3 != 2, y3, q))
-    x1 = np.where(x2 == p, q, p)
-    tag = np.where(m0 == 2, np.where(m3 == 2, _TYPE_A, _TYPE_M),
-                   np.where(y0 == y3, 1, 0)).astype(np.int8)
-    out = np.ascontiguousarray(np.column_stack([x0, x1, x2, x3]))
+    c = np.ascontiguousarray(mesh.cells)
+    pts = np.ascontiguousarray(mesh.points, dtype=np.float64)
+    out = np.empty((c.shape[0], 4), dtype=np.int64)
+    tag = np.empty(c.shape[0], dtype=np.int8)
+    by_size(_longest_edge_labels, 4 * c.shape[0])(c, pts, out, tag)
     return out, tag, "longest-edge"
 
 
-def _edge_keys(a, b):
-    return np.minimum(a, b) * _KEY + np.maximum(a, b)
+# ------------------------------------------------------------- split edges (hash table)
+
+@nb.njit(cache=True, inline="always")
+def _slot(key, mask):
+    # Fibonacci hashing of the 64-bit key, reduced to the table size (a power of two)
+    h = np.uint64(key) * np.uint64(0x9E3779B97F4A7C15)
+    return np.int64((h >> np.uint64(29)) & np.uint64(mask))
+
+
+@nb.njit(cache=True)
+def _find(hkeys, hvals, key):
+    """The midpoint of the split edge ``key``, or -1."""
+    mask = hkeys.size - 1
+    s = _slot(key, mask)
+    while True:
+        k = hkeys[s]
+        if k == key:
+            return hvals[s]
+        if k == _EMPTY:
+            return -1
+        s = (s + 1) & mask
+
+
+@nb.njit(cache=True)
+def _insert(hkeys, hvals, key, value):
+    mask = hkeys.size - 1
+    s = _slot(key, mask)
+    while hkeys[s] != _EMPTY and hkeys[s] != key:
+        s = (s + 1) & mask
+    hkeys[s] = key
+    hvals[s] = value
+
+
+@nb.njit(cache=True)
+def _rehash(hkeys, hvals, keys2, vals2):
+    for s in range(hkeys.size):
+        if hkeys[s] != _EMPTY:
+            _insert(keys2, vals2, hkeys[s], hvals[s])
+
+
+@nb.njit(cache=True)
+def _split_edges(L, sel, hkeys, hvals, pts, vpar, vsplit, n):
+    """The midpoint ``z`` of the refinement edge ``x0 x3`` of each cell of ``sel``.
+    Edges not split before get new vertices ``n, n + 1, ...`` in ascending key order,
+    at their midpoints (``pts``, ``vpar``, ``vsplit`` hold room for them).  Returns
+    ``(z, new vertex count)``."""
+    k = sel.size
+    key = np.empty(k, dtype=np.int64)
+    z = np.empty(k, dtype=np.int64)
+    fresh = np.empty(k, dtype=np.int64)
+    nf = 0
+    for i in range(k):
+        c = sel[i]
+        key[i] = _edge_key(L[c, 0], L[c, 3])
+        z[i] = _find(hkeys, hvals, key[i])
+        if z[i] < 0:
+            fresh[nf] = key[i]
+            nf += 1
+    new = np.unique(fresh[:nf])
+    for j in range(new.size):
+        v = n + j
+        lo, hi = new[j] // _KEY, new[j] % _KEY
+        _insert(hkeys, hvals, new[j], v)
+        for d in range(3):
+            pts[v, d] = 0.5 * (pts[lo, d] + pts[hi, d])
+        vpar[v, 0], vpar[v, 1] = lo, hi
+        vsplit[lo] = vsplit[hi] = True
+    for i in range(k):
+        if z[i] < 0:
+            z[i] = _find(hkeys, hvals, key[i])
+    return z, n + new.size
+
+
+# --------------------------------------------------------------------------- bisection
+
+@nb.njit(cache=True)
+def _bisect(L, g, origin, anc, sel, z, m):
+    """Bisect the cells ``sel`` at ``z``: the first child replaces its parent, the second
+    is cell ``m + i`` (``i``-th of ``sel``); facet origins and ancestors follow."""
+    for i in range(sel.size):
+        c, d, zi = sel[i], m + i, z[i]
+        x0, x1, x2, x3 = L[c, 0], L[c, 1], L[c, 2], L[c, 3]
+        o0, o1, o2, o3 = origin[c, 0], origin[c, 1], origin[c, 2], origin[c, 3]
+        t = g[c]
+        if t == _TYPE_A or t == _TYPE_M:
+            # types A and M (Arnold, Mukherjee & Pouly 2000), new face marked x1 x2: the
+            # first child is (x1, z, x0, x2); the second (x1, z, x3, x2) (A) or the
+            # tagged simplex rule's second child (M)
+            L[c, 0], L[c, 1], L[c, 2], L[c, 3] = x1, zi, x0, x2
+            origin[c, 0], origin[c, 1], origin[c, 2], origin[c, 3] = o1, o3, -1, o2
+            if t == _TYPE_A:
+                L[d, 0], L[d, 1], L[d, 2], L[d, 3] = x1, zi, x3, x2
+                origin[d, 0], origin[d, 1], origin[d, 2], origin[d, 3] = o1, o0, -1, o2
+            else:
+                L[d, 0], L[d, 1], L[d, 2], L[d, 3] = x3, zi, x1, x2
+                origin[d, 0], origin[d, 1], origin[d, 2], origin[d, 3] = -1, o0, o1, o2
+            t = 0
+        else:
+            # tagged simplices: (x0, z, x1, x2) and (x3, z, x1, x2), (x3, z, x2, x1) for tag 0
+            L[c, 0], L[c, 1], L[c, 2], L[c, 3] = x0, zi, x1, x2
+            origin[c, 0], origin[c, 1], origin[c, 2], origin[c, 3] = -1, o3, o1, o2
+            if t == 0:
+                L[d, 0], L[d, 1], L[d, 2], L[d, 3] = x3, zi, x2, x1
+                origin[d, 0], origin[d, 1], origin[d, 2], origin[d, 3] = -1, o0, o2, o1
+            else:
+                L[d, 0], L[d, 1], L[d, 2], L[d, 3] = x3, zi, x1, x2
+                origin[d, 0], origin[d, 1], origin[d, 2], origin[d, 3] = -1, o0, o1, o2
+        g[c] = g[d] = (t + 1) % 3
+        anc[d] = anc[c]
+
+
+@nb.njit(cache=True, parallel=True)
+def _with_split_edges(L, m, vsplit, hkeys, hvals, todo):
+    """``todo[c]``: cell ``c`` (< m) has a split edge.  Only edges whose two vertices both
+    end some split edge are looked up."""
+    for c in nb.prange(m):
+        hit = False
+        for e in range(6):
+            a, b = L[c, _EDGES6[e, 0]], L[c, _EDGES6[e, 1]]
+            if vsplit[a] and vsplit[b] and _find(hkeys, hvals, _edge_key(a, b)) >= 0:
+                hit = True
+                break
+        todo[c] = hit
+
+
+@nb.njit(cache=True)
+def _by_ancestor(anc, n_coarse):
+    """The stable order of the cells by ancestor (a counting sort)."""
+    start = np.zeros(n_coarse + 1, dtype=np.int64)
+    for a in anc:
+        start[a + 1] += 1
+    for i in range(n_coarse):
+        start[i + 1] += start[i]
+    order = np.empty(anc.size, dtype=np.int64)
+    for c in range(anc.size):
+        order[start[anc[c]]] = c
+        start[anc[c]] += 1
+    return order
+
+
+def _grown(a, rows):
+    """``a`` with room for ``rows`` rows (doubling), the first rows kept."""
+    if a.shape[0] >= rows:
+        return a
+    b = np.empty((max(rows, 2 * a.shape[0]),) + a.shape[1:], dtype=a.dtype)
+    b[:a.shape[0]] = a
+    return b
 
 
 def refine_tetrahedra(mesh, mask):
@@ -118,26 +312,30 @@ def refine_tetrahedra(mesh, mask):
     in (-1 inside), and the labelling rule of the coarse mesh.
     """
     L, g, rule = tetrahedron_labels(mesh)
-    m = L.shape[0]
+    m0 = L.shape[0]
     n0 = mesh.n_vertices
     if n0 >= 2**31 - 1:
         raise UnsupportedError("refine_marked: meshes of 2**31 vertices or more are not supported")
     # coarse boundary facet of each (cell, local face in label order)
-    origin = np.full((m, 4), -1, dtype=np.int64)
+    origin = np.full((m0, 4), -1, dtype=np.int64)
     fcell = np.asarray(mesh.boundary_facet_cells, dtype=np.int64)
     floc = np.asarray(mesh.boundary_facet_local, dtype=np.int64)
     opp = np.asarray(mesh.cells, dtype=np.int64)[fcell, floc]  # vertex opposite the facet
     j = np.argmax(L[fcell] == opp[:, None], axis=1)
     origin[fcell, j] = np.arange(fcell.size)
-    anc = np.arange(m, dtype=np.int64)
-    pts = [np.asarray(mesh.points, dtype=np.float64)]
-    vpar = [np.stack([np.arange(n0, dtype=np.int64)] * 2, axis=1)]
-    n = n0
-    mid_keys = np.zeros(0, dtype=np.int64)  # sorted keys of the split edges
-    mid_ids = np.zeros(0, dtype=np.int64)
+    anc = np.arange(m0, dtype=np.int64)
+    pts = np.array(mesh.points, dtype=np.float64)
+    vpar = np.stack([np.arange(n0, dtype=np.int64)] * 2, axis=1)
+    vsplit = np.zeros(n0, dtype=np.bool_)
+    hkeys = np.full(1024, _EMPTY, dtype=np.int64)
+    hvals = np.empty(1024, dtype=np.int64)
+    n, m, n_split = n0, m0, 0
     todo = np.asarray(mask, dtype=bool).copy()
     rounds = 0
-    while todo.any():
+    while True:
+        sel = np.flatnonzero(todo[:m])
+        if sel.size == 0:
+            break
         rounds += 1
         if rounds > _MAX_ROUNDS:
             raise UnsupportedError(
@@ -145,64 +343,29 @@ def refine_tetrahedra(mesh, mask):
                 f"{_MAX_ROUNDS} rounds; the initial labelling ({rule}) of this mesh is not "
                 "admissible. Refine it with refine_uniform, or start from a mesh of Kuhn "
                 "tetrahedra (structured_tetrahedra)")
-        sel = np.flatnonzero(todo)
-        x0, x1, x2, x3 = (L[sel, i] for i in range(4))
-        key = _edge_keys(x0, x3)
-        pos = np.searchsorted(mid_keys, key)
-        found = pos < mid_keys.size
-        found[found] = mid_keys[pos[found]] == key[found]
-        z = np.empty(sel.size, dtype=np.int64)
-        z[found] = mid_ids[pos[found]]
-        new_keys, inv = np.unique(key[~found], return_inverse=True)
-        new_ids = n + np.arange(new_keys.size, dtype=np.int64)
-        z[~found] = new_ids[inv]
-        if new_keys.size:
-            lo, hi = new_keys // _KEY, new_keys % _KEY
-            allp = np.concatenate(pts) if len(pts) > 1 else pts[0]
-            pts = [allp, 0.5 * (allp[lo] + allp[hi])]
-            vpar.append(np.stack([lo, hi], axis=1))
-            n += new_keys.size
-            mk = np.concatenate([mid_keys, new_keys])
-            mi = np.concatenate([mid_ids, new_ids])
-            o = np.argsort(mk, kind="stable")
-            mid_keys, mid_ids = mk[o], mi[o]
-        gs = g[sel]
-        zero = gs == 0
-        ta, tm = gs == _TYPE_A, gs == _TYPE_M
-        sp = ta | tm
-        o = origin[sel]
-        neg = np.full(sel.size, -1, dtype=np.int64)
-        # tagged simplices: (x0, z, x1, x2) and (x3, z, x1, x2), (x3, z, x2, x1) for tag 0
-        c1 = np.stack([x0, z, x1, x2], axis=1)
-        c2 = np.stack([x3, z, np.where(zero, x2, x1), np.where(zero, x1, x2)], axis=1)
-        o1 = np.stack([neg, o[:, 3], o[:, 1], o[:, 2]], axis=1)
-        o2 = np.stack([neg, o[:, 0], np.where(zero, o[:, 2], o[:, 1]),
-                       np.where(zero, o[:, 1], o[:, 2])], axis=1)
-        # types A and M (Arnold, Mukherjee & Pouly 2000), new face marked x1 x2: the first
-        # child is (x1, z, x0, x2); the second (x1, z, x3, x2) (A) or as above (M)
-        c1[sp] = np.stack([x1, z, x0, x2], axis=1)[sp]
-        o1[sp] = np.stack([o[:, 1], o[:, 3], neg, o[:, 2]], axis=1)[sp]
-        c2[ta] = np.stack([x1, z, x3, x2], axis=1)[ta]
-        o2[ta] = np.stack([o[:, 1], o[:, 0], neg, o[:, 2]], axis=1)[ta]
-        gs = np.where(sp, 0, gs)
-        gn = ((gs + 1) % 3).astype(np.int8)
-        # children replace their parent in place (first child) and at the end (second)
-        L[sel] = c1
-        origin[sel] = o1
-        g[sel] = gn
-        L = np.concatenate([L, c2])
-        origin = np.concatenate([origin, o2])
-        g = np.concatenate([g, gn])
-        anc = np.concatenate([anc, anc[sel]])
+        if n + sel.size >= 2**31 - 1:
+            raise UnsupportedError("refine_marked: the refined mesh would have 2**31 "
+                                   "vertices or more, which is not supported")
+        # room: new vertices (at most one per cell of sel), a table at most half full
+        pts, vpar, vsplit = (_grown(a, n + sel.size) for a in (pts, vpar, vsplit))
+        vsplit[n:] = False
+        if 2 * (n_split + sel.size) > hkeys.size:
+            size = hkeys.size
+            while 2 * (n_split + sel.size) > size:
+                size *= 2
+            k2, v2 = np.full(size, _EMPTY, dtype=np.int64), np.empty(size, dtype=np.int64)
+            _rehash(hkeys, hvals, k2, v2)
+            hkeys, hvals = k2, v2
+        z, n_new = _split_edges(L, sel, hkeys, hvals, pts, vpar, vsplit, n)
+        n_split += n_new - n
+        n = n_new
+        L, g, origin, anc = (_grown(a, m + sel.size) for a in (L, g, origin, anc))
+        _bisect(L, g, origin, anc, sel, z, m)
+        m += sel.size
         # cells with a split edge must be bisected next
-        ek = _edge_keys(L[:, _EDGES6[:, 0]], L[:, _EDGES6[:, 1]])  # (m, 6)
-        p = np.searchsorted(mid_keys, ek)
-        p = np.minimum(p, mid_keys.size - 1)
-        todo = (mid_keys[p] == ek).any(axis=1)
-    points = np.concatenate(pts) if len(pts) > 1 else pts[0]
-    vparents = np.concatenate(vpar)
+        todo = _grown(todo, m)
+        by_size(_with_split_edges, 6 * m)(L, m, vsplit, hkeys, hvals, todo)
     # children next to their coarse parent, in the order they were made
-    order = np.argsort(anc, kind="stable")
-    return (points, np.ascontiguousarray(L[order]), np.ascontiguousarray(g[order]),
-            np.ascontiguousarray(anc[order]), vparents, np.ascontiguousarray(origin[order]),
-            rule)
+    order = _by_ancestor(anc[:m], m0)
+    return (pts[:n].copy(), L[order], g[order], anc[order], vpar[:n].copy(),
+            origin[order], rule)
