@@ -1002,24 +1002,57 @@ def _source_moments_3d(source, disc, X, vol, cells, degree):
 
 
 def _neighbors_from_faces(fid):
+    """The cell across each face ``(m, 4)`` (-1 on the boundary), from the face ids."""
+    nb_ = np.empty(fid.shape, dtype=np.int64)
+    _pair_faces(fid, int(fid.max()) + 1 if fid.size else 0, nb_)
+    return nb_
+
+
+@nb.njit(cache=True)
+def _pair_faces(fid, n_faces, nb_):
+    # the first cell to meet a face waits for the second (a face is in one or two cells)
+    first = np.full(n_faces, -1, dtype=np.int64)
     m = fid.shape[0]
-    flat = fid.ravel()
-    order = np.argsort(flat, kind="stable")
-    sf = flat[order]
-    nb_ = np.full(4 * m, -1, dtype=np.int64)
-    same = np.flatnonzero(sf[1:] == sf[:-1])
-    a, b = order[same], order[same + 1]
-    nb_[a] = b // 4
-    nb_[b] = a // 4
-    return np.ascontiguousarray(nb_.reshape(m, 4))
+    for c in range(m):
+        for i in range(4):
+            nb_[c, i] = -1
+            f = fid[c, i]
+            o = first[f]
+            if o < 0:
+                first[f] = 4 * c + i
+            else:
+                nb_[o // 4, o % 4] = c
+                nb_[c, i] = o // 4
 
 
 def _vertex_patches_3d(cells, n):
-    flat = cells.ravel().astype(np.int64)
-    order = np.argsort(flat, kind="stable")
-    vptr = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(np.bincount(flat, minlength=n), out=vptr[1:])
-    return vptr, np.ascontiguousarray(order // 4), np.ascontiguousarray(order % 4)
+    """The cells around each vertex: ``vcell[vptr[a]:vptr[a + 1]]`` ascending, with the
+    local index ``vloc`` of ``a`` in each."""
+    vptr = np.empty(n + 1, dtype=np.int64)
+    vcell = np.empty(cells.size, dtype=np.int64)
+    vloc = np.empty(cells.size, dtype=np.int64)
+    _vertex_patch_fill(cells, vptr, vcell, vloc)
+    return vptr, vcell, vloc
+
+
+@nb.njit(cache=True)
+def _vertex_patch_fill(cells, vptr, vcell, vloc):
+    # a counting sort of the (cell, local vertex) pairs by vertex, stable in the cell
+    n = vptr.size - 1
+    vptr[:] = 0
+    m, k = cells.shape
+    for c in range(m):
+        for i in range(k):
+            vptr[cells[c, i] + 1] += 1
+    for a in range(n):
+        vptr[a + 1] += vptr[a]
+    fill = vptr[:n].copy()
+    for c in range(m):
+        for i in range(k):
+            a = cells[c, i]
+            vcell[fill[a]] = c
+            vloc[fill[a]] = i
+            fill[a] += 1
 
 
 def _face_diameters(FX):

@@ -234,7 +234,7 @@ MUTANTS = [
     ("residual estimator: jump weighted by the smaller conductivity of the two cells",
      "estimators.py", "lamF = max(lam, lam_min[nb_])", "lamF = min(lam, lam_min[nb_])", PKJUMP),
     ("Doerfler marking takes one cell fewer", "adaptivity.py",
-     "return np.sort(order[:min(k, eta2.size)])", "return np.sort(order[:max(min(k, eta2.size) - 1, 1)])",
+     "return np.sort(order[:min(k, n)])", "return np.sort(order[:max(min(k, n) - 1, 1)])",
      EMARK),
     ("bisection closure skipped", "bisection.py",
      "        if not need.any():\n            break", "        if True:\n            break", EBIS),

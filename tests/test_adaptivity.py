@@ -6,6 +6,8 @@ L-shape, where uniform refinement is limited to N^(-1/3) by the r^(2/3)
 singularity (Strang & Fix 1973); Prager & Synge (1947): bound >= error.
 """
 
+import math
+
 import numpy as np
 import pytest
 
@@ -80,6 +82,29 @@ def test_doerfler_marking_takes_the_fewest_largest_cells():
     assert doerfler_marking(eta, 0.5).tolist() == [1]        # 9 >= 7.125
     assert doerfler_marking(eta, 0.7).tolist() == [1, 2]     # 13 >= 9.975
     assert doerfler_marking(eta, 1.0).tolist() == [0, 1, 2, 3]
+
+
+@pytest.mark.parametrize("bulk", [0.05, 0.5, 0.9, 0.999])
+def test_doerfler_marking_of_many_cells_is_the_smallest_set_of_the_largest(bulk):
+    # Doerfler 1996: the fewest cells whose squared indicators reach bulk * total; ties
+    # at the threshold go to the lower cell numbers.  Checked from the definition with
+    # Python's sorted and math.fsum, on values with many ties; the bulks need from a
+    # few to nearly all cells, so the partial selection must grow its candidate set
+    rng = np.random.default_rng(11)
+    eta = np.round(rng.random(60_000) ** 3, 3)
+    got = doerfler_marking(eta, bulk)
+    e2 = eta**2
+    total = math.fsum(e2)
+    ranked = sorted(range(eta.size), key=lambda i: (-e2[i], i))
+    assert np.array_equal(got, np.sort(ranked[:got.size]))  # the first of the ranking
+    marked = math.fsum(e2[got])
+    assert marked >= bulk * total * (1 - 1e-12)
+    assert marked - e2[ranked[got.size - 1]] < bulk * total * (1 + 1e-12)  # none fewer
+
+
+def test_doerfler_marking_refuses_indicators_that_are_not_finite():
+    with pytest.raises(InputError, match="cell 2"):
+        doerfler_marking(np.array([1.0, 2.0, np.nan, 3.0]))
 
 
 def test_bad_parameters_are_refused():
