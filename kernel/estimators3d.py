@@ -515,8 +515,8 @@ def _patch_fluxes_3d(vol, M, qf, fid, neighbors, bkind, draw, gout, vptr, vcell,
                 # b = sum_p S_p^T M_p t_p with the target t_p = a third of qf
                 for f in range(nf):
                     w[f] = 0.0
-                for i1 in range(nz):
-                    for i2 in range(nz):
+                for i1 in range(nz):  # the lower triangle: all that Cholesky reads
+                    for i2 in range(i1 + 1):
                         R[i1, i2] = 0.0
                 for p in range(k):
                     c = vcell[s0 + p]
@@ -540,8 +540,8 @@ def _patch_fluxes_3d(vol, M, qf, fid, neighbors, bkind, draw, gout, vptr, vcell,
                                 acc += M[c, pl[p, j], pl[p, jj]] * ps[p, jj] \
                                     * Z[pf[p, jj], act[t]]
                             MZ[j, t] = acc
-                    for t1 in range(na):
-                        for t2 in range(na):
+                    for t1 in range(na):  # act ascends: t2 <= t1 is the lower triangle
+                        for t2 in range(t1 + 1):
                             acc = 0.0
                             for j in range(3):
                                 acc += ps[p, j] * Z[pf[p, j], act[t1]] * MZ[j, t2]
@@ -890,7 +890,9 @@ def estimate_error_tetrahedra(solution, exact_gradient, quadrature_degree, t_sta
     sums = sums.sum(axis=0)
     clock("indicators")
 
-    scale = float(np.abs(fmom).sum() + np.abs(gout).sum() + np.abs(stiff).sum()) or 1.0
+    # |gout| summed through its only non-zero entries, the boundary moments (an (m, 4, 4)
+    # temporary would cost more than the indicators, in fresh pages)
+    scale = float(np.abs(fmom).sum() + np.abs(mom[sel]).sum() + np.abs(stiff).sum()) or 1.0
     guaranteed = True
     if n_floating[0] and unrouted > 1e-12 * scale:
         if problem.robin or problem.dirichlet:
